@@ -1,0 +1,429 @@
+"""The raw archive of one case: which file holds which variable at which time.
+
+LES codes lay their output out in many ways (one file per output time, one file per
+variable, a mix). :func:`catalogue` opens every file lazily, checks each mapped raw
+variable's dimensions against the variable map, decodes every file's time axis to
+seconds since a common origin and builds an index ``(variable, time) -> (file, index)``.
+It refuses duplicate or overlapping time steps, non-monotonic time, variables missing
+from the archive, variables whose time steps differ, and files on different grids.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import re
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
+from .units import ureg
+from .varmap import VariableMap
+
+_SINCE = re.compile(r"^\s*(?P<unit>\S+)\s+since\s+(?P<ref>.+?)\s*$", re.IGNORECASE)
+
+
+def resolve_files(pattern: str, *, case: str) -> list[Path]:
+    """Expand a case's raw-file glob, sorted; refuse an empty match."""
+    files = sorted(Path(p) for p in glob.glob(pattern, recursive=True) if os.path.isfile(p))
+    if not files:
+        raise InputError(
+            f"the raw-file pattern {pattern!r} matches no file",
+            case=case,
+            hint="check the 'raw' column of the case sheet (a glob relative to the working "
+            "directory)",
+        )
+    return files
+
+
+def open_raw(path: str | Path, *, case: str) -> xr.Dataset:
+    """Open one raw NetCDF file lazily and read-only, without decoding times.
+
+    Raises
+    ------
+    InputError
+        If the file cannot be read as NetCDF (truncated, corrupt, not NetCDF).
+    """
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", category=xr.SerializationWarning)
+            return xr.open_dataset(
+                path, decode_times=False, decode_timedelta=False, cache=False, mode="r"
+            )
+    except Exception as exc:  # the backends raise OSError, ValueError, RuntimeError ...
+        raise InputError(
+            f"cannot be read as NetCDF ({type(exc).__name__}: {exc})",
+            case=case,
+            file=str(path),
+            hint="the file may be truncated or corrupt; copy it again from the archive",
+        ) from None
+
+
+def parse_time_units(
+    units: str | None, *, case: str, file: str, variable: str
+) -> tuple[float, pd.Timestamp | None]:
+    """Split CF time units into (seconds per unit, reference date or None).
+
+    ``"hours since 2031-06-01 00:00:00"`` gives ``(3600.0, Timestamp(...))``; a plain
+    duration unit such as ``"s"`` or ``"seconds"`` gives ``(1.0, None)`` (time since the
+    start of the run).
+    """
+    if units is None or not str(units).strip():
+        raise UnitError(
+            "time has no units; expected e.g. 'seconds since 2000-01-01' or 's'",
+            case=case,
+            file=file,
+            variable=variable,
+            hint="add 'units:' to the time coordinate in the variable map",
+        )
+    m = _SINCE.match(str(units))
+    unit_text = m.group("unit") if m else str(units)
+    try:
+        q = ureg.Quantity(1.0, unit_text).to("s")
+    except Exception:
+        raise UnitError(
+            f"time units {units!r} are not a duration or 'UNIT since DATE'",
+            case=case,
+            file=file,
+            variable=variable,
+        ) from None
+    ref = None
+    if m:
+        try:
+            ref = pd.Timestamp(m.group("ref"))
+        except Exception:
+            raise UnitError(
+                f"time units {units!r}: cannot read the reference date {m.group('ref')!r}",
+                case=case,
+                file=file,
+                variable=variable,
+            ) from None
+        if ref.tzinfo is not None:
+            ref = ref.tz_convert("UTC").tz_localize(None)
+    return float(q.magnitude), ref
+
+
+@dataclass
+class RawGrid:
+    """Coordinates read from the archive (raw units already converted to m)."""
+
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    z_face: np.ndarray | None = None
+    z_bounds: np.ndarray | None = None
+
+
+@dataclass
+class Catalogue:
+    """Index of one case's raw archive.
+
+    Attributes
+    ----------
+    files
+        The raw files, sorted.
+    times
+        Sorted output times in seconds since ``origin`` (float64).
+    origin
+        ISO date of the time origin, or ``"start of run"`` for duration units.
+    where
+        ``where[var][i] = (file index, index in file)`` for the i-th output time; for a
+        variable without a time axis, a single entry used for every time.
+    grid
+        Coordinates in metres.
+    """
+
+    case: str
+    files: list[Path]
+    varmap: VariableMap
+    times: np.ndarray
+    origin: str
+    where: dict[str, list[tuple[int, int]]]
+    grid: RawGrid
+    attrs: dict[str, Any] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+
+
+def _coord_values(
+    ds: xr.Dataset, spec: dict[str, str], *, axis: str, case: str, file: str
+) -> np.ndarray:
+    name = spec["raw"]
+    if name not in ds.variables:
+        raise InputError(
+            f"coordinate {name!r} for axis {axis!r} is not in the file "
+            f"(variables: {sorted(map(str, ds.variables))})",
+            case=case,
+            file=file,
+            variable=name,
+            hint="fix 'coords:' in the variable map",
+        )
+    var = ds.variables[name]
+    values = np.asarray(var.values, dtype=np.float64)
+    if axis == "time":
+        return values
+    from .units import conversion
+
+    conv = conversion(
+        variable=axis,
+        raw_variable=name,
+        found=var.attrs.get("units"),
+        expected="m",
+        assumed=spec.get("units"),
+        case=case,
+        file=file,
+    )
+    return np.asarray(conv.apply(values), dtype=np.float64)
+
+
+def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue:
+    """Index a case's raw files against its variable map.
+
+    Parameters
+    ----------
+    files
+        The case's raw NetCDF files (see :func:`resolve_files`).
+    varmap
+        The flavour's variable map.
+    case
+        Case id, for messages.
+
+    Returns
+    -------
+    Catalogue
+
+    Raises
+    ------
+    InputError, ConfigError, GridError, TimeAxisError
+        Any of the problems listed in the module docstring.
+    """
+    time_spec = varmap.coords["time"]
+    time_dim = varmap.raw_dim("time")
+    entries: dict[str, list[tuple[float, int, int]]] = {v: [] for v in varmap.variables}
+    static: dict[str, int] = {}
+    grid: RawGrid | None = None
+    grid_file = ""
+    origin: pd.Timestamp | None = None
+    origin_kind: str | None = None
+    attrs: dict[str, Any] = {}
+    notes: list[str] = []
+    per_file_times: list[tuple[np.ndarray, pd.Timestamp | None]] = []
+    opened: list[xr.Dataset] = []
+    try:
+        for fi, path in enumerate(files):
+            ds = open_raw(path, case=case)
+            opened.append(ds)
+            if not attrs:
+                attrs = {k: str(v) for k, v in ds.attrs.items()}
+            secs: np.ndarray | None = None
+            ref: pd.Timestamp | None = None
+            if time_spec["raw"] in ds.variables:
+                tvar = ds.variables[time_spec["raw"]]
+                factor, ref = parse_time_units(
+                    tvar.attrs.get("units", time_spec.get("units")),
+                    case=case,
+                    file=str(path),
+                    variable=time_spec["raw"],
+                )
+                secs = np.asarray(tvar.values, dtype=np.float64).reshape(-1) * factor
+                if secs.size > 1 and np.any(np.diff(secs) <= 0):
+                    bad = int(np.argmax(np.diff(secs) <= 0))
+                    raise TimeAxisError(
+                        f"time is not strictly increasing within the file (index {bad}: "
+                        f"{secs[bad]} s, index {bad + 1}: {secs[bad + 1]} s)",
+                        case=case,
+                        file=str(path),
+                        variable=time_spec["raw"],
+                        hint="remove or reorder the duplicated output times",
+                    )
+                kind = "date" if ref is not None else "duration"
+                if origin_kind is None:
+                    origin_kind = kind
+                elif origin_kind != kind:
+                    raise TimeAxisError(
+                        "files mix calendar time units ('since DATE') with plain durations",
+                        case=case,
+                        file=str(path),
+                        variable=time_spec["raw"],
+                    )
+                if ref is not None and (origin is None or ref < origin):
+                    origin = ref
+            per_file_times.append((secs if secs is not None else np.empty(0), ref))
+            # grid
+            fgrid = _read_grid(ds, varmap, case=case, file=str(path))
+            if fgrid is not None:
+                if grid is None:
+                    grid, grid_file = fgrid, str(path)
+                else:
+                    _same_grid(grid, fgrid, case=case, file=str(path), ref_file=grid_file)
+            for name, spec in varmap.variables.items():
+                if spec.raw not in ds.variables:
+                    continue
+                dims = tuple(map(str, ds.variables[spec.raw].dims))
+                if dims != spec.dims:
+                    missing = [d for d in spec.dims if d not in dims]
+                    raise ConfigError(
+                        f"variable map says {spec.raw!r} has dims {list(spec.dims)} but the file "
+                        f"has {list(dims)}" + (f" (the file lacks {missing})" if missing else ""),
+                        case=case,
+                        file=str(path),
+                        variable=spec.raw,
+                        hint="fix 'dims:' of this variable in the variable map",
+                    )
+                if time_dim in dims:
+                    if secs is None:
+                        raise InputError(
+                            f"has a time dimension but the file has no time coordinate "
+                            f"{time_spec['raw']!r}",
+                            case=case,
+                            file=str(path),
+                            variable=spec.raw,
+                        )
+                    entries[name].extend((0.0, fi, k) for k in range(len(secs)))
+                else:
+                    static.setdefault(name, fi)
+        # convert per-file times to seconds since the common origin
+        for name in entries:
+            fixed = []
+            for _, fi, k in entries[name]:
+                secs, ref = per_file_times[fi]
+                shift = (ref - origin).total_seconds() if ref is not None and origin else 0.0
+                fixed.append((float(secs[k] + shift), fi, k))
+            entries[name] = fixed
+    finally:
+        for ds in opened:
+            ds.close()
+    if grid is None:
+        raise InputError(
+            "no file holds the grid coordinates named in the variable map",
+            case=case,
+            file=str(files[0]),
+            hint="fix 'coords:' in the variable map",
+        )
+    missing = [
+        f"{n} (raw {varmap.variables[n].raw!r})"
+        for n in varmap.variables
+        if not entries[n] and n not in static
+    ]
+    if missing:
+        raise InputError(
+            f"variable(s) {', '.join(missing)} are in none of the {len(files)} raw files",
+            case=case,
+            file=str(files[0].parent),
+            hint="check the variable map's 'raw:' names against the files (lesprep inspect)",
+        )
+    times: np.ndarray | None = None
+    where: dict[str, list[tuple[int, int]]] = {}
+    for name, items in entries.items():
+        if name in static and not items:
+            continue
+        items.sort()
+        t = np.array([it[0] for it in items])
+        dup = np.nonzero(np.diff(t) <= 1e-6 * max(1.0, float(np.abs(t).max())))[0]
+        if dup.size:
+            a, b = items[dup[0]], items[dup[0] + 1]
+            raise TimeAxisError(
+                f"output time {t[dup[0]]:g} s appears in two files "
+                f"({files[a[1]].name} and {files[b[1]].name}): duplicate or overlapping time steps",
+                case=case,
+                file=str(files[b[1]]),
+                variable=varmap.variables[name].raw,
+                hint="remove the duplicate file or the restart overlap from the archive",
+            )
+        if times is None:
+            times = t
+        elif t.shape != times.shape or not np.allclose(t, times, rtol=0, atol=1e-3):
+            extra = sorted(set(np.round(t, 3)) ^ set(np.round(times, 3)))[:5]
+            raise TimeAxisError(
+                f"{name!r} (raw {varmap.variables[name].raw!r}) has {t.size} output times but "
+                f"other variables have {times.size}; times not shared: {extra} s",
+                case=case,
+                file=str(files[0].parent),
+                variable=varmap.variables[name].raw,
+                hint="every time-dependent variable must be present at every output time",
+            )
+        where[name] = [(fi, k) for _, fi, k in items]
+    assert times is not None
+    for name, fi in static.items():
+        if name not in where:
+            where[name] = [(fi, -1)]
+    return Catalogue(
+        case=case,
+        files=list(files),
+        varmap=varmap,
+        times=times,
+        origin=origin.isoformat() if origin is not None else "start of run",
+        where=where,
+        grid=grid,
+        attrs=attrs,
+        warnings=notes,
+    )
+
+
+def _read_grid(ds: xr.Dataset, varmap: VariableMap, *, case: str, file: str) -> RawGrid | None:
+    specs = varmap.coords
+    if not all(specs[a]["raw"] in ds.variables for a in ("x", "y", "z")):
+        return None
+    vals = {a: _coord_values(ds, specs[a], axis=a, case=case, file=file) for a in ("x", "y", "z")}
+    zf = zb = None
+    if "z_face" in specs and specs["z_face"]["raw"] in ds.variables:
+        zf = _coord_values(ds, specs["z_face"], axis="z_face", case=case, file=file)
+    if "z_bounds" in specs and specs["z_bounds"]["raw"] in ds.variables:
+        bspec = dict(specs["z_bounds"])
+        if "units" not in bspec and "units" not in ds.variables[bspec["raw"]].attrs:
+            bspec["units"] = str(ds.variables[specs["z"]["raw"]].attrs.get("units", "m"))
+        zb = _coord_values(ds, bspec, axis="z_bounds", case=case, file=file)
+    return RawGrid(x=vals["x"], y=vals["y"], z=vals["z"], z_face=zf, z_bounds=zb)
+
+
+def _same_grid(a: RawGrid, b: RawGrid, *, case: str, file: str, ref_file: str) -> None:
+    for axis in ("x", "y", "z"):
+        va, vb = getattr(a, axis), getattr(b, axis)
+        if va.shape != vb.shape or not np.allclose(va, vb, rtol=1e-6, atol=1e-6):
+            raise GridError(
+                f"axis {axis} differs from the one in {ref_file} "
+                f"({va.size} points {va[0]:g}..{va[-1]:g} m vs {vb.size} points "
+                f"{vb[0]:g}..{vb[-1]:g} m): files of one case on different grids",
+                case=case,
+                file=file,
+                hint="a case's files must share one grid; split them into separate cases",
+            )
+
+
+def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, str, str | None]:
+    """Read one canonical variable's raw values at one output time.
+
+    Returns
+    -------
+    values, file, units
+        The raw array (float64, raw dim order without the time dim), the file it came
+        from and its ``units`` attribute (None if missing).
+    """
+    spec = cat.varmap.variables[name]
+    locs = cat.where[name]
+    fi, k = locs[0] if len(locs) == 1 and locs[0][1] == -1 else locs[time_index]
+    path = cat.files[fi]
+    ds = open_raw(path, case=cat.case)
+    try:
+        var = ds.variables[spec.raw]
+        time_dim = cat.varmap.raw_dim("time")
+        if k >= 0:
+            var = var[{time_dim: k}]
+        values = np.asarray(var.values, dtype=np.float64)
+        units = var.attrs.get("units")
+    except Exception as exc:
+        raise InputError(
+            f"cannot read values ({type(exc).__name__}: {exc})",
+            case=cat.case,
+            file=str(path),
+            variable=spec.raw,
+            hint="the file may be truncated or corrupt",
+        ) from None
+    finally:
+        ds.close()
+    return values, str(path), units

@@ -1,0 +1,164 @@
+"""Classical relative-humidity cloud-fraction baseline and its error metrics.
+
+The baseline is the diagnostic scheme of Sundqvist et al. (1989): cloud fraction grows
+from zero at a critical relative humidity ``RHc`` to one at saturation,
+
+    C = 1 - sqrt((1 - RH) / (1 - RHc))   for RH > RHc,   C = 0 otherwise,
+
+capped to [0, 1], so supersaturated air (RH >= 1) gives C = 1.
+
+Conventions
+-----------
+* RH is a fraction (1 = saturated), not percent, as elsewhere in lesprep.
+* The default ``rh_critical = 0.8`` is common practice; operational models use values
+  roughly between 0.6 and 0.9 that often depend on height and on grid resolution (from
+  memory). ``rh_critical`` must lie in [0, 1).
+* NaN relative humidity gives NaN cloud fraction.
+* Error metrics are computed in float64 over the pairs where neither value is NaN.
+"""
+
+from __future__ import annotations
+
+from typing import Any, overload
+
+import numpy as np
+import xarray as xr
+from numpy.typing import ArrayLike, NDArray
+
+from lesprep.errors import ConfigError, GridError, NonFiniteError
+
+__all__ = ["baseline_errors", "sundqvist_cloud_fraction"]
+
+CLOUD_FRACTION_ATTRS: dict[str, str] = {
+    "standard_name": "cloud_area_fraction_in_atmosphere_layer",
+    "units": "1",
+    "long_name": "cloud fraction diagnosed from relative humidity (Sundqvist et al. 1989)",
+}
+"""CF attributes put on a DataArray result of :func:`sundqvist_cloud_fraction`."""
+
+
+def _check_rh_critical(rh_critical: float) -> float:
+    if isinstance(rh_critical, bool):
+        value = float("nan")
+    else:
+        try:
+            value = float(rh_critical)
+        except (TypeError, ValueError):
+            value = float("nan")
+    if not (0.0 <= value < 1.0):
+        raise ConfigError(
+            f"rh_critical is {rh_critical!r}; expected a fraction in [0, 1)",
+            variable="rh_critical",
+            hint="give the critical relative humidity as a fraction, e.g. 0.8 (not percent)",
+        )
+    return value
+
+
+@overload
+def sundqvist_cloud_fraction(rh: xr.DataArray, rh_critical: float = ...) -> xr.DataArray: ...
+@overload
+def sundqvist_cloud_fraction(rh: ArrayLike, rh_critical: float = ...) -> NDArray[np.float64]: ...
+
+
+def sundqvist_cloud_fraction(rh: ArrayLike | xr.DataArray, rh_critical: float = 0.8) -> Any:
+    """Cloud fraction from relative humidity after Sundqvist et al. (1989).
+
+    Parameters
+    ----------
+    rh
+        Relative humidity as a fraction (1 = saturated). A NumPy array or anything
+        array-like; an :class:`xarray.DataArray` or a dask array is kept lazy and its
+        type is kept.
+    rh_critical
+        Critical relative humidity ``RHc`` in [0, 1) below which no cloud forms;
+        0.8 by default (common practice).
+
+    Returns
+    -------
+    numpy.ndarray or xarray.DataArray or dask.array.Array
+        Cloud fraction in [0, 1], float64, the same shape (and, for a DataArray or dask
+        array, the same type) as ``rh``. A DataArray result is named ``cloud_fraction``
+        and carries CF attributes (``units = "1"``). NaN where ``rh`` is NaN.
+
+    Raises
+    ------
+    ConfigError
+        If ``rh_critical`` is not in [0, 1).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> sundqvist_cloud_fraction(np.array([0.5, 0.8, 0.9, 1.02])).round(6).tolist()
+    [0.0, 0.0, 0.292893, 1.0]
+    """
+    rhc = _check_rh_critical(rh_critical)
+    if isinstance(rh, xr.DataArray) or hasattr(rh, "__dask_graph__"):
+        values = rh.astype(np.float64)  # type: ignore[union-attr]
+    else:
+        values = np.asarray(rh, dtype=np.float64)
+    # Clipping RH to [RHc, 1] gives C = 0 at and below RHc and C = 1 at and above
+    # saturation without a branch; np.maximum/np.minimum propagate NaN.
+    capped = np.minimum(np.maximum(values, rhc), 1.0)
+    fraction = 1.0 - np.sqrt((1.0 - capped) / (1.0 - rhc))
+    fraction = np.minimum(np.maximum(fraction, 0.0), 1.0)
+    if isinstance(fraction, xr.DataArray):
+        fraction = fraction.rename("cloud_fraction")
+        fraction.attrs = dict(CLOUD_FRACTION_ATTRS)
+        fraction.attrs["rh_critical"] = rhc
+    return fraction
+
+
+def baseline_errors(predicted: ArrayLike, target: ArrayLike) -> dict[str, float]:
+    """Error of a prediction against a target, over the pairs without NaN.
+
+    Parameters
+    ----------
+    predicted, target
+        Arrays of the same shape (DataArrays and dask arrays are loaded). A pair is
+        skipped when either value is NaN.
+
+    Returns
+    -------
+    dict
+        ``rmse = sqrt(mean((p - t)**2))``, ``bias = mean(p - t)`` (positive when the
+        prediction is too high), ``mae = mean(|p - t|)``, all float64 over the kept
+        pairs, and ``n``, the number of kept pairs (an int). With no pair left the three
+        metrics are NaN and ``n`` is 0.
+
+    Raises
+    ------
+    GridError
+        If the shapes differ.
+    NonFiniteError
+        If a value is infinite.
+
+    Examples
+    --------
+    >>> errors = baseline_errors([0.1, 0.5, float("nan")], [0.2, 0.2, 0.3])
+    >>> {key: round(value, 6) for key, value in errors.items()}
+    {'rmse': 0.223607, 'bias': 0.1, 'mae': 0.2, 'n': 2}
+    """
+    p = np.asarray(predicted, dtype=np.float64)
+    t = np.asarray(target, dtype=np.float64)
+    if p.shape != t.shape:
+        raise GridError(
+            f"predicted has shape {p.shape} and target has shape {t.shape}; "
+            "expected the same shape",
+        )
+    if np.any(np.isinf(p)) or np.any(np.isinf(t)):
+        raise NonFiniteError(
+            "predicted or target holds infinite values; expected finite values or NaN",
+            hint="mask invalid points as NaN to leave them out",
+        )
+    keep = ~(np.isnan(p) | np.isnan(t))
+    n = int(np.count_nonzero(keep))
+    if n == 0:
+        nan = float("nan")
+        return {"rmse": nan, "bias": nan, "mae": nan, "n": 0}
+    diff = p[keep] - t[keep]
+    return {
+        "rmse": float(np.sqrt(np.mean(diff**2))),
+        "bias": float(np.mean(diff)),
+        "mae": float(np.mean(np.abs(diff))),
+        "n": n,
+    }

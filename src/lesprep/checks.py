@@ -1,0 +1,103 @@
+"""Value checks after unit conversion: finiteness and plausibility ranges.
+
+The plausibility ranges are common practice for boundary-layer LES, not physical laws;
+they exist to catch mislabelled units (g/kg stored under a ``kg kg-1`` label gives cloud
+water of order 1) and garbage. The config may override any of them.
+
+============  ===================  ==========================================
+variable      default range        why
+============  ===================  ==========================================
+qc            [0, 0.02] kg kg-1     no boundary-layer cloud holds 20 g/kg
+qv            [0, 0.05] kg kg-1     50 g/kg exceeds saturation at 40 degC
+T             [150, 340] K          coldest tropopause to hottest surface
+p             [1e4, 1.1e5] Pa       100 hPa to the highest sea-level pressure
+w             [-60, 60] m s-1       strongest convective updrafts stay below
+============  ===================  ==========================================
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .errors import NonFiniteError, RangeError
+
+DEFAULT_RANGES: dict[str, tuple[float, float]] = {
+    "qc": (0.0, 0.02),
+    "qv": (0.0, 0.05),
+    "T": (150.0, 340.0),
+    "p": (1.0e4, 1.1e5),
+    "w": (-60.0, 60.0),
+}
+
+
+def resolve_ranges(
+    overrides: Mapping[str, Sequence[float]] | None,
+) -> dict[str, tuple[float, float]]:
+    """Default ranges updated with the config's overrides."""
+    out = dict(DEFAULT_RANGES)
+    for k, v in (overrides or {}).items():
+        out[k] = (float(v[0]), float(v[1]))
+    return out
+
+
+def check_finite(
+    values: NDArray[np.floating],
+    *,
+    variable: str,
+    case: str,
+    file: str,
+    dims: Sequence[str],
+    time: float | None = None,
+) -> None:
+    """Raise NonFiniteError with the count and first location of NaN/Inf values."""
+    bad = ~np.isfinite(values)
+    if not bad.any():
+        return
+    first = np.unravel_index(int(np.argmax(bad)), values.shape)
+    loc = ", ".join(f"{d}={i}" for d, i in zip(dims, first, strict=True))
+    when = f" at time {time:g} s" if time is not None else ""
+    raise NonFiniteError(
+        f"{int(bad.sum())} NaN/Inf value(s){when}; first at index ({loc})",
+        case=case,
+        file=file,
+        variable=variable,
+        hint="repair or remove the output time; lesprep does not fill missing values",
+    )
+
+
+def check_range(
+    values: NDArray[np.floating],
+    *,
+    name: str,
+    bounds: tuple[float, float],
+    units: str,
+    case: str,
+    file: str,
+    raw_variable: str,
+    raw_units: str,
+    time: float | None = None,
+) -> None:
+    """Raise RangeError if converted values fall outside the plausible range."""
+    lo, hi = bounds
+    vmin, vmax = float(values.min()), float(values.max())
+    if vmin >= lo and vmax <= hi:
+        return
+    when = f" at time {time:g} s" if time is not None else ""
+    hint = "check the units attribute"
+    if name in ("qc", "qv") and vmax > hi and vmax < 1000 * hi:
+        hint = (
+            f"values look like g/kg labelled {raw_units!r}; fix the units attribute or "
+            "declare the right units in the variable map"
+        )
+    raise RangeError(
+        f"canonical {name} spans [{vmin:.6g}, {vmax:.6g}] {units}{when} after converting from "
+        f"{raw_units!r}; expected within [{lo:g}, {hi:g}] {units} (plausibility range, "
+        "common practice; override in config ingest.plausible_ranges)",
+        case=case,
+        file=file,
+        variable=raw_variable,
+        hint=hint,
+    )

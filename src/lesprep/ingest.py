@@ -1,0 +1,490 @@
+"""Ingest: one case's raw archive -> its canonical Zarr store.
+
+The canonical store has dims ``(time, z, y, x)``, variables in canonical units with CF
+attributes, w at cell centres, the spin-up dropped, and the fine-grid derived fields
+``rh``, ``cloud_mask`` and ``lwp``. It is written one output time at a time (memory is
+bounded by one time step, not by the run length), into a temporary sibling that is
+renamed into place when complete.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import xarray as xr
+import zarr
+
+from . import provenance, thermo
+from .archive import Catalogue, catalogue, read_field, resolve_files
+from .checks import check_finite, check_range, resolve_ranges
+from .errors import TimeAxisError
+from .grid import (
+    destagger_periodic,
+    destagger_vertical,
+    horizontal_spacing,
+    layer_thickness,
+    vertical_faces,
+)
+from .mask import cloud_mask
+from .store import atomic_path, compressors, consolidate
+from .units import Conversion, conversion, parse_quantity
+from .varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
+
+log = logging.getLogger(__name__)
+
+CF_ATTRS: dict[str, dict[str, str]] = {
+    "qc": {
+        "standard_name": "cloud_liquid_water_mixing_ratio",
+        "long_name": "cloud liquid water mixing ratio",
+        "units": "kg kg-1",
+    },
+    "qv": {
+        "standard_name": "humidity_mixing_ratio",
+        "long_name": "water vapour mixing ratio",
+        "units": "kg kg-1",
+    },
+    "T": {"standard_name": "air_temperature", "long_name": "air temperature", "units": "K"},
+    "p": {"standard_name": "air_pressure", "long_name": "air pressure", "units": "Pa"},
+    "w": {
+        "standard_name": "upward_air_velocity",
+        "long_name": "vertical velocity at cell centres",
+        "units": "m s-1",
+    },
+    "rh": {
+        "standard_name": "relative_humidity",
+        "long_name": "relative humidity over liquid water (e/e_s, Bolton 1980)",
+        "units": "1",
+    },
+    "cloud_mask": {
+        "long_name": "cloudy cell (qc > threshold)",
+        "flag_values": "0 1",
+        "flag_meanings": "clear cloudy",
+        "units": "1",
+    },
+    "lwp": {
+        "standard_name": "atmosphere_mass_content_of_cloud_liquid_water",
+        "long_name": "liquid water path",
+        "units": "kg m-2",
+    },
+}
+FIELDS_3D = ("qc", "qv", "T", "w", "rh", "cloud_mask")
+
+
+@dataclass(frozen=True, kw_only=True)
+class IngestSettings:
+    """Resolved ingest settings of one case."""
+
+    spinup: str
+    cloud_threshold: str
+    ranges: dict[str, tuple[float, float]] = field(default_factory=dict)
+    dtype: str = "float32"
+    chunk_mib: float = 32.0
+    store: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def spinup_s(self) -> float:
+        """Spin-up in seconds."""
+        return parse_quantity(self.spinup, "s", name="spinup")
+
+    @property
+    def threshold(self) -> float:
+        """Cloud threshold in kg kg-1."""
+        return parse_quantity(self.cloud_threshold, "kg kg-1", name="cloud_threshold")
+
+    def to_dict(self) -> dict[str, Any]:
+        """Record for provenance."""
+        d = asdict(self)
+        d["spinup_s"] = self.spinup_s
+        d["cloud_threshold_kg_per_kg"] = self.threshold
+        return d
+
+
+def settings_from_config(cfg: dict[str, Any], case_spinup: str = "") -> IngestSettings:
+    """Ingest settings from a validated config and the case sheet's optional spin-up."""
+    ing = cfg["ingest"]
+    return IngestSettings(
+        spinup=case_spinup or ing["spinup"],
+        cloud_threshold=ing["cloud_threshold"],
+        ranges=resolve_ranges(ing.get("plausible_ranges")),
+        dtype=ing.get("dtype", "float32"),
+        chunk_mib=float(ing.get("chunk_mib", 32)),
+        store=dict(cfg.get("store", {})),
+    )
+
+
+def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
+    """Indices of the output times kept after dropping the spin-up.
+
+    Times earlier than ``first + spinup`` are dropped. A spin-up at or beyond the end of
+    the run (nothing, or only the very last time, would be left by a spin-up longer than
+    the run) is an error.
+    """
+    t0, t1 = float(times[0]), float(times[-1])
+    if spinup_s < 0:
+        raise TimeAxisError(f"spin-up is negative ({spinup_s:g} s)", case=case)
+    if spinup_s >= t1 - t0 and spinup_s > 0:
+        raise TimeAxisError(
+            f"spin-up of {spinup_s:g} s is at or beyond the end of the run (output times "
+            f"span {t1 - t0:g} s from {t0:g} s to {t1:g} s); nothing would remain",
+            case=case,
+            hint="shorten 'spinup' for this case in the case sheet or the config",
+        )
+    tol = 1e-6 * max(1.0, abs(t1))
+    return np.nonzero(times >= t0 + spinup_s - tol)[0]
+
+
+@dataclass
+class _ConversionLog:
+    items: dict[tuple[str, str, str], Conversion] = field(default_factory=dict)
+
+    def get(
+        self,
+        *,
+        name: str,
+        raw: str,
+        found: str | None,
+        spec_units: str | None,
+        expected: str,
+        case: str,
+        file: str,
+    ) -> Conversion:
+        key = (name, str(found), str(spec_units))
+        if key not in self.items:
+            self.items[key] = conversion(
+                variable=name,
+                raw_variable=raw,
+                found=found,
+                expected=expected,
+                assumed=spec_units,
+                case=case,
+                file=file,
+            )
+        return self.items[key]
+
+    def records(self) -> list[dict[str, Any]]:
+        return [c.to_dict() for c in self.items.values()]
+
+
+def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.ndarray, list[str]]:
+    """Drop time (already selected) and transpose to (z, y, x) order."""
+    axes = tuple(a for a in axes if a != "time")
+    order = sorted(range(len(axes)), key=lambda i: "zyx".index(axes[i][0]))
+    return np.transpose(values, order), [axes[i] for i in order]
+
+
+def canonical_step(
+    cat: Catalogue,
+    time_index: int,
+    *,
+    faces: np.ndarray,
+    settings: IngestSettings,
+    conversions: _ConversionLog,
+) -> dict[str, np.ndarray]:
+    """Canonical float64 fields of one output time, checked and derived.
+
+    Returns ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask`` (bool), ``lwp`` (y, x) and
+    ``p`` as (z, y, x) or, for a profile, (z,).
+    """
+    vm: VariableMap = cat.varmap
+    t = float(cat.times[time_index])
+    z = cat.grid.z
+    out: dict[str, np.ndarray] = {}
+    files: dict[str, str] = {}
+    for name in ("p", "qc", "qv", "T", "w"):
+        spec = vm.variables[name]
+        raw, file, units = read_field(cat, name, time_index)
+        files[name] = file
+        axes = tuple(a for a in spec.axes(vm.dims) if a != "time")
+        raw_dims = [d for d in spec.dims if vm.dims[d] != "time"]
+        check_finite(raw, variable=spec.raw, case=cat.case, file=file, dims=raw_dims, time=t)
+        target = QUANTITY_UNITS.get(spec.quantity, CANONICAL_UNITS[name])
+        conv = conversions.get(
+            name=name,
+            raw=spec.raw,
+            found=units,
+            spec_units=spec.units,
+            expected=target,
+            case=cat.case,
+            file=file,
+        )
+        values = np.asarray(conv.apply(raw), dtype=np.float64)
+        values, cax = _to_canonical_axes(values, axes)
+        for i, a in enumerate(cax):
+            if a == "z_face":
+                values = destagger_vertical(values, faces, z, axis=i)
+            elif a in ("y_face", "x_face"):
+                values = destagger_periodic(values, axis=i)
+        if spec.quantity == "specific_humidity":
+            values = thermo.mixing_ratio_from_specific_humidity(values)
+        elif spec.quantity == "potential_temperature":
+            p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
+            values = thermo.temperature_from_potential_temperature(values, p)
+        out[name] = values
+    for name in ("p", "qc", "qv", "T", "w"):
+        spec = vm.variables[name]
+        check_range(
+            out[name],
+            name=name,
+            bounds=settings.ranges[name],
+            units=CANONICAL_UNITS[name],
+            case=cat.case,
+            file=files[name],
+            raw_variable=spec.raw,
+            raw_units=str(
+                conversions.items
+                and next((c.from_units for k, c in conversions.items.items() if k[0] == name), "?")
+            ),
+            time=t,
+        )
+    p3 = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
+    out["rh"] = thermo.relative_humidity(p3, out["T"], out["qv"])
+    out["cloud_mask"] = cloud_mask(out["qc"], settings.threshold)
+    rho = thermo.air_density(p3, out["T"], out["qv"])
+    out["lwp"] = np.tensordot(layer_thickness(faces), out["qc"] * rho, axes=(0, 0))
+    return out
+
+
+def _z_chunk(nz: int, ny: int, nx: int, itemsize: int, chunk_mib: float) -> int:
+    per_level = ny * nx * itemsize
+    return int(max(1, min(nz, (chunk_mib * 2**20) // per_level)))
+
+
+def _template(
+    cat: Catalogue,
+    keep: np.ndarray,
+    faces: np.ndarray,
+    dx: float,
+    settings: IngestSettings,
+    p_profile: bool,
+) -> tuple[xr.Dataset, dict[str, Any]]:
+    nt, nz, ny, nx = keep.size, cat.grid.z.size, cat.grid.y.size, cat.grid.x.size
+    dtype = np.dtype(settings.dtype)
+    zc = _z_chunk(nz, ny, nx, dtype.itemsize, settings.chunk_mib)
+    comp = compressors(settings.store)
+    data_vars: dict[str, Any] = {}
+    encoding: dict[str, Any] = {}
+    for name in FIELDS_3D:
+        dt = np.dtype("int8") if name == "cloud_mask" else dtype
+        data_vars[name] = (
+            ("time", "z", "y", "x"),
+            da.zeros((nt, nz, ny, nx), dtype=dt, chunks=(1, zc, ny, nx)),
+            dict(CF_ATTRS[name]),
+        )
+        encoding[name] = {"chunks": (1, zc, ny, nx), "compressors": comp}
+        if name in ("qc", "cloud_mask"):
+            encoding[name]["fill_value"] = 0 if name == "cloud_mask" else 0.0
+    if p_profile:
+        data_vars["p"] = (
+            ("z",),
+            da.zeros((nz,), dtype=dtype, chunks=(nz,)),
+            {
+                **CF_ATTRS["p"],
+                "comment": "1-D reference profile p(z); broadcast over (time, y, x) when used",
+            },
+        )
+        encoding["p"] = {"chunks": (nz,), "compressors": comp}
+    else:
+        data_vars["p"] = (
+            ("time", "z", "y", "x"),
+            da.zeros((nt, nz, ny, nx), dtype=dtype, chunks=(1, zc, ny, nx)),
+            dict(CF_ATTRS["p"]),
+        )
+        encoding["p"] = {"chunks": (1, zc, ny, nx), "compressors": comp}
+    data_vars["lwp"] = (
+        ("time", "y", "x"),
+        da.zeros((nt, ny, nx), dtype=dtype, chunks=(1, ny, nx)),
+        dict(CF_ATTRS["lwp"]),
+    )
+    encoding["lwp"] = {"chunks": (1, ny, nx), "compressors": comp}
+    z = cat.grid.z
+    coords = {
+        "time": (
+            "time",
+            cat.times[keep].astype(np.float64),
+            {
+                "units": "s",
+                "long_name": "time since the time origin",
+                "time_origin": cat.origin,
+                "axis": "T",
+            },
+        ),
+        "z": (
+            "z",
+            z,
+            {
+                "units": "m",
+                "standard_name": "height",
+                "long_name": "height of cell centres above the surface",
+                "positive": "up",
+                "axis": "Z",
+                "bounds": "z_bounds",
+            },
+        ),
+        "y": ("y", cat.grid.y, {"units": "m", "long_name": "y of cell centres", "axis": "Y"}),
+        "x": ("x", cat.grid.x, {"units": "m", "long_name": "x of cell centres", "axis": "X"}),
+    }
+    data_vars["z_bounds"] = (
+        ("z", "nv"),
+        np.stack([faces[:-1], faces[1:]], axis=1),
+        {"units": "m", "long_name": "cell bounds in height"},
+    )
+    encoding["time"] = {"dtype": "float64", "chunks": (nt,)}
+    ds = xr.Dataset(data_vars, coords=coords)
+    return ds, encoding
+
+
+def ingest_case(
+    *,
+    case: str,
+    raw: str | list[Path],
+    varmap: str | Path | VariableMap,
+    settings: IngestSettings,
+    out: str | Path,
+    regime: str = "",
+    config_record: dict[str, Any] | None = None,
+) -> Path:
+    """Ingest one case's raw archive into ``out`` (a canonical Zarr store).
+
+    Parameters
+    ----------
+    case
+        Case id.
+    raw
+        Glob of the raw files, or the list of files.
+    varmap
+        Variable map (path or parsed).
+    settings
+        Resolved ingest settings.
+    out
+        Path of the canonical store to create (replaced atomically).
+    regime
+        Regime tag (recorded in attrs).
+    config_record
+        The resolved config to hash into provenance.
+
+    Returns
+    -------
+    pathlib.Path
+        ``out``.
+
+    Raises
+    ------
+    lesprep.errors.InputError
+        Any problem with the archive; nothing is left at ``out``.
+    """
+    vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
+    files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
+    cat = catalogue(files, vm, case=case)
+    dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
+    faces = vertical_faces(
+        cat.grid.z, z_face=cat.grid.z_face, z_bounds=cat.grid.z_bounds, case=case
+    )
+    keep = kept_times(cat.times, settings.spinup_s, case=case)
+    dropped = [float(t) for t in np.delete(cat.times, keep)]
+    p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
+    conversions = _ConversionLog()
+    dtype = np.dtype(settings.dtype)
+    ds, encoding = _template(cat, keep, faces, dx, settings, p_profile)
+    out = Path(out)
+    raw_records = [provenance.file_record(f) for f in files]
+    with atomic_path(out) as tmp:
+        ds.to_zarr(
+            tmp, mode="w-", compute=False, zarr_format=3, consolidated=False, encoding=encoding
+        )
+        group = zarr.open_group(str(tmp), mode="r+")
+        for j, ti in enumerate(keep):
+            fields = canonical_step(
+                cat, int(ti), faces=faces, settings=settings, conversions=conversions
+            )
+            for name in FIELDS_3D:
+                arr = fields[name]
+                group[name][j] = arr.astype("int8" if name == "cloud_mask" else dtype)
+            group["lwp"][j] = fields["lwp"].astype(dtype)
+            if p_profile:
+                if j == 0:
+                    group["p"][:] = fields["p"].astype(dtype)
+            else:
+                group["p"][j] = fields["p"].astype(dtype)
+        conv_records = conversions.records()
+        for name, spec in vm.variables.items():
+            if spec.quantity == "specific_humidity":
+                conv_records.append(
+                    {
+                        "variable": name,
+                        "raw_variable": spec.raw,
+                        "operation": "mixing ratio r = q / (1 - q) from specific humidity q",
+                    }
+                )
+            elif spec.quantity == "potential_temperature":
+                conv_records.append(
+                    {
+                        "variable": name,
+                        "raw_variable": spec.raw,
+                        "operation": "T = theta * (p / 1000 hPa) ** (Rd/cp), "
+                        f"Rd/cp = {thermo.KAPPA:.6f}",
+                    }
+                )
+            if spec.staggered(vm.dims):
+                conv_records.append(
+                    {
+                        "variable": name,
+                        "raw_variable": spec.raw,
+                        "operation": "interpolated linearly in height from cell "
+                        "faces to cell centres",
+                    }
+                )
+        step = provenance.new_step(
+            "ingest",
+            case=case,
+            regime=regime,
+            raw_files=raw_records,
+            variable_map=vm.to_dict(),
+            conversions=conv_records,
+            times_dropped_s=dropped,
+            times_kept=int(keep.size),
+            time_origin=cat.origin,
+            settings=settings.to_dict(),
+            saturation_formula=thermo.SATURATION_FORMULA,
+            config_sha256=provenance_config_hash(config_record),
+            config=config_record,
+        )
+        attrs = provenance.extend(
+            {
+                "Conventions": "CF-1.12, ACDD-1.3",
+                "title": f"lesprep canonical fields of case {case}",
+                "summary": "Fine-grid LES fields in canonical names, units and grid, spin-up "
+                "removed, with derived relative humidity, cloud mask and liquid water path.",
+                "source": cat.attrs.get("source", "unknown LES output"),
+                "references": "Bolton (1980), Mon. Wea. Rev. 108, 1046-1053 (saturation "
+                "vapour pressure)",
+                "case": case,
+                "regime": regime,
+                "dx": dx,
+                "dy": dx,
+                "cloud_threshold": settings.threshold,
+                "spinup_s": settings.spinup_s,
+                "time_origin": cat.origin,
+            },
+            step,
+            f"ingested {len(files)} raw file(s) of case {case}; kept {keep.size} of "
+            f"{cat.times.size} output times",
+        )
+        group.attrs.update(attrs)
+        consolidate(tmp)
+    log.info("case %s: wrote %s (%d times kept, %d dropped)", case, out, keep.size, len(dropped))
+    return out
+
+
+def provenance_config_hash(config_record: dict[str, Any] | None) -> str | None:
+    """sha256 of the resolved config, or None when there is none."""
+    if config_record is None:
+        return None
+    from .config import config_hash
+
+    return config_hash(json.loads(json.dumps(config_record, default=str)))

@@ -1,0 +1,146 @@
+"""Provenance: what went into a store, recorded in the store itself.
+
+Each store carries a root attribute ``lesprep_provenance`` (a JSON string) of the form::
+
+    {"format": 1, "steps": [ {"step": "ingest", ...}, {"step": "coarsen", ...} ]}
+
+A step records its inputs (raw files with size and sha256, upstream stores), the
+settings it used, a hash of the resolved config, the lesprep version and git commit,
+package versions and the UTC time. The CF ``history`` attribute gets one dated line per
+step.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import importlib.metadata
+import json
+import platform
+import subprocess
+import sys
+from functools import cache
+from pathlib import Path
+from typing import Any
+
+from . import __version__
+
+ATTR = "lesprep_provenance"
+PACKAGES = (
+    "numpy",
+    "xarray",
+    "zarr",
+    "dask",
+    "numcodecs",
+    "pint",
+    "cf-xarray",
+    "netCDF4",
+    "h5netcdf",
+    "scipy",
+    "numba",
+    "pandas",
+    "snakemake",
+)
+_SRC = Path(__file__).resolve().parent
+
+
+def utc_now() -> str:
+    """Current UTC time, ISO 8601 with a Z suffix, to the second."""
+    return _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+def sha256_file(path: str | Path, *, block: int = 1 << 22) -> str:
+    """sha256 of a file, streamed."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def file_record(path: str | Path) -> dict[str, Any]:
+    """Path, size, modification time and sha256 of one raw file."""
+    p = Path(path)
+    st = p.stat()
+    return {
+        "path": str(p),
+        "size": st.st_size,
+        "mtime": _dt.datetime.fromtimestamp(st.st_mtime, _dt.UTC).isoformat(),
+        "sha256": sha256_file(p),
+    }
+
+
+@cache
+def git_commit() -> str | None:
+    """Commit of the lesprep checkout (with ``-dirty`` if modified), or None."""
+    try:
+        out = subprocess.run(
+            ["git", "-C", str(_SRC), "describe", "--always", "--dirty", "--abbrev=40"],
+            capture_output=True,
+            text=True,
+            timeout=10,
+            check=True,
+        )
+        return out.stdout.strip() or None
+    except (OSError, subprocess.SubprocessError):
+        return None
+
+
+@cache
+def code_version() -> str:
+    """sha256 over lesprep's own source files: outputs depend on it (see the workflow)."""
+    h = hashlib.sha256()
+    for f in sorted(_SRC.rglob("*.py")):
+        h.update(f.relative_to(_SRC).as_posix().encode())
+        h.update(f.read_bytes())
+    return h.hexdigest()[:16]
+
+
+@cache
+def environment() -> dict[str, Any]:
+    """lesprep version, git commit, code hash, Python and package versions."""
+    versions = {}
+    for name in PACKAGES:
+        try:
+            versions[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            versions[name] = None
+    return {
+        "lesprep": __version__,
+        "git_commit": git_commit(),
+        "code_version": code_version(),
+        "python": sys.version.split()[0],
+        "platform": platform.platform(),
+        "packages": versions,
+    }
+
+
+def new_step(step: str, **fields: Any) -> dict[str, Any]:
+    """A provenance step record with the environment and the UTC time."""
+    return {"step": step, "created": utc_now(), "environment": environment(), **fields}
+
+
+def load(attrs: dict[str, Any]) -> dict[str, Any]:
+    """Parse the provenance of a store's root attrs (empty record if none)."""
+    text = attrs.get(ATTR)
+    if not text:
+        return {"format": 1, "steps": []}
+    return json.loads(text)
+
+
+def extend(attrs: dict[str, Any], step: dict[str, Any], summary: str) -> dict[str, Any]:
+    """New root attrs: upstream provenance plus ``step``, and one more history line."""
+    prov = load(attrs)
+    prov["steps"].append(step)
+    history = attrs.get("history", "")
+    line = f"{step['created']} lesprep {__version__} {step['step']}: {summary}"
+    out = {k: v for k, v in attrs.items() if k not in (ATTR, "history")}
+    out["history"] = (history + "\n" + line).strip()
+    out[ATTR] = json.dumps(prov, sort_keys=True, default=str)
+    out["date_created"] = step["created"]
+    return out
+
+
+def merge(upstream: list[dict[str, Any]]) -> dict[str, Any]:
+    """Provenance of a store built from several upstream stores (e.g. a training set)."""
+    return {"format": 1, "steps": [], "inputs": [load(a) for a in upstream]}

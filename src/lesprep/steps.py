@@ -1,0 +1,72 @@
+"""Entry points of the workflow's scripts: one function per rule.
+
+Each ``workflow/scripts/<step>.py`` calls :func:`run` with the Snakemake object; ``run``
+sends logging to the rule's log file, calls the step function with plain arguments
+taken from the job, and turns a :class:`lesprep.errors.LesprepError` into a one-line
+message on stderr and in the log, with a non-zero exit.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from .errors import LesprepError
+
+log = logging.getLogger("lesprep")
+
+
+def _demo(smk: Any) -> None:
+    from .demo import demo_case, write_demo_case
+
+    out = Path(smk.output[0])
+    spec = demo_case(smk.wildcards.case)
+    size = dict(smk.params.size or {})
+    if size:
+        spec = spec.with_size(**size)
+    write_demo_case(spec, out.parent)
+
+
+def _ingest(smk: Any) -> None:
+    from .ingest import ingest_case, settings_from_config
+
+    p = smk.params.settings
+    ingest_case(
+        case=p["case"],
+        raw=p["raw"],  # the case sheet's glob; for demo cases the rule's input is its folder
+        varmap=smk.input.varmap,
+        settings=settings_from_config(smk.config, p["spinup"]),
+        out=smk.output.store,
+        regime=p["regime"],
+        config_record=smk.config,
+    )
+
+
+STEPS: dict[str, Callable[[Any], None]] = {
+    "demo": _demo,
+    "ingest": _ingest,
+}
+
+
+def run(step: str, smk: Any) -> None:
+    """Run one workflow step for a Snakemake job (``smk`` is the ``snakemake`` object)."""
+    log_file = smk.log[0] if len(smk.log) else None
+    handlers: list[logging.Handler] = [logging.StreamHandler(sys.stderr)]
+    if log_file:
+        Path(log_file).parent.mkdir(parents=True, exist_ok=True)
+        handlers.append(logging.FileHandler(log_file, mode="w"))
+    logging.basicConfig(
+        level=logging.INFO,
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        handlers=handlers,
+        force=True,
+    )
+    try:
+        STEPS[step](smk)
+    except LesprepError as exc:
+        log.error("%s", exc)
+        print(f"lesprep {step} failed: {exc}", file=sys.stderr)
+        sys.exit(1)

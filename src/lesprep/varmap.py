@@ -1,0 +1,181 @@
+"""Variable maps: how one LES flavour's raw files provide the canonical variables.
+
+A variable map is a YAML file (one per LES flavour, named in the case sheet)::
+
+    flavour: alpha
+    dims: {time: time, zc: z, zf: z_face, y: y, x: x}
+    coords:
+      time: {raw: time}
+      z: {raw: zc}
+      z_face: {raw: zf}
+      y: {raw: y}
+      x: {raw: x}
+    variables:
+      qc: {raw: liq, dims: [time, zc, y, x]}
+      w:  {raw: wf, dims: [time, zf, y, x]}        # on faces: interpolated to centres
+      p:  {raw: pref, dims: [z]}                   # a 1-D profile p(z)
+      qv: {raw: sphum, dims: [time, x, y, z], quantity: specific_humidity}
+      T:  {raw: theta, dims: [time, x, y, z], quantity: potential_temperature}
+
+``dims`` maps each raw dimension to a canonical axis; an axis ending in ``_face`` marks
+a staggered dimension (one more point than the centres). ``units`` on a variable is an
+assumption used only when the file carries no units attribute.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .config import _schema, validate
+from .errors import ConfigError
+
+CANONICAL_UNITS: dict[str, str] = {
+    "qc": "kg kg-1",
+    "qv": "kg kg-1",
+    "T": "K",
+    "p": "Pa",
+    "w": "m s-1",
+}
+"""Canonical units of the ingested variables (UDUNITS spelling)."""
+
+QUANTITY_UNITS: dict[str, str] = {
+    "mixing_ratio": "kg kg-1",
+    "specific_humidity": "kg kg-1",
+    "temperature": "K",
+    "potential_temperature": "K",
+}
+
+ALLOWED_QUANTITIES: dict[str, tuple[str, ...]] = {
+    "qc": ("direct", "mixing_ratio"),
+    "qv": ("direct", "mixing_ratio", "specific_humidity"),
+    "T": ("direct", "temperature", "potential_temperature"),
+    "p": ("direct",),
+    "w": ("direct",),
+}
+
+
+@dataclass(frozen=True, kw_only=True)
+class VariableSpec:
+    """How one canonical variable is read from the raw files."""
+
+    name: str
+    raw: str
+    dims: tuple[str, ...]
+    units: str | None = None
+    quantity: str = "direct"
+
+    def axes(self, dim_roles: dict[str, str]) -> tuple[str, ...]:
+        """Canonical axes of the raw dims, in file order."""
+        return tuple(dim_roles[d] for d in self.dims)
+
+    def staggered(self, dim_roles: dict[str, str]) -> tuple[str, ...]:
+        """Axes on which this variable sits on cell faces (e.g. ``("z",)``)."""
+        return tuple(a[: -len("_face")] for a in self.axes(dim_roles) if a.endswith("_face"))
+
+
+@dataclass(frozen=True, kw_only=True)
+class VariableMap:
+    """A parsed, validated variable map."""
+
+    flavour: str
+    dims: dict[str, str]
+    coords: dict[str, dict[str, str]]
+    variables: dict[str, VariableSpec]
+    path: str = ""
+    sha256: str = ""
+    text: str = field(default="", repr=False)
+
+    def raw_dim(self, axis: str) -> str | None:
+        """Raw dimension name that holds a canonical axis (or None)."""
+        for raw, role in self.dims.items():
+            if role == axis:
+                return raw
+        return None
+
+    def to_dict(self) -> dict[str, Any]:
+        """Record for provenance: path, hash and the parsed content."""
+        return {
+            "path": self.path,
+            "sha256": self.sha256,
+            "flavour": self.flavour,
+            "content": yaml.safe_load(self.text) if self.text else None,
+        }
+
+
+def parse_varmap(text: str, *, path: str = "<string>") -> VariableMap:
+    """Parse and validate a variable map from YAML text.
+
+    Raises
+    ------
+    ConfigError
+        Schema violations, dims not declared in ``dims``, a quantity that does not fit
+        the canonical variable.
+    """
+    data = yaml.safe_load(text) or {}
+    validate(data, _schema("varmap.schema.yaml"), what=f"variable map {path}")
+    roles: dict[str, str] = dict(data["dims"])
+    for axis in ("time", "z", "y", "x"):
+        if axis not in roles.values():
+            raise ConfigError(
+                f"variable map {path}: no raw dimension is mapped to axis {axis!r}",
+                hint="add it under 'dims:'",
+            )
+    variables: dict[str, VariableSpec] = {}
+    for name, spec in data["variables"].items():
+        for d in spec["dims"]:
+            if d not in roles:
+                raise ConfigError(
+                    f"variable map {path}: variable {name!r} names dimension {d!r}, which is "
+                    f"not declared under 'dims:' (declared: {sorted(roles)})",
+                )
+        quantity = spec.get("quantity", "direct")
+        if quantity not in ALLOWED_QUANTITIES[name]:
+            raise ConfigError(
+                f"variable map {path}: quantity {quantity!r} does not fit {name!r}; "
+                f"allowed: {list(ALLOWED_QUANTITIES[name])}",
+            )
+        variables[name] = VariableSpec(
+            name=name,
+            raw=spec["raw"],
+            dims=tuple(spec["dims"]),
+            units=spec.get("units"),
+            quantity=quantity,
+        )
+        axes = variables[name].axes(roles)
+        base = [a.removesuffix("_face") for a in axes]
+        if len(set(base)) != len(base):
+            raise ConfigError(f"variable map {path}: {name!r} maps two dims to one axis: {axes}")
+        if name == "p":
+            if sorted(base) not in (["x", "y", "z"], ["time", "x", "y", "z"], ["z"]):
+                raise ConfigError(
+                    f"variable map {path}: p must be 3-D (optionally with time) or a 1-D "
+                    f"profile over z; found axes {axes}",
+                )
+        elif sorted(base) != ["time", "x", "y", "z"]:
+            raise ConfigError(
+                f"variable map {path}: {name!r} must have axes time, z, y, x; found {axes}",
+            )
+    return VariableMap(
+        flavour=data.get("flavour", ""),
+        dims=roles,
+        coords={k: dict(v) for k, v in data["coords"].items()},
+        variables=variables,
+        path=path,
+        sha256=hashlib.sha256(text.encode()).hexdigest(),
+        text=text,
+    )
+
+
+def load_varmap(path: str | Path) -> VariableMap:
+    """Read a variable map file (YAML, safe-loaded) and validate it."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"cannot read variable map {path}: {exc.strerror}") from None
+    return parse_varmap(text, path=str(path))

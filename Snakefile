@@ -12,6 +12,8 @@ configfile: "config/config.yaml"
 include: "workflow/rules/common.smk"
 include: "workflow/rules/demo.smk"
 include: "workflow/rules/ingest.smk"
+include: "workflow/rules/coarsen.smk"
+include: "workflow/rules/sets.smk"
 
 
 rule all:

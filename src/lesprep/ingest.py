@@ -9,16 +9,12 @@ renamed into place when complete.
 
 from __future__ import annotations
 
-import json
 import logging
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-import dask.array as da
 import numpy as np
-import xarray as xr
-import zarr
 
 from . import provenance, thermo
 from .archive import Catalogue, catalogue, read_field, resolve_files
@@ -32,7 +28,7 @@ from .grid import (
     vertical_faces,
 )
 from .mask import cloud_mask
-from .store import atomic_path, compressors, consolidate
+from .store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
 from .units import Conversion, conversion, parse_quantity
 from .varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
 
@@ -255,88 +251,102 @@ def _z_chunk(nz: int, ny: int, nx: int, itemsize: int, chunk_mib: float) -> int:
     return int(max(1, min(nz, (chunk_mib * 2**20) // per_level)))
 
 
-def _template(
+def _layout(
     cat: Catalogue,
     keep: np.ndarray,
     faces: np.ndarray,
-    dx: float,
     settings: IngestSettings,
     p_profile: bool,
-) -> tuple[xr.Dataset, dict[str, Any]]:
+) -> dict[str, ArraySpec]:
     nt, nz, ny, nx = keep.size, cat.grid.z.size, cat.grid.y.size, cat.grid.x.size
     dtype = np.dtype(settings.dtype)
     zc = _z_chunk(nz, ny, nx, dtype.itemsize, settings.chunk_mib)
-    comp = compressors(settings.store)
-    data_vars: dict[str, Any] = {}
-    encoding: dict[str, Any] = {}
+    dims4 = ("time", "z", "y", "x")
+    out: dict[str, ArraySpec] = {}
     for name in FIELDS_3D:
-        dt = np.dtype("int8") if name == "cloud_mask" else dtype
-        data_vars[name] = (
-            ("time", "z", "y", "x"),
-            da.zeros((nt, nz, ny, nx), dtype=dt, chunks=(1, zc, ny, nx)),
-            dict(CF_ATTRS[name]),
+        is_mask = name == "cloud_mask"
+        out[name] = ArraySpec(
+            dims=dims4,
+            shape=(nt, nz, ny, nx),
+            chunks=(1, zc, ny, nx),
+            dtype="int8" if is_mask else dtype,
+            attrs=CF_ATTRS[name],
+            fill_value=0 if is_mask else (0.0 if name == "qc" else None),
         )
-        encoding[name] = {"chunks": (1, zc, ny, nx), "compressors": comp}
-        if name in ("qc", "cloud_mask"):
-            encoding[name]["fill_value"] = 0 if name == "cloud_mask" else 0.0
     if p_profile:
-        data_vars["p"] = (
-            ("z",),
-            da.zeros((nz,), dtype=dtype, chunks=(nz,)),
-            {
+        out["p"] = ArraySpec(
+            dims=("z",),
+            shape=(nz,),
+            chunks=(nz,),
+            dtype=dtype,
+            attrs={
                 **CF_ATTRS["p"],
                 "comment": "1-D reference profile p(z); broadcast over (time, y, x) when used",
             },
         )
-        encoding["p"] = {"chunks": (nz,), "compressors": comp}
     else:
-        data_vars["p"] = (
-            ("time", "z", "y", "x"),
-            da.zeros((nt, nz, ny, nx), dtype=dtype, chunks=(1, zc, ny, nx)),
-            dict(CF_ATTRS["p"]),
+        out["p"] = ArraySpec(
+            dims=dims4,
+            shape=(nt, nz, ny, nx),
+            chunks=(1, zc, ny, nx),
+            dtype=dtype,
+            attrs=CF_ATTRS["p"],
         )
-        encoding["p"] = {"chunks": (1, zc, ny, nx), "compressors": comp}
-    data_vars["lwp"] = (
-        ("time", "y", "x"),
-        da.zeros((nt, ny, nx), dtype=dtype, chunks=(1, ny, nx)),
-        dict(CF_ATTRS["lwp"]),
+    out["lwp"] = ArraySpec(
+        dims=("time", "y", "x"),
+        shape=(nt, ny, nx),
+        chunks=(1, ny, nx),
+        dtype=dtype,
+        attrs=CF_ATTRS["lwp"],
+        fill_value=0.0,
     )
-    encoding["lwp"] = {"chunks": (1, ny, nx), "compressors": comp}
-    z = cat.grid.z
-    coords = {
-        "time": (
-            "time",
-            cat.times[keep].astype(np.float64),
-            {
-                "units": "s",
-                "long_name": "time since the time origin",
-                "time_origin": cat.origin,
-                "axis": "T",
-            },
-        ),
-        "z": (
-            "z",
-            z,
-            {
-                "units": "m",
-                "standard_name": "height",
-                "long_name": "height of cell centres above the surface",
-                "positive": "up",
-                "axis": "Z",
-                "bounds": "z_bounds",
-            },
-        ),
-        "y": ("y", cat.grid.y, {"units": "m", "long_name": "y of cell centres", "axis": "Y"}),
-        "x": ("x", cat.grid.x, {"units": "m", "long_name": "x of cell centres", "axis": "X"}),
-    }
-    data_vars["z_bounds"] = (
-        ("z", "nv"),
-        np.stack([faces[:-1], faces[1:]], axis=1),
-        {"units": "m", "long_name": "cell bounds in height"},
+    out["time"] = ArraySpec(
+        dims=("time",),
+        shape=(nt,),
+        chunks=(nt,),
+        dtype="float64",
+        data=cat.times[keep],
+        attrs={
+            "units": "s",
+            "long_name": "time since the time origin",
+            "time_origin": cat.origin,
+            "axis": "T",
+        },
     )
-    encoding["time"] = {"dtype": "float64", "chunks": (nt,)}
-    ds = xr.Dataset(data_vars, coords=coords)
-    return ds, encoding
+    out["z"] = ArraySpec(
+        dims=("z",),
+        shape=(nz,),
+        chunks=(nz,),
+        dtype="float64",
+        data=cat.grid.z,
+        attrs={
+            "units": "m",
+            "standard_name": "height",
+            "long_name": "height of cell centres above the surface",
+            "positive": "up",
+            "axis": "Z",
+            "bounds": "z_bounds",
+        },
+    )
+    out["z_bounds"] = ArraySpec(
+        dims=("z", "nv"),
+        shape=(nz, 2),
+        chunks=(nz, 2),
+        dtype="float64",
+        data=np.stack([faces[:-1], faces[1:]], axis=1),
+        attrs={"units": "m", "long_name": "cell bounds in height"},
+    )
+    for axis in ("y", "x"):
+        values = getattr(cat.grid, axis)
+        out[axis] = ArraySpec(
+            dims=(axis,),
+            shape=values.shape,
+            chunks=values.shape,
+            dtype="float64",
+            data=values,
+            attrs={"units": "m", "long_name": f"{axis} of cell centres", "axis": axis.upper()},
+        )
+    return out
 
 
 def ingest_case(
@@ -390,27 +400,26 @@ def ingest_case(
     p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
     conversions = _ConversionLog()
     dtype = np.dtype(settings.dtype)
-    ds, encoding = _template(cat, keep, faces, dx, settings, p_profile)
+    layout = _layout(cat, keep, faces, settings, p_profile)
     out = Path(out)
     raw_records = [provenance.file_record(f) for f in files]
     with atomic_path(out) as tmp:
-        ds.to_zarr(
-            tmp, mode="w-", compute=False, zarr_format=3, consolidated=False, encoding=encoding
-        )
-        group = zarr.open_group(str(tmp), mode="r+")
+        group = create_store(tmp, layout, codecs=compressors(settings.store))
+        writer = TimeWriter(group)
         for j, ti in enumerate(keep):
             fields = canonical_step(
                 cat, int(ti), faces=faces, settings=settings, conversions=conversions
             )
-            for name in FIELDS_3D:
-                arr = fields[name]
-                group[name][j] = arr.astype("int8" if name == "cloud_mask" else dtype)
-            group["lwp"][j] = fields["lwp"].astype(dtype)
-            if p_profile:
-                if j == 0:
-                    group["p"][:] = fields["p"].astype(dtype)
-            else:
-                group["p"][j] = fields["p"].astype(dtype)
+            step = {
+                n: fields[n].astype("int8" if n == "cloud_mask" else dtype)
+                for n in (*FIELDS_3D, "lwp")
+            }
+            if not p_profile:
+                step["p"] = fields["p"].astype(dtype)
+            elif j == 0:
+                group["p"][:] = fields["p"].astype(dtype)
+            writer.add(j, step)
+        writer.flush()
         conv_records = conversions.records()
         for name, spec in vm.variables.items():
             if spec.quantity == "specific_humidity":
@@ -451,7 +460,7 @@ def ingest_case(
             time_origin=cat.origin,
             settings=settings.to_dict(),
             saturation_formula=thermo.SATURATION_FORMULA,
-            config_sha256=provenance_config_hash(config_record),
+            config_sha256=None if config_record is None else provenance.config_sha(config_record),
             config=config_record,
         )
         attrs = provenance.extend(
@@ -479,12 +488,3 @@ def ingest_case(
         consolidate(tmp)
     log.info("case %s: wrote %s (%d times kept, %d dropped)", case, out, keep.size, len(dropped))
     return out
-
-
-def provenance_config_hash(config_record: dict[str, Any] | None) -> str | None:
-    """sha256 of the resolved config, or None when there is none."""
-    if config_record is None:
-        return None
-    from .config import config_hash
-
-    return config_hash(json.loads(json.dumps(config_record, default=str)))

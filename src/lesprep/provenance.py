@@ -144,3 +144,90 @@ def extend(attrs: dict[str, Any], step: dict[str, Any], summary: str) -> dict[st
 def merge(upstream: list[dict[str, Any]]) -> dict[str, Any]:
     """Provenance of a store built from several upstream stores (e.g. a training set)."""
     return {"format": 1, "steps": [], "inputs": [load(a) for a in upstream]}
+
+
+def config_sha(config_record: Any) -> str:
+    """sha256 of a resolved config (canonical JSON)."""
+    text = json.dumps(config_record, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _steps_of(prov: dict[str, Any]) -> list[dict[str, Any]]:
+    """Every step of a record, upstream inputs first."""
+    out: list[dict[str, Any]] = []
+    for inp in prov.get("inputs", []):
+        out.extend(_steps_of(inp))
+    out.extend(prov.get("steps", []))
+    return out
+
+
+def summarize(prov: dict[str, Any], *, attrs: dict[str, Any] | None = None, path: str = "") -> str:
+    """A readable multi-line summary of a store's provenance."""
+    attrs = attrs or {}
+    lines = [f"store: {path}" if path else "store", f"title: {attrs.get('title', '?')}"]
+    steps = _steps_of(prov)
+    seen_ingest: set[str] = set()
+    for st in steps:
+        env = st.get("environment", {})
+        head = (
+            f"- {st.get('step')} at {st.get('created')} (lesprep {env.get('lesprep')}, "
+            f"commit {env.get('git_commit') or 'unknown'}, code {env.get('code_version')})"
+        )
+        if st.get("step") == "ingest":
+            case = st.get("case")
+            if case in seen_ingest:
+                continue
+            seen_ingest.add(case)
+            lines.append(head)
+            lines.append(
+                f"    case {case} (regime {st.get('regime') or '-'}), variable map "
+                f"{st.get('variable_map', {}).get('path')} "
+                f"sha256 {str(st.get('variable_map', {}).get('sha256'))[:12]}"
+            )
+            for f in st.get("raw_files", []):
+                lines.append(f"    raw {f['path']}  {f['size']} B  sha256 {f['sha256'][:16]}")
+            for c in st.get("conversions", []):
+                if "operation" in c:
+                    lines.append(f"    {c['variable']}: {c['operation']}")
+                elif c.get("factor") != 1.0 or c.get("offset") != 0.0:
+                    lines.append(
+                        f"    {c['variable']} ({c['raw_variable']}): {c['from_units']}"
+                        f" -> {c['to_units']} x{c['factor']:g} {c['offset']:+g}"
+                    )
+            s = st.get("settings", {})
+            lines.append(
+                f"    spin-up {s.get('spinup')} (dropped {len(st.get('times_dropped_s', []))}"
+                f" times, kept {st.get('times_kept')}), cloud threshold "
+                f"{s.get('cloud_threshold')}, saturation: {st.get('saturation_formula')}"
+            )
+            lines.append(f"    config sha256 {str(st.get('config_sha256'))[:16]}")
+        elif st.get("step") == "coarsen":
+            if any(ln.startswith(head) for ln in lines):
+                continue
+            lines.append(head)
+            lines.append(
+                f"    case {st.get('case')} scale {st.get('scale')} factor "
+                f"{st.get('factor')} (L = {st.get('length_m')} m, dx = {st.get('dx')} m)"
+            )
+        elif st.get("step") == "assemble":
+            lines.append(head)
+            lines.append(
+                f"    split {st.get('split')} scale {st.get('scale')}: "
+                f"{st.get('samples')} samples from cases {', '.join(st.get('cases', []))}"
+            )
+            rule = st.get("split_rule")
+            if rule:
+                lines.append(
+                    f"    split rule: fractions {rule.get('fractions')} seed {rule.get('seed')}"
+                )
+            for a in st.get("assignment", []):
+                lines.append(f"    {a['case']}: {a['split']} ({a['reason']})")
+        else:
+            lines.append(head)
+    pk = next((s.get("environment", {}).get("packages") for s in steps), None)
+    if pk:
+        lines.append("packages: " + ", ".join(f"{k} {v}" for k, v in sorted(pk.items()) if v))
+    if attrs.get("history"):
+        lines.append("history:")
+        lines.extend(f"  {h}" for h in str(attrs["history"]).splitlines())
+    return "\n".join(lines)

@@ -45,9 +45,67 @@ def _ingest(smk: Any) -> None:
     )
 
 
+def _coarsen(smk: Any) -> None:
+    from .coarsen import coarsen_case, settings_from_config
+
+    p = smk.params.settings
+    cfg = {
+        "coarsen": {**p["coarsen"], "scales": p["scales"]},
+        "ingest": p["ingest"],
+        "store": p["store"],
+    }
+    settings = settings_from_config(cfg, p["labels"])
+    outputs = dict(zip(p["labels"], list(smk.output.stores), strict=True))
+    coarsen_case(smk.input.canonical, outputs, settings, config_record=smk.config)
+
+
+def _splits(smk: Any) -> None:
+    from .splits import CaseInfo, SplitRule, assign_splits, write_assignment_tsv
+
+    p = smk.params.settings
+    rule = SplitRule.from_dict(p["rule"])
+    cases = [CaseInfo(case=c, regime=r, pinned=s or None) for c, r, s in p["cases"]]
+    assignments, messages = assign_splits(cases, rule)
+    for m in messages:
+        log.warning("%s", m)
+    write_assignment_tsv(assignments, smk.output[0])
+
+
+def _assemble(smk: Any) -> None:
+    from .sets import build_set, settings_from_config
+    from .splits import read_assignment_tsv
+
+    p = smk.params.settings
+    cfg = {"sets": p["sets"], "ingest": {"dtype": p["dtype"]}, "store": p["store"]}
+    inputs = dict(zip(p["cases"], list(smk.input.stores), strict=True))
+    assignment = [
+        {"case": a.case, "regime": a.regime, "split": a.split, "reason": a.reason}
+        for a in read_assignment_tsv(smk.input.splits)
+    ]
+    build_set(
+        inputs,
+        p["regimes"],
+        smk.output.store,
+        settings_from_config(cfg),
+        split=p["split"],
+        scale=p["scale"],
+        extra_provenance={"split_rule": p["rule"], "assignment": assignment},
+    )
+
+
+def _normalization(smk: Any) -> None:
+    from .sets import write_normalization
+
+    write_normalization(smk.input.train, smk.output[0], scale=smk.params.scale)
+
+
 STEPS: dict[str, Callable[[Any], None]] = {
     "demo": _demo,
     "ingest": _ingest,
+    "coarsen": _coarsen,
+    "splits": _splits,
+    "assemble": _assemble,
+    "normalization": _normalization,
 }
 
 
@@ -64,6 +122,7 @@ def run(step: str, smk: Any) -> None:
         handlers=handlers,
         force=True,
     )
+    logging.getLogger("pint").setLevel(logging.ERROR)  # unit redefinitions by cf-xarray
     try:
         STEPS[step](smk)
     except LesprepError as exc:

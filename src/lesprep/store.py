@@ -14,9 +14,11 @@ import shutil
 import uuid
 import warnings
 from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import xarray as xr
 import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
@@ -120,3 +122,79 @@ def dir_size_bytes(path: str | Path) -> int:
             with contextlib.suppress(OSError):
                 total += os.stat(os.path.join(root, f)).st_size
     return total
+
+
+@dataclass(frozen=True, kw_only=True)
+class ArraySpec:
+    """One array of a store to create: dims, shape, chunks, dtype, attrs, fill value."""
+
+    dims: tuple[str, ...]
+    shape: tuple[int, ...]
+    chunks: tuple[int, ...]
+    dtype: Any
+    attrs: Mapping[str, Any] = field(default_factory=dict)
+    fill_value: Any = None
+    data: Any = None  # values written at creation (coordinates, small arrays)
+
+
+def create_store(
+    path: str | Path, arrays: Mapping[str, ArraySpec], *, codecs: tuple[Any, ...] = ()
+) -> zarr.Group:
+    """Create a Zarr v3 group with the given arrays (readable by ``xarray.open_zarr``).
+
+    Arrays with ``data`` are written at once; the others are left for region writes.
+    Float arrays without an explicit fill value get NaN (never used as a mask by xarray
+    for format 3); an all-fill chunk is not stored.
+    """
+    root = zarr.open_group(str(path), mode="w-", zarr_format=3)
+    for name, spec in arrays.items():
+        dt = np.dtype(spec.dtype)
+        fill = spec.fill_value
+        if fill is None:
+            fill = np.nan if dt.kind == "f" else 0
+        arr = root.create_array(
+            name,
+            shape=spec.shape,
+            chunks=spec.chunks,
+            dtype=dt,
+            compressors=codecs if spec.data is None else (),
+            fill_value=fill,
+            dimension_names=list(spec.dims),
+            attributes=dict(spec.attrs),
+        )
+        if spec.data is not None:
+            arr[...] = np.asarray(spec.data, dtype=dt)
+    return root
+
+
+class TimeWriter:
+    """Buffer consecutive time steps and write them to a group's arrays in one call.
+
+    Writing many small time steps one at a time is dominated by per-call overhead;
+    buffering up to ``limit_bytes`` keeps memory bounded while making each write large
+    enough for zarr to encode its chunks concurrently.
+    """
+
+    def __init__(self, group: zarr.Group, *, limit_bytes: int = 256 * 2**20) -> None:
+        self.group = group
+        self.limit = limit_bytes
+        self.start = 0
+        self.buf: dict[str, list[np.ndarray]] = {}
+        self.nbytes = 0
+
+    def add(self, index: int, fields: Mapping[str, np.ndarray]) -> None:
+        """Queue the arrays of time ``index`` (consecutive indices from 0)."""
+        if not self.buf:
+            self.start = index
+        for name, arr in fields.items():
+            self.buf.setdefault(name, []).append(arr)
+            self.nbytes += arr.nbytes
+        if self.nbytes >= self.limit:
+            self.flush()
+
+    def flush(self) -> None:
+        """Write what is buffered."""
+        for name, items in self.buf.items():
+            self.group[name][self.start : self.start + len(items)] = np.stack(items)
+        self.buf = {}
+        self.nbytes = 0

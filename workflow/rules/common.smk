@@ -18,8 +18,6 @@ CASES = {row.case: row for row in read_case_sheet(config["cases"])}
 CODE_VERSION = code_version()
 
 
-wildcard_constraints:
-    case="|".join(CASES),
 
 
 def case_ids():
@@ -84,6 +82,109 @@ def canonical_stores():
     return [f"{RESULTS}/cases/{c}/canonical.zarr" for c in CASES]
 
 
+
+
+# --- coarsening -----------------------------------------------------------------------
+from lesprep.scales import parse_scales, scale_groups as _scale_groups
+
+SCALE_LABELS = [s.label for s in parse_scales(config["coarsen"]["scales"])]
+SCALE_GROUPS = _scale_groups(config["coarsen"])
+
+
+def scale_store(case, label):
+    """Path of one case's store at one scale."""
+    return f"{RESULTS}/cases/{case}/scale-{label}.zarr"
+
+
+def coarsen_params(group):
+    """Params of a coarsening group's jobs: what their results depend on besides input.
+
+    Only this group's scales (and the patches of those scales) enter, so changing
+    another group's scale does not re-run this group.
+    """
+    labels = SCALE_GROUPS[group]
+    patches = dict(config["coarsen"]["patches"])
+    patches["scales"] = [
+        s.label for s in parse_scales(patches.get("scales", [])) if s.label in labels
+    ]
+    coarsen = {k: v for k, v in config["coarsen"].items() if k not in ("scales", "groups")}
+    coarsen["patches"] = patches
+    return {
+        "labels": labels,
+        "scales": [s.text for s in parse_scales(config["coarsen"]["scales"]) if s.label in labels],
+        "coarsen": coarsen,
+        "ingest": {k: config["ingest"][k] for k in ("dtype", "chunk_mib")},
+        "store": config["store"],
+        "code": CODE_VERSION,
+    }
+
+
+def scale_stores():
+    """Every case's store at every scale."""
+    return [scale_store(c, lab) for c in CASES for lab in SCALE_LABELS]
+
+
+# --- splits and sets ------------------------------------------------------------------
+from lesprep.splits import CaseInfo, SplitRule, assign_splits
+
+SPLIT_RULE = SplitRule(fractions=config["splits"]["fractions"], seed=config["splits"]["seed"])
+ASSIGNMENT, SPLIT_MESSAGES = assign_splits(
+    [CaseInfo(case=r.case, regime=r.regime, pinned=r.split or None) for r in CASES.values()],
+    SPLIT_RULE,
+)
+for _msg in SPLIT_MESSAGES:
+    logger.warning(f"lesprep splits: {_msg}")
+SPLITS = [s for s in ("train", "validation", "test") if any(a.split == s for a in ASSIGNMENT)]
+
+
+def cases_of(split):
+    """Cases assigned to a split (sorted)."""
+    return sorted(a.case for a in ASSIGNMENT if a.split == split)
+
+
+def set_inputs(wildcards):
+    """Per-case stores a training store is assembled from."""
+    return [scale_store(c, wildcards.scale) for c in cases_of(wildcards.split)]
+
+
+def set_params(wildcards):
+    """Everything a training store depends on besides its inputs."""
+    return {
+        "split": wildcards.split,
+        "scale": wildcards.scale,
+        "cases": cases_of(wildcards.split),
+        "regimes": {c: CASES[c].regime for c in cases_of(wildcards.split)},
+        "sets": config["sets"],
+        "dtype": config["ingest"]["dtype"],
+        "store": config["store"],
+        "rule": SPLIT_RULE.to_dict(),
+        "code": CODE_VERSION,
+    }
+
+
+def split_params(wildcards):
+    """The split rule and the case list (the assignment depends on nothing else)."""
+    return {
+        "rule": SPLIT_RULE.to_dict(),
+        "cases": [[r.case, r.regime, r.split] for r in CASES.values()],
+        "code": CODE_VERSION,
+    }
+
+
+def set_stores():
+    """Every training store and the train normalization statistics."""
+    out = [f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS]
+    if "train" in SPLITS:
+        out += [f"{RESULTS}/sets/normalization-{lab}.json" for lab in SCALE_LABELS]
+    return out
+
+
 def final_outputs():
     """Everything `rule all` asks for."""
-    return canonical_stores()
+    return [*canonical_stores(), *scale_stores(), f"{RESULTS}/splits.tsv", *set_stores()]
+
+
+wildcard_constraints:
+    case="|".join(CASES),
+    scale="|".join(SCALE_LABELS),
+    split="train|validation|test",

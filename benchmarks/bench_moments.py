@@ -1,0 +1,167 @@
+"""Micro-benchmark of block moments: hierarchical vs direct-per-factor, numba vs numpy.
+
+Run from the repository root, e.g.::
+
+    python benchmarks/bench_moments.py --shape 12 160 512 512 --json /tmp/bench.json
+
+Prints a table (seconds of the first and of the best run, input throughput of the best,
+peak memory traced by ``tracemalloc`` beyond the outputs) and optionally writes the same rows
+as JSON. There are no assertions: this measures, it does not test. The first run of a case
+can be much slower on a virtual machine whose memory is backed lazily by the host, because
+the outputs touch fresh pages.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import sys
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+
+try:
+    from lesprep import moments
+except ImportError:  # running from a checkout without an installed package
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
+    from lesprep import moments
+
+METHODS = ("hierarchical", "direct")
+
+
+def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--shape", type=int, nargs="+", default=[12, 160, 512, 512])
+    parser.add_argument("--dtype", default="float32", choices=["float32", "float64"])
+    parser.add_argument(
+        "--factors",
+        type=int,
+        nargs="+",
+        default=None,
+        help="block factors (default: powers of two from 2 that divide both horizontal sizes)",
+    )
+    parser.add_argument("--engines", nargs="+", default=["numba", "numpy"])
+    parser.add_argument("--methods", nargs="+", default=list(METHODS), choices=METHODS)
+    parser.add_argument(
+        "--repeat", type=int, default=2, help="runs per case; the first and the best are shown"
+    )
+    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--json", type=Path, default=None, help="write the rows here as JSON")
+    return parser.parse_args(argv)
+
+
+def default_factors(ny: int, nx: int) -> list[int]:
+    factors = []
+    f = 2
+    while ny % f == 0 and nx % f == 0:
+        factors.append(f)
+        f *= 2
+    return factors
+
+
+def make_field(shape: tuple[int, ...], dtype: str, seed: int) -> np.ndarray:
+    """A skewed synthetic field (exponential noise plus a smooth wave), made plane by plane."""
+    rng = np.random.default_rng(seed)
+    out = np.empty(shape, dtype=dtype)
+    planes = out.reshape(-1, *shape[-2:])
+    ny, nx = shape[-2:]
+    wave = (
+        np.sin(2 * np.pi * np.arange(nx) / nx)[None, :]
+        * np.cos(2 * np.pi * np.arange(ny) / ny)[:, None]
+    )
+    for p in range(planes.shape[0]):
+        planes[p] = rng.standard_exponential((ny, nx), dtype=np.float32) + wave
+    return out
+
+
+def run_case(a: np.ndarray, factors: list[int], method: str, engine: str) -> tuple[float, int]:
+    """Seconds and peak traced bytes (beyond the outputs' inputs) for one case."""
+    tracemalloc.start()
+    tracemalloc.reset_peak()
+    start = time.perf_counter()
+    if method == "hierarchical":
+        result = moments.hierarchical_moments(a, factors, engine=engine)
+    else:
+        result = {f: moments.block_moments(a, f, engine=engine) for f in factors}
+    elapsed = time.perf_counter() - start
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    del result
+    return elapsed, peak
+
+
+def output_bytes(shape: tuple[int, ...], factors: list[int]) -> int:
+    lead = int(np.prod(shape[:-2]))
+    return sum(3 * 8 * lead * (shape[-2] // f) * (shape[-1] // f) for f in factors)
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parse_args(argv)
+    shape = tuple(args.shape)
+    factors = args.factors or default_factors(shape[-2], shape[-1])
+    engines = [e for e in args.engines if e != "numba" or moments.HAVE_NUMBA]
+
+    print(f"making a {args.dtype} field of shape {shape} ...", flush=True)
+    a = make_field(shape, args.dtype, args.seed)
+    gib = a.nbytes / 2**30
+    if "numba" in engines:  # compile (or load the cache) outside the timings
+        small = make_field((2, max(factors), max(factors)), args.dtype, 1)
+        moments.hierarchical_moments(small, factors, engine="numba")
+        moments.block_moments(small, factors[0], engine="numba")
+
+    rows = []
+    header = (
+        f"{'method':<13} {'engine':<6} {'first s':>8} {'best s':>8} {'GiB/s':>7}"
+        f" {'peak extra MiB':>15}"
+    )
+    print(f"input {gib:.2f} GiB, factors {factors}, {os.cpu_count()} CPUs, repeat {args.repeat}")
+    print(header)
+    print("-" * len(header))
+    out_bytes = output_bytes(shape, factors)
+    for method in args.methods:
+        for engine in engines:
+            runs = [run_case(a, factors, method, engine) for _ in range(max(1, args.repeat))]
+            first = runs[0][0]
+            seconds = min(r[0] for r in runs)
+            peak = max(r[1] for r in runs)
+            extra = max(0, peak - out_bytes) / 2**20
+            rows.append(
+                {
+                    "method": method,
+                    "engine": engine,
+                    "first_seconds": first,
+                    "best_seconds": seconds,
+                    "all_seconds": [r[0] for r in runs],
+                    "input_gib_per_s": gib / seconds,
+                    "peak_traced_bytes": peak,
+                    "output_bytes": out_bytes,
+                }
+            )
+            print(
+                f"{method:<13} {engine:<6} {first:8.2f} {seconds:8.2f} {gib / seconds:7.2f}"
+                f" {extra:15.1f}",
+                flush=True,
+            )
+
+    if args.json is not None:
+        report = {
+            "shape": list(shape),
+            "dtype": args.dtype,
+            "factors": factors,
+            "cpus": os.cpu_count(),
+            "python": platform.python_version(),
+            "numpy": np.__version__,
+            "rows": rows,
+        }
+        args.json.parent.mkdir(parents=True, exist_ok=True)
+        args.json.write_text(json.dumps(report, indent=2) + "\n")
+        print(f"wrote {args.json}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,80 @@
+"""Paired fine patches: the fine field under every coarse cell.
+
+For a block factor ``f`` and patch size ``P``, the patch of coarse cell ``(j, i)`` holds
+the fine cells ``[j*f - h, (j+1)*f + h) x [i*f - h, (i+1)*f + h)`` (``h`` the halo,
+wrapped periodically), block-mean downsampled by ``d = f / P`` when ``f > P`` (``P``
+must then divide ``f``, and ``d`` must divide ``h``), or native (``d = 1``) when
+``f <= P``. The stored patch has ``(f + 2h) / d`` points a side. Patches are
+index-aligned with the coarse cells: ``patch[..., j, i, :, :]`` lies under coarse cell
+``(j, i)``, so a training sample pairs inputs and patch by position.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .errors import ScaleError
+from .moments import block_mean, divisors
+
+
+def patch_geometry(factor: int, size: int, halo: int, *, scale: str = "") -> tuple[int, int]:
+    """(downsampling d, stored patch edge) for a factor, patch size and halo.
+
+    Raises
+    ------
+    ScaleError
+        If ``size`` does not divide ``factor`` (when ``factor > size``) or ``d`` does not
+        divide ``halo``.
+    """
+    if factor <= size:
+        return 1, factor + 2 * halo
+    if factor % size:
+        valid = [p for p in divisors(factor) if p <= size] or [1]
+        raise ScaleError(
+            f"patch size {size} does not divide the block factor {factor} of scale "
+            f"{scale!r}; patch sizes that divide it: {valid} (or any size >= {factor} for "
+            "native patches)",
+            hint="set coarsen.patches.size to one of the listed sizes",
+        )
+    d = factor // size
+    if halo % d:
+        raise ScaleError(
+            f"patch halo {halo} is not a multiple of the downsampling {d} of scale {scale!r}",
+            hint=f"use a halo that is a multiple of {d}",
+        )
+    return d, (factor + 2 * halo) // d
+
+
+def extract_patches(
+    field: NDArray[np.floating], factor: int, size: int, halo: int = 0
+) -> NDArray[np.float64]:
+    """Patches of a ``(..., ny, nx)`` field: ``(..., ny/f, nx/f, p, p)`` (float64)."""
+    a = np.asarray(field, dtype=np.float64)
+    d, edge = patch_geometry(factor, size, halo)
+    ny, nx = a.shape[-2:]
+    if halo:
+        pad = [(0, 0)] * (a.ndim - 2) + [(halo, halo), (halo, halo)]
+        a = np.pad(a, pad, mode="wrap")
+    if d > 1:
+        a = block_mean(a, d)
+        f, h = factor // d, halo // d
+    else:
+        f, h = factor, halo
+    cy, cx = ny // factor, nx // factor
+    lead = a.shape[:-2]
+    if h == 0:
+        out = a.reshape(*lead, cy, f, cx, f)
+        return np.ascontiguousarray(np.moveaxis(out, -3, -2))
+    win = 2 * h + f
+    view = np.lib.stride_tricks.sliding_window_view(a, (win, win), axis=(-2, -1))
+    return np.ascontiguousarray(view[..., ::f, ::f, :, :][..., :cy, :cx, :, :])
+
+
+def reassemble(patches: NDArray[np.floating], halo: int = 0) -> NDArray[np.float64]:
+    """Inverse of native :func:`extract_patches`: tile the patch interiors back together."""
+    p = np.asarray(patches)
+    if halo:
+        p = p[..., halo:-halo, halo:-halo]
+    *lead, cy, cx, f, _ = p.shape
+    return np.moveaxis(p, -2, -3).reshape(*lead, cy * f, cx * f)

@@ -1,0 +1,22 @@
+# Canonical store -> one store per scale (sub-grid moments, GCM-view inputs, patches).
+# One job per case and scale group; a group computes all its scales in one pass.
+
+for _group, _labels in SCALE_GROUPS.items():
+
+    rule:
+        name:
+            f"coarsen_{_group}"
+        input:
+            canonical=f"{RESULTS}/cases/{{case}}/canonical.zarr",
+        output:
+            stores=directory([scale_store("{case}", lab) for lab in _labels]),
+        params:
+            settings=coarsen_params(_group),
+        log:
+            f"logs/coarsen/{{case}}-{_group}.log",
+        threads: config["resources"]["threads"]
+        resources:
+            mem_mb=mem_mb("coarsen"),
+            runtime=runtime("coarsen"),
+        script:
+            "../scripts/coarsen.py"

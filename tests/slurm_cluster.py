@@ -3,10 +3,14 @@
 The harness runs the daemons a real cluster runs -- ``munged``, ``mariadbd``,
 ``slurmdbd``, ``slurmctld`` and ``slurmd`` -- from the Debian packages, with every
 configuration, state, log and pid file inside one work directory. Clients find the
-cluster through ``SLURM_CONF`` (see :attr:`Cluster.env`); nothing in ``/etc/slurm`` is
-touched. Every daemon is stopped by the pid in its own pid file (never by process
-name), on :meth:`Cluster.stop`, on leaving the ``with`` block, on a failed start and
-at interpreter exit.
+cluster through ``SLURM_CONF`` (see :attr:`Cluster.env`). Outside the work directory
+the harness only touches what SLURM and munge insist on: a symlink
+``/etc/slurm/slurm.conf`` to the work directory's config while the cluster runs (srun
+inside a Snakemake job gets no ``SLURM_CONF``), munge's default socket directory
+``/run/munge`` and, if absent, the munge key. Every daemon runs as a foreground child
+and is stopped by the pid in its own pid file (never by process name), on
+:meth:`Cluster.stop`, on leaving the ``with`` block, on a failed start and at
+interpreter exit (not on SIGKILL of the Python process).
 
 The module has no pytest dependency, so it can also be used by hand::
 
@@ -24,6 +28,7 @@ from __future__ import annotations
 
 import atexit
 import os
+import pwd
 import secrets
 import shutil
 import signal
@@ -58,7 +63,7 @@ REQUIRED_PROGRAMS: dict[str, str] = {
     "squeue": "slurm-client",
     "mariadbd": "mariadb-server",
     "mariadb-install-db": "mariadb-server",
-    "mariadb": "mariadb-client",
+    "mariadb": "mariadb-server",
 }
 
 MUNGE_KEY = Path("/etc/munge/munge.key")
@@ -262,8 +267,6 @@ def slurm_available() -> tuple[bool, str]:
     if os.geteuid() != 0:
         return False, "the SLURM test cluster must be started as root"
     try:
-        import pwd
-
         pwd.getpwnam("munge")
     except KeyError:
         return False, "user 'munge' does not exist; reinstall the Debian package munge"
@@ -322,12 +325,12 @@ def _start_all(cluster: Cluster, node_line: str, timeout: float) -> None:
     ports = _free_ports(4)
     ctld_port, slurmd_port, dbd_port, db_port = ports
     db_pass = secrets.token_hex(12)
+    _link_default_conf(cluster)  # first: it refuses to touch a real site's config
     _start_munged(cluster, timeout)
     _start_mariadb(cluster, db_port, db_pass, timeout)
     host = socket.gethostname().split(".")[0]
     _write_slurmdbd_conf(w, host, dbd_port, db_port, db_pass)
     _write_slurm_conf(cluster.conf, w, host, node_line, ctld_port, slurmd_port, dbd_port)
-    _link_default_conf(cluster)
     env = cluster.environ()
     _start_child(cluster, "slurmdbd", ["slurmdbd", "-D"], w / "run/slurmdbd.pid", env, timeout)
     _wait_for(
@@ -396,7 +399,7 @@ def _munge_works() -> bool:
         return False
     try:
         back = subprocess.run(
-            ["unmunge", "-S", str(MUNGE_SOCKET)],
+            [_which("unmunge") or "unmunge", "-S", str(MUNGE_SOCKET)],
             input=cred.stdout,
             capture_output=True,
             text=True,
@@ -415,22 +418,21 @@ def _start_mariadb(cluster: Cluster, port: int, password: str, timeout: float) -
     sock = w / "db" / "mariadb.sock"
     log = w / "log" / "mariadb.log"
     if not (datadir / "mysql").exists():
-        with log.open("ab") as out:
-            subprocess.run(
-                [
-                    "mariadb-install-db",
-                    "--no-defaults",
-                    f"--datadir={datadir}",
-                    "--user=root",
-                    "--auth-root-authentication-method=socket",
-                    "--skip-test-db",
-                ],
-                stdin=subprocess.DEVNULL,
-                stdout=out,
-                stderr=out,
-                timeout=120,
-                check=True,
-            )
+        init = _run(
+            [
+                "mariadb-install-db",
+                "--no-defaults",
+                f"--datadir={datadir}",
+                "--user=root",
+                "--auth-root-authentication-method=socket",
+                "--skip-test-db",
+            ],
+            timeout=120,
+            check=False,
+        )
+        log.write_text(init.stdout + init.stderr)
+        if init.returncode != 0:
+            raise ClusterError(f"mariadb-install-db exited with {init.returncode}; see {log}")
     args = [
         "mariadbd",
         "--no-defaults",
@@ -501,14 +503,15 @@ def _start_child(
 ) -> None:
     """Start a daemon in the foreground as our child and wait for its pid file.
 
-    Foreground children are reaped by :meth:`Cluster.stop`; daemons that fork are
-    reparented to pid 1, which on this kind of machine never reaps them.
+    Foreground children are reaped by :meth:`Cluster.stop` at once; a daemon that
+    forks is reparented to pid 1, which here reaps late, so a stopped daemon would
+    linger as a zombie that still answers ``kill(pid, 0)``.
     """
     daemon = _Daemon(name, pid_file, log_file or cluster.workdir / "log" / f"{name}.log")
     cluster._daemons.append(daemon)
     with (cluster.workdir / "log" / f"{name}.out").open("ab") as out:
         daemon.child = subprocess.Popen(
-            args,
+            [_which(args[0]) or args[0], *args[1:]],
             env=env,
             stdin=subprocess.DEVNULL,
             stdout=out,
@@ -656,7 +659,7 @@ def _run(
     """Run a short command with a timeout; raise ClusterError on failure if `check`."""
     try:
         proc = subprocess.run(
-            list(args),
+            [_which(args[0]) or args[0], *args[1:]],
             env=env,
             stdin=subprocess.DEVNULL,
             capture_output=True,
@@ -731,7 +734,7 @@ def _wait_pid_file(daemon: _Daemon, timeout: float, cluster: Cluster) -> int:
 
 
 def _alive(pid: int | None) -> bool:
-    """True if `pid` exists and is not a zombie (pid 1 here may never reap)."""
+    """True if `pid` exists and is not a zombie (a zombie has exited already)."""
     if pid is None:
         return False
     try:
@@ -781,11 +784,15 @@ def _stop_daemon(daemon: _Daemon, timeout: float) -> bool:
 
 
 def _cancel_all_jobs(cluster: Cluster) -> None:
-    """Cancel every job so no slurmstepd outlives slurmd; wait up to 15 s."""
-    cluster.run(["scancel", "--user=root"], check=False, timeout=15)
+    """Cancel every queued or running job so no job outlives slurmd; wait up to 15 s."""
     deadline = time.monotonic() + 15
+    cancelled = False
     while time.monotonic() < deadline:
         queue = cluster.run(["squeue", "-h", "-o", "%i"], check=False, timeout=10)
-        if queue.returncode != 0 or not queue.stdout.strip():
+        jobs = queue.stdout.split()
+        if queue.returncode != 0 or not jobs:
             return
+        if not cancelled:
+            cluster.run(["scancel", *jobs], check=False, timeout=15)
+            cancelled = True
         time.sleep(0.3)

@@ -13,14 +13,13 @@ from __future__ import annotations
 import glob
 import os
 import re
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import netCDF4
 import numpy as np
 import pandas as pd
-import xarray as xr
 
 from .errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
 from .units import ureg
@@ -42,8 +41,43 @@ def resolve_files(pattern: str, *, case: str) -> list[Path]:
     return files
 
 
-def open_raw(path: str | Path, *, case: str) -> xr.Dataset:
-    """Open one raw NetCDF file lazily and read-only, without decoding times.
+class RawVariable:
+    """One variable of a raw file: dims, attributes and values (read on demand)."""
+
+    def __init__(self, var: netCDF4.Variable) -> None:
+        self._var = var
+        self.dims: tuple[str, ...] = tuple(var.dimensions)
+        self.attrs: dict[str, Any] = {k: var.getncattr(k) for k in var.ncattrs()}
+        self.shape: tuple[int, ...] = tuple(var.shape)
+
+    def read(self, index: dict[str, int] | None = None) -> np.ndarray:
+        """Values as float64 (scale/offset applied, fill values as NaN), optionally
+        with one index fixed per named dimension."""
+        sel = tuple((index or {}).get(d, slice(None)) for d in self.dims)
+        raw = self._var[sel] if sel else self._var[...]
+        return np.ma.filled(np.ma.asarray(raw).astype(np.float64), np.nan)
+
+    @property
+    def values(self) -> np.ndarray:
+        """All values (see :meth:`read`)."""
+        return self.read()
+
+
+class RawFile:
+    """A raw NetCDF file opened read-only with the netCDF4 library."""
+
+    def __init__(self, nc: netCDF4.Dataset) -> None:
+        self._nc = nc
+        self.variables = {str(k): RawVariable(v) for k, v in nc.variables.items()}
+        self.attrs: dict[str, Any] = {k: nc.getncattr(k) for k in nc.ncattrs()}
+
+    def close(self) -> None:
+        """Close the file."""
+        self._nc.close()
+
+
+def open_raw(path: str | Path, *, case: str) -> RawFile:
+    """Open one raw NetCDF file read-only (never modified).
 
     Raises
     ------
@@ -51,12 +85,10 @@ def open_raw(path: str | Path, *, case: str) -> xr.Dataset:
         If the file cannot be read as NetCDF (truncated, corrupt, not NetCDF).
     """
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", category=xr.SerializationWarning)
-            return xr.open_dataset(
-                path, decode_times=False, decode_timedelta=False, cache=False, mode="r"
-            )
-    except Exception as exc:  # the backends raise OSError, ValueError, RuntimeError ...
+        nc = netCDF4.Dataset(str(path), mode="r")
+        nc.set_auto_maskandscale(True)
+        return RawFile(nc)
+    except Exception as exc:  # netCDF4 raises OSError, RuntimeError, ...
         raise InputError(
             f"cannot be read as NetCDF ({type(exc).__name__}: {exc})",
             case=case,
@@ -151,7 +183,7 @@ class Catalogue:
 
 
 def _coord_values(
-    ds: xr.Dataset, spec: dict[str, str], *, axis: str, case: str, file: str
+    ds: RawFile, spec: dict[str, str], *, axis: str, case: str, file: str
 ) -> np.ndarray:
     name = spec["raw"]
     if name not in ds.variables:
@@ -213,7 +245,7 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
     attrs: dict[str, Any] = {}
     notes: list[str] = []
     per_file_times: list[tuple[np.ndarray, pd.Timestamp | None]] = []
-    opened: list[xr.Dataset] = []
+    opened: list[RawFile] = []
     try:
         for fi, path in enumerate(files):
             ds = open_raw(path, case=case)
@@ -365,7 +397,7 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
     )
 
 
-def _read_grid(ds: xr.Dataset, varmap: VariableMap, *, case: str, file: str) -> RawGrid | None:
+def _read_grid(ds: RawFile, varmap: VariableMap, *, case: str, file: str) -> RawGrid | None:
     specs = varmap.coords
     if not all(specs[a]["raw"] in ds.variables for a in ("x", "y", "z")):
         return None
@@ -412,9 +444,7 @@ def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, 
     try:
         var = ds.variables[spec.raw]
         time_dim = cat.varmap.raw_dim("time")
-        if k >= 0:
-            var = var[{time_dim: k}]
-        values = np.asarray(var.values, dtype=np.float64)
+        values = var.read({time_dim: k} if k >= 0 else None)
         units = var.attrs.get("units")
     except Exception as exc:
         raise InputError(

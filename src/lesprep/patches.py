@@ -51,7 +51,7 @@ def extract_patches(
 ) -> NDArray[np.float64]:
     """Patches of a ``(..., ny, nx)`` field: ``(..., ny/f, nx/f, p, p)`` (float64)."""
     a = np.asarray(field, dtype=np.float64)
-    d, edge = patch_geometry(factor, size, halo)
+    d, _ = patch_geometry(factor, size, halo)
     ny, nx = a.shape[-2:]
     if halo:
         pad = [(0, 0)] * (a.ndim - 2) + [(halo, halo), (halo, halo)]

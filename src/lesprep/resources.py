@@ -67,9 +67,8 @@ def netcdf_step_bytes(path: Path) -> int:
             for v in nc.variables.values():
                 shape = v.shape
                 n = math.prod(shape)
-                if v.dimensions and nc.dimensions[v.dimensions[0]].isunlimited() or (
-                    v.dimensions and v.dimensions[0] == "time"
-                ):
+                lead = v.dimensions[0] if v.dimensions else None
+                if lead is not None and (nc.dimensions[lead].isunlimited() or lead == "time"):
                     n //= max(1, shape[0])
                 best = max(best, n)
             return best * 8
@@ -109,3 +108,12 @@ def job_resources(
     mem_mb = int(min(cap, math.ceil(mem * (1.5 ** (attempt - 1)))))
     runtime = int(max(5, math.ceil(total / MiB / _MB_PER_S.get(step, 40) / 60 * 3 + 2)))
     return {"mem_mb": mem_mb, "runtime": runtime * attempt}
+
+
+def job_threads(step: str, inputs: Any, config: Mapping[str, Any]) -> int:
+    """Threads of a job: one for small inputs (start-up dominates), else the config's."""
+    configured = int(config.get("resources", {}).get("threads", 2))
+    stores = [p for p in _paths(inputs) if (p / "zarr.json").exists()]
+    if not stores:  # not written yet (sized when the DAG is built): assume big
+        return configured
+    return 1 if max(zarr_step_bytes(p) for p in stores) < 32 * MiB else configured

@@ -109,30 +109,41 @@ def _kept(ds: xr.Dataset, st: SetSettings) -> tuple[np.ndarray, np.ndarray]:
     return t_idx, z_idx
 
 
-def _piece_arrays(ds: xr.Dataset, t: int, z_idx: np.ndarray, feats, cols, patches,
-                  meta: dict[str, int]) -> dict[str, np.ndarray]:
-    """Samples of one (case, time) piece, in (z, y, x) order."""
+def _case_pieces(ds: xr.Dataset, t_idx: np.ndarray, z_idx: np.ndarray, feats, cols,
+                 patches, meta: dict[str, int], *, limit_bytes: int = 128 * 2**20):
+    """Yield the samples of each kept time of one case, in (z, y, x) order.
+
+    Several times are read per array access (up to ``limit_bytes``), which is far faster
+    than one read per time for small coarse grids, and memory stays bounded.
+    """
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     nz = z_idx.size
-    out: dict[str, np.ndarray] = {}
-    for name in feats:
-        out[name] = ds[name].isel(time=t, z=z_idx).values.reshape(-1)
-    for name in cols:
-        v = ds[name]
-        if v.dims == ("z",):
-            a = np.broadcast_to(v.values[z_idx][:, None, None], (nz, ny, nx))
-        else:
-            a = np.broadcast_to(v.isel(time=t).values[None], (nz, ny, nx))
-        out[name] = np.ascontiguousarray(a).reshape(-1)
-    for name in patches:
-        a = ds[name].isel(time=t, z=z_idx).values
-        out[name] = a.reshape(-1, a.shape[-2], a.shape[-1])
+    n = nz * ny * nx
+    per_time = sum(ds[v].dtype.itemsize * n * (math.prod(ds[v].shape[-2:]) if v in patches
+                                                else 1) for v in feats + patches)
+    block = int(max(1, limit_bytes // max(1, per_time)))
     zz, yy, xx = np.meshgrid(ds.z.values[z_idx], ds.y.values, ds.x.values, indexing="ij")
-    out["time"] = np.full(nz * ny * nx, float(ds.time.values[t]))
-    out["z"], out["y"], out["x"] = zz.reshape(-1), yy.reshape(-1), xx.reshape(-1)
-    out["case"] = np.full(nz * ny * nx, meta["case"], dtype=np.int16)
-    out["regime"] = np.full(nz * ny * nx, meta["regime"], dtype=np.int16)
-    return out
+    zz, yy, xx = zz.reshape(-1), yy.reshape(-1), xx.reshape(-1)
+    profile_cols = {c: ds[c].values[z_idx] for c in cols if ds[c].dims == ("z",)}
+    for b0 in range(0, t_idx.size, block):
+        tb = t_idx[b0:b0 + block]
+        data = {v: ds[v].isel(time=tb, z=z_idx).values for v in feats + patches}
+        data.update({c: ds[c].isel(time=tb).values for c in cols if c not in profile_cols})
+        for k, t in enumerate(tb):
+            out: dict[str, np.ndarray] = {}
+            for v in feats:
+                out[v] = data[v][k].reshape(-1)
+            for v in cols:
+                a = (profile_cols[v][:, None, None] if v in profile_cols else data[v][k][None])
+                out[v] = np.ascontiguousarray(np.broadcast_to(a, (nz, ny, nx))).reshape(-1)
+            for v in patches:
+                a = data[v][k]
+                out[v] = a.reshape(-1, a.shape[-2], a.shape[-1])
+            out["time"] = np.full(n, float(ds.time.values[t]))
+            out["z"], out["y"], out["x"] = zz, yy, xx
+            out["case"] = np.full(n, meta["case"], dtype=np.int16)
+            out["regime"] = np.full(n, meta["regime"], dtype=np.int16)
+            yield out
 
 
 def build_set(
@@ -229,20 +240,22 @@ def build_set(
         coord_names = "case regime time z y x"
         for name in feats + cols + patches:
             arrays[name].attrs["coordinates"] = coord_names
-        writer = _ShuffleWriter(arrays, total, chunk, perm, tmp / ".scratch") if perm is not None else None
+        writer = None
+        if perm is not None:
+            writer = _ShuffleWriter(arrays, total, chunk, perm, tmp / ".scratch")
         pos = 0
-        for p in pieces:
-            c = case_ids[p.case_index]
-            ds = stores[c]
-            meta = {"case": p.case_index, "regime": regime_names.index(regimes.get(c, "") or
-                                                                       "none")}
-            data = _piece_arrays(ds, p.time_index, kept[c][1], feats, cols, patches, meta)
-            if writer is None:
-                for name, a in data.items():
-                    arrays[name][pos:pos + p.n] = a.astype(dtypes[name], copy=False)
-            else:
-                writer.add(pos, data)
-            pos += p.n
+        for ci, c in enumerate(case_ids):
+            meta = {"case": ci, "regime": regime_names.index(regimes.get(c, "") or "none")}
+            t_idx, z_idx = kept[c]
+            for data in _case_pieces(stores[c], t_idx, z_idx, feats, cols, patches, meta):
+                n = data["time"].size
+                if writer is None:
+                    for name, a in data.items():
+                        arrays[name][pos:pos + n] = a.astype(dtypes[name], copy=False)
+                else:
+                    writer.add(pos, data)
+                pos += n
+        assert pos == total
         if writer is not None:
             writer.finish()
         prov_inputs = [dict(s.attrs) for s in stores.values()]

@@ -72,16 +72,12 @@ def _splits(smk: Any) -> None:
 
 
 def _assemble(smk: Any) -> None:
-    from .sets import build_set, settings_from_config
-    from .splits import read_assignment_tsv
+    from .sets import build_set, settings_from_config, write_normalization
 
     p = smk.params.settings
     cfg = {"sets": p["sets"], "ingest": {"dtype": p["dtype"]}, "store": p["store"]}
     inputs = dict(zip(p["cases"], list(smk.input.stores), strict=True))
-    assignment = [
-        {"case": a.case, "regime": a.regime, "split": a.split, "reason": a.reason}
-        for a in read_assignment_tsv(smk.input.splits)
-    ]
+    assignment = p["assignment"]
     build_set(
         inputs,
         p["regimes"],
@@ -91,12 +87,8 @@ def _assemble(smk: Any) -> None:
         scale=p["scale"],
         extra_provenance={"split_rule": p["rule"], "assignment": assignment},
     )
-
-
-def _normalization(smk: Any) -> None:
-    from .sets import write_normalization
-
-    write_normalization(smk.input.train, smk.output[0], scale=smk.params.scale)
+    if "stats" in smk.output.keys():  # the train split also yields the normalization
+        write_normalization(smk.output.store, smk.output.stats, scale=p["scale"])
 
 
 STEPS: dict[str, Callable[[Any], None]] = {
@@ -105,7 +97,6 @@ STEPS: dict[str, Callable[[Any], None]] = {
     "coarsen": _coarsen,
     "splits": _splits,
     "assemble": _assemble,
-    "normalization": _normalization,
 }
 
 

@@ -14,6 +14,7 @@ import shutil
 import uuid
 import warnings
 from collections.abc import Iterator, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -24,6 +25,7 @@ import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
 
 TMP_TAG = ".tmp-"
+_IO_THREADS = 8  # concurrent array writes: storage latency, not CPU, is what they hide
 
 
 def compressors(store_cfg: Mapping[str, Any] | None = None) -> tuple[Any, ...]:
@@ -96,13 +98,19 @@ def consolidate(path: str | Path) -> None:
         zarr.consolidate_metadata(str(path))
 
 
-def open_store(path: str | Path, **kwargs: Any) -> xr.Dataset:
-    """Open a lesprep store lazily (consolidated metadata, no time decoding)."""
+def open_store(path: str | Path, *, chunks: Any = None, **kwargs: Any) -> xr.Dataset:
+    """Open a lesprep store lazily (consolidated metadata, no time decoding).
+
+    With the default ``chunks=None`` arrays are lazily indexed without dask (each
+    selection reads only the chunks it touches); pass ``chunks={}`` for dask arrays.
+    """
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata.*")
         warnings.filterwarnings("ignore", message=".*not part of the Zarr format 3.*")
-        return xr.open_zarr(
+        return xr.open_dataset(
             str(path),
+            engine="zarr",
+            chunks=chunks,
             consolidated=True,
             decode_times=False,
             decode_timedelta=False,
@@ -147,7 +155,9 @@ def create_store(
     for format 3); an all-fill chunk is not stored.
     """
     root = zarr.open_group(str(path), mode="w-", zarr_format=3)
-    for name, spec in arrays.items():
+
+    def create(item: tuple[str, ArraySpec]) -> None:
+        name, spec = item
         dt = np.dtype(spec.dtype)
         fill = spec.fill_value
         if fill is None:
@@ -164,6 +174,9 @@ def create_store(
         )
         if spec.data is not None:
             arr[...] = np.asarray(spec.data, dtype=dt)
+
+    with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
+        list(pool.map(create, arrays.items()))
     return root
 
 
@@ -193,8 +206,15 @@ class TimeWriter:
             self.flush()
 
     def flush(self) -> None:
-        """Write what is buffered."""
-        for name, items in self.buf.items():
-            self.group[name][self.start : self.start + len(items)] = np.stack(items)
+        """Write what is buffered (arrays written concurrently; zarr releases the GIL
+        while compressing and waiting on storage)."""
+        items = list(self.buf.items())
+
+        def write(item: tuple[str, list[np.ndarray]]) -> None:
+            name, steps = item
+            self.group[name][self.start : self.start + len(steps)] = np.stack(steps)
+
+        with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
+            list(pool.map(write, items))
         self.buf = {}
         self.nbytes = 0

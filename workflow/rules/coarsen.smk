@@ -12,9 +12,11 @@ for _group, _labels in SCALE_GROUPS.items():
             stores=directory([scale_store("{case}", lab) for lab in _labels]),
         params:
             settings=coarsen_params(_group),
+        benchmark:
+            f"logs/benchmarks/coarsen/{{case}}-{_group}.tsv"
         log:
             f"logs/coarsen/{{case}}-{_group}.log",
-        threads: config["resources"]["threads"]
+        threads: threads_for("coarsen")
         resources:
             mem_mb=mem_mb("coarsen"),
             runtime=runtime("coarsen"),

@@ -6,7 +6,7 @@ from snakemake.utils import validate
 
 from lesprep.config import prepare_config, read_case_sheet
 from lesprep.provenance import code_version
-from lesprep.resources import job_resources
+from lesprep.resources import job_resources, job_threads
 
 
 validate(config, "../schemas/config.schema.yaml")
@@ -75,6 +75,15 @@ def runtime(step):
         return job_resources(step, list(input), attempt, config)["runtime"]
 
     return _runtime
+
+
+def threads_for(step):
+    """Thread function: one thread for small inputs, `resources.threads` for big ones."""
+
+    def _threads(wildcards, input):
+        return job_threads(step, list(input), config)
+
+    return _threads
 
 
 def canonical_stores():
@@ -147,17 +156,37 @@ def set_inputs(wildcards):
     return [scale_store(c, wildcards.scale) for c in cases_of(wildcards.split)]
 
 
+def train_set_inputs(wildcards):
+    """Per-case stores of the train split at one scale."""
+    return [scale_store(c, wildcards.scale) for c in cases_of("train")]
+
+
+def train_set_params(wildcards):
+    """Params of the train store (the train split of :func:`set_params`)."""
+    return _set_params("train", wildcards.scale)
+
+
 def set_params(wildcards):
     """Everything a training store depends on besides its inputs."""
+    return _set_params(wildcards.split, wildcards.scale)
+
+
+def _set_params(split, scale):
     return {
-        "split": wildcards.split,
-        "scale": wildcards.scale,
-        "cases": cases_of(wildcards.split),
-        "regimes": {c: CASES[c].regime for c in cases_of(wildcards.split)},
+        "split": split,
+        "scale": scale,
+        "cases": cases_of(split),
+        "regimes": {c: CASES[c].regime for c in cases_of(split)},
         "sets": config["sets"],
         "dtype": config["ingest"]["dtype"],
         "store": config["store"],
         "rule": SPLIT_RULE.to_dict(),
+        # this split's own cases only, so a case joining another split changes nothing here
+        "assignment": [
+            {"case": a.case, "regime": a.regime, "split": a.split, "reason": a.reason}
+            for a in ASSIGNMENT
+            if a.split == split
+        ],
         "code": CODE_VERSION,
     }
 

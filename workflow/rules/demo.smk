@@ -7,6 +7,8 @@ rule demo_archive:
     params:
         size=config["demo"]["size"],
         code=CODE_VERSION,
+    benchmark:
+        "logs/benchmarks/demo/{case}.tsv"
     log:
         "logs/demo/{case}.log",
     resources:

@@ -9,6 +9,8 @@ rule ingest:
         store=directory(f"{RESULTS}/cases/{{case}}/canonical.zarr"),
     params:
         settings=ingest_params,
+    benchmark:
+        "logs/benchmarks/ingest/{case}.tsv"
     log:
         "logs/ingest/{case}.log",
     threads: 1

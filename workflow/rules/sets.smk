@@ -15,17 +15,18 @@ rule assign_splits:
         "../scripts/splits.py"
 
 
-rule assemble_set:
+rule assemble_train:
     input:
-        stores=set_inputs,
-        splits=f"{RESULTS}/splits.tsv",
+        stores=train_set_inputs,
     output:
-        store=directory(f"{RESULTS}/sets/{{split}}/scale-{{scale}}.zarr"),
+        store=directory(f"{RESULTS}/sets/train/scale-{{scale}}.zarr"),
+        stats=f"{RESULTS}/sets/normalization-{{scale}}.json",
     params:
-        settings=set_params,
+        settings=train_set_params,
+    benchmark:
+        "logs/benchmarks/sets/train-{scale}.tsv"
     log:
-        "logs/sets/{split}-{scale}.log",
-    threads: 1
+        "logs/sets/train-{scale}.log",
     resources:
         mem_mb=mem_mb("sets"),
         runtime=runtime("sets"),
@@ -33,18 +34,21 @@ rule assemble_set:
         "../scripts/assemble.py"
 
 
-rule normalization:
+rule assemble_heldout:
     input:
-        train=f"{RESULTS}/sets/train/scale-{{scale}}.zarr",
+        stores=set_inputs,
     output:
-        f"{RESULTS}/sets/normalization-{{scale}}.json",
+        store=directory(f"{RESULTS}/sets/{{split}}/scale-{{scale}}.zarr"),
+    wildcard_constraints:
+        split="validation|test",
     params:
-        scale="{scale}",
-        code=CODE_VERSION,
+        settings=set_params,
+    benchmark:
+        "logs/benchmarks/sets/{split}-{scale}.tsv"
     log:
-        "logs/sets/normalization-{scale}.log",
+        "logs/sets/{split}-{scale}.log",
     resources:
         mem_mb=mem_mb("sets"),
         runtime=runtime("sets"),
     script:
-        "../scripts/normalization.py"
+        "../scripts/assemble.py"

@@ -12,8 +12,10 @@ from lesprep.demo import DEMO_CASES, write_demo_case
 
 REPO = Path(__file__).resolve().parents[1]
 SMALL = {"nx": 24, "ny": 24, "nz": 24, "ntimes": 5}
-VARMAPS = {"alpha": REPO / "config/varmaps/flavour-alpha.yaml",
-           "beta": REPO / "config/varmaps/flavour-beta.yaml"}
+VARMAPS = {
+    "alpha": REPO / "config/varmaps/flavour-alpha.yaml",
+    "beta": REPO / "config/varmaps/flavour-beta.yaml",
+}
 
 
 @pytest.fixture(scope="session")

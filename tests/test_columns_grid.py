@@ -29,8 +29,7 @@ def test_lwp_of_adiabatic_linear_profile() -> None:
     zb, zt = faces[20], faces[40]
     gamma, rho = 2.0e-6, 1.1  # kg kg-1 per m (order of the adiabatic rate), kg m-3
     qc = np.where((z > zb) & (z < zt), gamma * (z - zb), 0.0)
-    lwp = liquid_water_path(qc[:, None, None], np.full((z.size, 1, 1), rho),
-                            layer_thickness(faces))
+    lwp = liquid_water_path(qc[:, None, None], np.full((z.size, 1, 1), rho), layer_thickness(faces))
     assert float(lwp[0, 0]) == pytest.approx(rho * gamma * (zt - zb) ** 2 / 2, rel=1e-12)
 
 

@@ -27,15 +27,23 @@ from lesprep.store import open_store, stale_temporaries
 REPO = Path(__file__).resolve().parents[1]
 VARMAPS = {f: REPO / f"config/varmaps/flavour-{f}.yaml" for f in ("alpha", "beta")}
 
-SETTINGS = IngestSettings(spinup="1 h", cloud_threshold="1e-5 kg/kg",
-                          ranges={"qc": (0, 0.02), "qv": (0, 0.05), "T": (150, 340),
-                                  "p": (1e4, 1.1e5), "w": (-60, 60)})
+SETTINGS = IngestSettings(
+    spinup="1 h",
+    cloud_threshold="1e-5 kg/kg",
+    ranges={"qc": (0, 0.02), "qv": (0, 0.05), "T": (150, 340), "p": (1e4, 1.1e5), "w": (-60, 60)},
+)
 
 
 def run(case, raw_dir, flavour, out, **kw):
     settings = kw.pop("settings", SETTINGS)
-    return ingest_case(case=case, raw=str(raw_dir / "*.nc"), varmap=VARMAPS[flavour],
-                       settings=settings, out=out, **kw)
+    return ingest_case(
+        case=case,
+        raw=str(raw_dir / "*.nc"),
+        varmap=VARMAPS[flavour],
+        settings=settings,
+        out=out,
+        **kw,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -54,8 +62,15 @@ def test_flavours_share_canonical_conventions(ingested, small_specs, case):
     assert ds["qc"].dims == ("time", "z", "y", "x")
     assert ds["w"].shape[1] == spec.nz  # w interpolated to centres, not nz + 1 faces
     units = {v: ds[v].attrs["units"] for v in ("qc", "qv", "T", "p", "w", "rh", "lwp")}
-    assert units == {"qc": "kg kg-1", "qv": "kg kg-1", "T": "K", "p": "Pa", "w": "m s-1",
-                     "rh": "1", "lwp": "kg m-2"}
+    assert units == {
+        "qc": "kg kg-1",
+        "qv": "kg kg-1",
+        "T": "K",
+        "p": "Pa",
+        "w": "m s-1",
+        "rh": "1",
+        "lwp": "kg m-2",
+    }
     assert ds["qc"].attrs["standard_name"] == "cloud_liquid_water_mixing_ratio"
     assert ds.attrs["Conventions"] == "CF-1.12, ACDD-1.3"
     # values equal the generator's own truth after the flavour's units, order and grid
@@ -66,11 +81,18 @@ def test_flavours_share_canonical_conventions(ingested, small_specs, case):
     j, ti = 1, int(kept[1])
     truth = demo_fields(spec, ti)
     for v in ("qc", "qv", "T", "w"):
-        np.testing.assert_allclose(ds[v].isel(time=j).values, truth[v], rtol=2e-5,
-                                   atol={"qc": 1e-8, "qv": 1e-8, "T": 1e-3, "w": 1e-5}[v])
+        np.testing.assert_allclose(
+            ds[v].isel(time=j).values,
+            truth[v],
+            rtol=2e-5,
+            atol={"qc": 1e-8, "qv": 1e-8, "T": 1e-3, "w": 1e-5}[v],
+        )
     p = ds["p"].values if ds["p"].dims == ("z",) else ds["p"].isel(time=j).values
-    np.testing.assert_allclose(np.broadcast_to(p if p.ndim == 3 else p[:, None, None],
-                                               truth["p"].shape), truth["p"], rtol=1e-6)
+    np.testing.assert_allclose(
+        np.broadcast_to(p if p.ndim == 3 else p[:, None, None], truth["p"].shape),
+        truth["p"],
+        rtol=1e-6,
+    )
 
 
 def test_rh_and_lwp_against_metpy(ingested):
@@ -79,8 +101,9 @@ def test_rh_and_lwp_against_metpy(ingested):
 
     ds = open_store(ingested["sc-ostra-01"]).isel(time=2)
     p, t, qv, qc = (ds[v].values.astype(np.float64) for v in ("p", "T", "qv", "qc"))
-    ref = mpcalc.relative_humidity_from_mixing_ratio(p * units.Pa, t * units.K,
-                                                     qv * units("kg/kg")).magnitude
+    ref = mpcalc.relative_humidity_from_mixing_ratio(
+        p * units.Pa, t * units.K, qv * units("kg/kg")
+    ).magnitude
     # MetPy uses Ambaum (2020) e_s; Bolton (1980) differs by < 0.3 % in this range
     np.testing.assert_allclose(ds["rh"].values, ref, rtol=5e-3)
     rho = mpcalc.density(p * units.Pa, t * units.K, qv * units("kg/kg")).to("kg/m^3").magnitude
@@ -160,20 +183,27 @@ def test_nan_reports_count_and_location(tmp_path, case_copy):
     with netCDF4.Dataset(raw / "snap_0004.nc", "a") as nc:
         nc["vap"][0, 3, 5, 7] = np.nan
         nc["vap"][0, 4, 5, 7] = np.inf
-    msg = _expect_failure(tmp_path, "cu-marro-01", raw, "alpha", NonFiniteError,
-                          "2 NaN/Inf")
+    msg = _expect_failure(tmp_path, "cu-marro-01", raw, "alpha", NonFiniteError, "2 NaN/Inf")
     assert "zc=3, y=5, x=7" in msg and "snap_0004.nc" in msg
 
 
 def test_spinup_longer_than_run(tmp_path, demo_root):
     long = IngestSettings(spinup="30 h", cloud_threshold="1e-5 kg/kg", ranges=SETTINGS.ranges)
-    _expect_failure(tmp_path, "sc-pelle-01", demo_root / "sc-pelle-01", "alpha",
-                    TimeAxisError, "beyond the end", settings=long)
+    _expect_failure(
+        tmp_path,
+        "sc-pelle-01",
+        demo_root / "sc-pelle-01",
+        "alpha",
+        TimeAxisError,
+        "beyond the end",
+        settings=long,
+    )
 
 
 def test_glob_matching_nothing(tmp_path):
-    _expect_failure(tmp_path, "sc-ostra-01", tmp_path / "nowhere", "alpha", InputError,
-                    "matches no file")
+    _expect_failure(
+        tmp_path, "sc-ostra-01", tmp_path / "nowhere", "alpha", InputError, "matches no file"
+    )
 
 
 def test_duplicate_time_across_files(tmp_path, case_copy):
@@ -186,8 +216,9 @@ def test_truncated_file(tmp_path, case_copy):
     raw = case_copy("sc-ostra-02")
     data = (raw / "theta.nc").read_bytes()
     (raw / "theta.nc").write_bytes(data[: len(data) // 3])
-    _expect_failure(tmp_path, "sc-ostra-02", raw, "beta", InputError,
-                    "truncated or corrupt|cannot be read")
+    _expect_failure(
+        tmp_path, "sc-ostra-02", raw, "beta", InputError, "truncated or corrupt|cannot be read"
+    )
 
 
 def test_non_uniform_dx(tmp_path, case_copy):
@@ -208,14 +239,22 @@ def test_files_on_different_grids(tmp_path, case_copy):
 
 
 def test_varmap_naming_missing_dimension(tmp_path, demo_root):
-    text = VARMAPS["beta"].read_text().replace("wc, dims: [time, x, y, z]",
-                                               "wc, dims: [time, y, x, z]")
+    text = (
+        VARMAPS["beta"]
+        .read_text()
+        .replace("wc, dims: [time, x, y, z]", "wc, dims: [time, y, x, z]")
+    )
     vm = tmp_path / "bad.yaml"
     vm.write_text(text)
     out = tmp_path / "o" / "canonical.zarr"
     with pytest.raises(ConfigError, match="dims"):
-        ingest_case(case="sc-ostra-02", raw=str(demo_root / "sc-ostra-02" / "*.nc"),
-                    varmap=vm, settings=SETTINGS, out=out)
+        ingest_case(
+            case="sc-ostra-02",
+            raw=str(demo_root / "sc-ostra-02" / "*.nc"),
+            varmap=vm,
+            settings=SETTINGS,
+            out=out,
+        )
     assert not out.exists()
 
 

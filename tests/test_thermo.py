@@ -39,9 +39,11 @@ def test_relative_humidity_against_metpy() -> None:
     t = rng.uniform(265.0, 305.0, 200)
     r = rng.uniform(0.2, 1.0, 200) * thermo.saturation_mixing_ratio(p, t)
     ours = thermo.relative_humidity(p, t, r)
-    ref = mpcalc.relative_humidity_from_mixing_ratio(
-        p * units.Pa, t * units.K, r * units("kg/kg")
-    ).to("dimensionless").magnitude
+    ref = (
+        mpcalc.relative_humidity_from_mixing_ratio(p * units.Pa, t * units.K, r * units("kg/kg"))
+        .to("dimensionless")
+        .magnitude
+    )
     # MetPy 1.7 uses Ambaum (2020) for e_s, Bolton differs by up to 0.26 % at 30 degC.
     np.testing.assert_allclose(ours, ref, rtol=5e-3)
 

@@ -33,8 +33,9 @@ def test_conversion_matches_plain_pint(found: str, expected: str, value: float) 
 
 def test_wrong_dimension_names_everything() -> None:
     with pytest.raises(UnitError) as err:
-        conversion(variable="T", raw_variable="tempc", found="m s-1", expected="K",
-                   case="c1", file="a.nc")
+        conversion(
+            variable="T", raw_variable="tempc", found="m s-1", expected="K", case="c1", file="a.nc"
+        )
     msg = str(err.value)
     for part in ("c1", "a.nc", "tempc", "m s-1", "'K'"):
         assert part in msg
@@ -43,21 +44,27 @@ def test_wrong_dimension_names_everything() -> None:
 def test_missing_units_error_and_assumption() -> None:
     with pytest.raises(UnitError, match="no units"):
         conversion(variable="qc", raw_variable="liq", found=None, expected="kg kg-1")
-    conv = conversion(variable="qc", raw_variable="liq", found="", expected="kg kg-1",
-                      assumed="g/kg")
+    conv = conversion(
+        variable="qc", raw_variable="liq", found="", expected="kg kg-1", assumed="g/kg"
+    )
     assert conv.assumed and conv.factor == pytest.approx(1e-3)
 
 
 def test_unparsable_units() -> None:
     with pytest.raises(UnitError, match="not a UDUNITS"):
-        conversion(variable="qc", raw_variable="liq", found="furlongs per gobbet",
-                   expected="kg kg-1")
+        conversion(
+            variable="qc", raw_variable="liq", found="furlongs per gobbet", expected="kg kg-1"
+        )
 
 
 @pytest.mark.parametrize(
     "text, expected, value",
-    [("2 h", "s", 7200.0), ("90 min", "s", 5400.0), ("1e-5 kg/kg", "kg kg-1", 1e-5),
-     ("0.01 g/kg", "kg kg-1", 1e-5)],
+    [
+        ("2 h", "s", 7200.0),
+        ("90 min", "s", 5400.0),
+        ("1e-5 kg/kg", "kg kg-1", 1e-5),
+        ("0.01 g/kg", "kg kg-1", 1e-5),
+    ],
 )
 def test_parse_quantity(text: str, expected: str, value: float) -> None:
     assert parse_quantity(text, expected, name="x") == pytest.approx(value, rel=1e-12)

@@ -42,6 +42,13 @@ def test_demo_runs_end_to_end(project):
         assert cases == {c for c, s in assign.items() if s == split}
         assert ds["qc_patch"].shape[1:] == (6, 6)
     assert (r / "sets" / "normalization-600m.json").exists()
+    # no sample of a test case is in the train store and vice versa
+    for lab in ("200m", "600m", "1200m"):
+        seen = {
+            sp: set(decode_category(open_set(r / "sets" / sp / f"scale-{lab}.zarr"), "case"))
+            for sp in ("train", "test")
+        }
+        assert seen["train"] and seen["test"] and not seen["train"] & seen["test"]
     assert project.planned_jobs() == {}  # a second run has nothing to do
 
 

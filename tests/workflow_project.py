@@ -15,8 +15,13 @@ import yaml
 REPO = Path(__file__).resolve().parents[1]
 SNAKEMAKE = str(Path(sys.executable).parent / "snakemake")
 TINY = {"nx": 24, "ny": 24, "nz": 24, "ntimes": 5}
-FLAVOUR = {"sc-ostra-01": "alpha", "sc-ostra-02": "beta", "sc-pelle-01": "alpha",
-           "cu-marro-01": "alpha", "cu-marro-02": "beta"}
+FLAVOUR = {
+    "sc-ostra-01": "alpha",
+    "sc-ostra-02": "beta",
+    "sc-pelle-01": "alpha",
+    "cu-marro-01": "alpha",
+    "cu-marro-02": "beta",
+}
 REGIME = {c: ("cumulus" if c.startswith("cu") else "stratocumulus") for c in FLAVOUR}
 
 
@@ -26,8 +31,10 @@ def base_config() -> dict[str, Any]:
         "results": "results",
         "demo": {"root": "resources/demo", "size": dict(TINY)},
         "ingest": {"spinup": "1 h", "cloud_threshold": "1e-5 kg/kg"},
-        "coarsen": {"scales": ["200 m", "600 m", "1200 m"],
-                    "patches": {"variables": ["qc", "w"], "scales": ["600 m"], "size": 6}},
+        "coarsen": {
+            "scales": ["200 m", "600 m", "1200 m"],
+            "patches": {"variables": ["qc", "w"], "scales": ["600 m"], "size": 6},
+        },
         "splits": {"seed": 3, "fractions": {"train": 0.5, "validation": 0.0, "test": 0.5}},
         "sets": {"shuffle": True, "shuffle_seed": 1, "chunk_mib": 1},
     }
@@ -40,15 +47,32 @@ class Project:
     rows: list[dict[str, str]] = field(default_factory=list)
 
     def add_demo_case(self, case: str, **extra: str) -> None:
-        self.rows.append({"case": case, "regime": REGIME[case],
-                          "varmap": f"{REPO}/config/varmaps/flavour-{FLAVOUR[case]}.yaml",
-                          "raw": f"resources/demo/{case}/*.nc", "split": "", "spinup": "",
-                          "demo": "yes", **extra})
+        self.rows.append(
+            {
+                "case": case,
+                "regime": REGIME[case],
+                "varmap": f"{REPO}/config/varmaps/flavour-{FLAVOUR[case]}.yaml",
+                "raw": f"resources/demo/{case}/*.nc",
+                "split": "",
+                "spinup": "",
+                "demo": "yes",
+                **extra,
+            }
+        )
 
     def add_case(self, case: str, raw: str, flavour: str, regime: str, **extra: str) -> None:
-        self.rows.append({"case": case, "regime": regime,
-                          "varmap": f"{REPO}/config/varmaps/flavour-{flavour}.yaml",
-                          "raw": raw, "split": "", "spinup": "", "demo": "no", **extra})
+        self.rows.append(
+            {
+                "case": case,
+                "regime": regime,
+                "varmap": f"{REPO}/config/varmaps/flavour-{flavour}.yaml",
+                "raw": raw,
+                "split": "",
+                "spinup": "",
+                "demo": "no",
+                **extra,
+            }
+        )
 
     def write(self) -> None:
         (self.root / "config").mkdir(parents=True, exist_ok=True)
@@ -57,17 +81,30 @@ class Project:
         lines = ["\t".join(cols)] + ["\t".join(r[c] for c in cols) for r in self.rows]
         (self.root / "config/cases.tsv").write_text("\n".join(lines) + "\n")
 
-    def snakemake(self, *args: str, timeout: float = 900,
-                  check: bool = True) -> subprocess.CompletedProcess[str]:
+    def snakemake(
+        self, *args: str, timeout: float = 900, check: bool = True
+    ) -> subprocess.CompletedProcess[str]:
         self.write()
-        cmd = [SNAKEMAKE, "-s", str(REPO / "Snakefile"), "--directory", str(self.root),
-               "--configfile", str(self.root / "config/config.yaml"), "--cores", "2", *args]
+        cmd = [
+            SNAKEMAKE,
+            "-s",
+            str(REPO / "Snakefile"),
+            "--directory",
+            str(self.root),
+            "--configfile",
+            str(self.root / "config/config.yaml"),
+            "--cores",
+            "2",
+            *args,
+        ]
         env = {**os.environ, "PYTHONWARNINGS": "ignore"}
-        res = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env,
-                             stdin=subprocess.DEVNULL)
+        res = subprocess.run(
+            cmd, capture_output=True, text=True, timeout=timeout, env=env, stdin=subprocess.DEVNULL
+        )
         if check and res.returncode != 0:
-            raise AssertionError(f"snakemake failed ({res.returncode}):\n{res.stdout[-4000:]}"
-                                 f"\n{res.stderr[-6000:]}")
+            raise AssertionError(
+                f"snakemake failed ({res.returncode}):\n{res.stdout[-4000:]}\n{res.stderr[-6000:]}"
+            )
         return res
 
     def planned_jobs(self) -> dict[str, int]:

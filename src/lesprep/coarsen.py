@@ -450,7 +450,7 @@ def coarsen_case(
                 reason = next(
                     (k["reason"] for k in skipped if _label(k["scale"]) == lab), "not computed"
                 )
-                info = {"scale": lab, "skipped": reason}
+                info = {"scale": lab, "skip_reason": reason}
             else:
                 g = groups[lab]
                 info = {"scale": lab, "factor": s.factor, "length_m": s.length_m, "dx": dx}
@@ -486,7 +486,7 @@ def coarsen_case(
                     }
                 )
             else:
-                attrs["skipped"] = info["skipped"]
+                attrs["skipped"] = info["skip_reason"]
             g.attrs.update(provenance.extend(attrs, step, f"coarsened case {case} to {lab}"))
             consolidate(tmp)
             written[lab] = Path(outputs[lab])

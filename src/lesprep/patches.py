@@ -30,7 +30,7 @@ def patch_geometry(factor: int, size: int, halo: int, *, scale: str = "") -> tup
     if factor <= size:
         return 1, factor + 2 * halo
     if factor % size:
-        valid = [p for p in divisors(factor) if p <= size] or [1]
+        valid = [p for p in divisors(factor) if p < factor]
         raise ScaleError(
             f"patch size {size} does not divide the block factor {factor} of scale "
             f"{scale!r}; patch sizes that divide it: {valid} (or any size >= {factor} for "

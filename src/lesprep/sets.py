@@ -55,9 +55,15 @@ class SetSettings:
 
     def to_dict(self) -> dict[str, Any]:
         """Record for provenance."""
-        return {"z_range_m": self.z_range, "time_stride": self.time_stride,
-                "shuffle": self.shuffle, "shuffle_seed": self.shuffle_seed,
-                "chunk_mib": self.chunk_mib, "dtype": self.dtype, "store": dict(self.store or {})}
+        return {
+            "z_range_m": self.z_range,
+            "time_stride": self.time_stride,
+            "shuffle": self.shuffle,
+            "shuffle_seed": self.shuffle_seed,
+            "chunk_mib": self.chunk_mib,
+            "dtype": self.dtype,
+            "store": dict(self.store or {}),
+        }
 
 
 def settings_from_config(cfg: Mapping[str, Any]) -> SetSettings:
@@ -66,16 +72,21 @@ def settings_from_config(cfg: Mapping[str, Any]) -> SetSettings:
     zr = s.get("z_range")
     z_range = None
     if zr:
-        z_range = (parse_quantity(zr[0], "m", name="sets.z_range[0]"),
-                   parse_quantity(zr[1], "m", name="sets.z_range[1]"))
+        z_range = (
+            parse_quantity(zr[0], "m", name="sets.z_range[0]"),
+            parse_quantity(zr[1], "m", name="sets.z_range[1]"),
+        )
         if z_range[0] > z_range[1]:
             raise ConfigError(f"sets.z_range {zr} is empty (min > max)")
-    return SetSettings(z_range=z_range, time_stride=int(s.get("time_stride", 1)),
-                       shuffle=bool(s.get("shuffle", True)),
-                       shuffle_seed=int(s.get("shuffle_seed", 0)),
-                       chunk_mib=float(s.get("chunk_mib", 8)),
-                       dtype=cfg["ingest"].get("dtype", "float32"),
-                       store=dict(cfg.get("store", {})))
+    return SetSettings(
+        z_range=z_range,
+        time_stride=int(s.get("time_stride", 1)),
+        shuffle=bool(s.get("shuffle", True)),
+        shuffle_seed=int(s.get("shuffle_seed", 0)),
+        chunk_mib=float(s.get("chunk_mib", 8)),
+        dtype=cfg["ingest"].get("dtype", "float32"),
+        store=dict(cfg.get("store", {})),
+    )
 
 
 @dataclass(frozen=True)
@@ -109,8 +120,17 @@ def _kept(ds: xr.Dataset, st: SetSettings) -> tuple[np.ndarray, np.ndarray]:
     return t_idx, z_idx
 
 
-def _case_pieces(ds: xr.Dataset, t_idx: np.ndarray, z_idx: np.ndarray, feats, cols,
-                 patches, meta: dict[str, int], *, limit_bytes: int = 128 * 2**20):
+def _case_pieces(
+    ds: xr.Dataset,
+    t_idx: np.ndarray,
+    z_idx: np.ndarray,
+    feats,
+    cols,
+    patches,
+    meta: dict[str, int],
+    *,
+    limit_bytes: int = 128 * 2**20,
+):
     """Yield the samples of each kept time of one case, in (z, y, x) order.
 
     Several times are read per array access (up to ``limit_bytes``), which is far faster
@@ -119,14 +139,16 @@ def _case_pieces(ds: xr.Dataset, t_idx: np.ndarray, z_idx: np.ndarray, feats, co
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     nz = z_idx.size
     n = nz * ny * nx
-    per_time = sum(ds[v].dtype.itemsize * n * (math.prod(ds[v].shape[-2:]) if v in patches
-                                                else 1) for v in feats + patches)
+    per_time = sum(
+        ds[v].dtype.itemsize * n * (math.prod(ds[v].shape[-2:]) if v in patches else 1)
+        for v in feats + patches
+    )
     block = int(max(1, limit_bytes // max(1, per_time)))
     zz, yy, xx = np.meshgrid(ds.z.values[z_idx], ds.y.values, ds.x.values, indexing="ij")
     zz, yy, xx = zz.reshape(-1), yy.reshape(-1), xx.reshape(-1)
     profile_cols = {c: ds[c].values[z_idx] for c in cols if ds[c].dims == ("z",)}
     for b0 in range(0, t_idx.size, block):
-        tb = t_idx[b0:b0 + block]
+        tb = t_idx[b0 : b0 + block]
         data = {v: ds[v].isel(time=tb, z=z_idx).values for v in feats + patches}
         data.update({c: ds[c].isel(time=tb).values for c in cols if c not in profile_cols})
         for k, t in enumerate(tb):
@@ -134,7 +156,7 @@ def _case_pieces(ds: xr.Dataset, t_idx: np.ndarray, z_idx: np.ndarray, feats, co
             for v in feats:
                 out[v] = data[v][k].reshape(-1)
             for v in cols:
-                a = (profile_cols[v][:, None, None] if v in profile_cols else data[v][k][None])
+                a = profile_cols[v][:, None, None] if v in profile_cols else data[v][k][None]
                 out[v] = np.ascontiguousarray(np.broadcast_to(a, (nz, ny, nx))).reshape(-1)
             for v in patches:
                 a = data[v][k]
@@ -173,11 +195,17 @@ def build_set(
     extra_provenance
         Extra fields of the provenance step (split rule, assignment, ...).
     """
-    case_ids = sorted(inputs)
-    if not case_ids:
+    if not inputs:
         raise ConfigError(f"split {split!r} has no case at scale {scale}; nothing to assemble")
+    stores = {c: open_store(inputs[c]) for c in sorted(inputs)}
+    skipped = {c: str(ds.attrs["skipped"]) for c, ds in stores.items() if "skipped" in ds.attrs}
+    for c in skipped:
+        log.warning("case %s has no data at scale %s (skipped: %s)", c, scale, skipped[c])
+        stores.pop(c).close()
+    case_ids = sorted(stores)
+    if not case_ids:
+        return _empty_set(out, split=split, scale=scale, skipped=skipped)
     regime_names = sorted({regimes.get(c, "") or "none" for c in case_ids})
-    stores = {c: open_store(inputs[c]) for c in case_ids}
     layouts = {c: _layout(ds) for c, ds in stores.items()}
     ref = layouts[case_ids[0]]
     for c in case_ids[1:]:
@@ -198,8 +226,10 @@ def build_set(
         pieces.extend(_Piece(ci, int(t), n) for t in t_idx)
     total = int(sum(p.n for p in pieces))
     if total == 0:
-        raise ConfigError(f"split {split!r} at scale {scale}: the filters leave no sample",
-                          hint="widen sets.z_range or lower sets.time_stride")
+        raise ConfigError(
+            f"split {split!r} at scale {scale}: the filters leave no sample",
+            hint="widen sets.z_range or lower sets.time_stride",
+        )
     dtype = np.dtype(settings.dtype)
     patch_shape = {n: stores[case_ids[0]][n].shape[-2:] for n in patches}
     widest = max([dtype.itemsize] + [dtype.itemsize * math.prod(s) for s in patch_shape.values()])
@@ -209,10 +239,15 @@ def build_set(
         perm = np.random.default_rng(settings.shuffle_seed).permutation(total)
     comp = compressors(settings.store)
     first = stores[case_ids[0]]
-    dtypes: dict[str, np.dtype] = {**{n: dtype for n in feats + cols + patches},
-                                   "time": np.dtype("float64"), "z": np.dtype("float64"),
-                                   "y": np.dtype("float64"), "x": np.dtype("float64"),
-                                   "case": np.dtype("int16"), "regime": np.dtype("int16")}
+    dtypes: dict[str, np.dtype] = {
+        **{n: dtype for n in feats + cols + patches},
+        "time": np.dtype("float64"),
+        "z": np.dtype("float64"),
+        "y": np.dtype("float64"),
+        "x": np.dtype("float64"),
+        "case": np.dtype("int16"),
+        "regime": np.dtype("int16"),
+    }
     with atomic_path(out) as tmp:
         root = zarr.open_group(str(tmp), mode="w-", zarr_format=3)
         arrays: dict[str, Any] = {}
@@ -225,18 +260,32 @@ def build_set(
                 chunks = (chunk, *patch_shape[name])
                 dims = ["sample", "py", "px"]
             fill = 0 if dt.kind in "iu" else 0.0
-            arrays[name] = root.create_array(name, shape=shape, chunks=chunks, dtype=dt,
-                                             compressors=comp, fill_value=fill,
-                                             dimension_names=dims)
+            arrays[name] = root.create_array(
+                name,
+                shape=shape,
+                chunks=chunks,
+                dtype=dt,
+                compressors=comp,
+                fill_value=fill,
+                dimension_names=dims,
+            )
             if name in first:
                 attrs = dict(first[name].attrs)
                 arrays[name].attrs.update(attrs)
-        arrays["case"].attrs.update({"long_name": "case of the sample", "flag_values":
-                                     list(range(len(case_ids))),
-                                     "flag_meanings": " ".join(case_ids)})
-        arrays["regime"].attrs.update({"long_name": "regime tag of the sample's case",
-                                       "flag_values": list(range(len(regime_names))),
-                                       "flag_meanings": " ".join(regime_names)})
+        arrays["case"].attrs.update(
+            {
+                "long_name": "case of the sample",
+                "flag_values": list(range(len(case_ids))),
+                "flag_meanings": " ".join(case_ids),
+            }
+        )
+        arrays["regime"].attrs.update(
+            {
+                "long_name": "regime tag of the sample's case",
+                "flag_values": list(range(len(regime_names))),
+                "flag_meanings": " ".join(regime_names),
+            }
+        )
         coord_names = "case regime time z y x"
         for name in feats + cols + patches:
             arrays[name].attrs["coordinates"] = coord_names
@@ -251,7 +300,7 @@ def build_set(
                 n = data["time"].size
                 if writer is None:
                     for name, a in data.items():
-                        arrays[name][pos:pos + n] = a.astype(dtypes[name], copy=False)
+                        arrays[name][pos : pos + n] = a.astype(dtypes[name], copy=False)
                 else:
                     writer.add(pos, data)
                 pos += n
@@ -260,29 +309,63 @@ def build_set(
             writer.finish()
         prov_inputs = [dict(s.attrs) for s in stores.values()]
         step = provenance.new_step(
-            "assemble", split=split, scale=scale, cases=case_ids,
-            inputs={c: str(inputs[c]) for c in case_ids}, samples=total,
-            settings=settings.to_dict(), **dict(extra_provenance or {}),
+            "assemble",
+            split=split,
+            scale=scale,
+            cases=case_ids,
+            inputs={c: str(inputs[c]) for c in case_ids},
+            samples=total,
+            skipped_cases=skipped,
+            settings=settings.to_dict(),
+            **dict(extra_provenance or {}),
         )
         lineage = provenance.merge(prov_inputs)
         lineage["steps"].append(step)
-        history = "\n".join(sorted({h for a in prov_inputs for h in
-                                    str(a.get("history", "")).splitlines() if h}))
-        root.attrs.update({
-            "Conventions": "CF-1.12, ACDD-1.3",
-            "title": f"lesprep training samples, split {split}, scale {scale}",
-            "summary": "Coarse cells of whole cases stacked along 'sample' with their "
-            "sub-grid statistics, GCM-view inputs and fine patches.",
-            "split": split, "scale": scale, "cases": case_ids,
-            "sample_order": "shuffled" if perm is not None else "case, time, z, y, x",
-            "history": (history + f"\n{step['created']} lesprep assemble: {split} {scale} "
-                        f"({total} samples)").strip(),
-            "date_created": step["created"],
-            provenance.ATTR: json.dumps(lineage, sort_keys=True, default=str),
-        })
+        history = "\n".join(
+            sorted({h for a in prov_inputs for h in str(a.get("history", "")).splitlines() if h})
+        )
+        root.attrs.update(
+            {
+                "Conventions": "CF-1.12, ACDD-1.3",
+                "title": f"lesprep training samples, split {split}, scale {scale}",
+                "summary": "Coarse cells of whole cases stacked along 'sample' with their "
+                "sub-grid statistics, GCM-view inputs and fine patches.",
+                "split": split,
+                "scale": scale,
+                "cases": case_ids,
+                "sample_order": "shuffled" if perm is not None else "case, time, z, y, x",
+                "history": (
+                    history + f"\n{step['created']} lesprep assemble: {split} {scale} "
+                    f"({total} samples)"
+                ).strip(),
+                "date_created": step["created"],
+                provenance.ATTR: json.dumps(lineage, sort_keys=True, default=str),
+            }
+        )
         consolidate(tmp)
     for s in stores.values():
         s.close()
+    return Path(out)
+
+
+def _empty_set(out: str | Path, *, split: str, scale: str, skipped: Mapping[str, str]) -> Path:
+    """A store with no samples: every case of the split skipped this scale."""
+    with atomic_path(out) as tmp:
+        root = zarr.open_group(str(tmp), mode="w-", zarr_format=3)
+        step = provenance.new_step(
+            "assemble", split=split, scale=scale, cases=[], samples=0, skipped_cases=dict(skipped)
+        )
+        root.attrs.update(
+            {
+                "title": f"lesprep training samples, split {split}, scale {scale} (empty)",
+                "split": split,
+                "scale": scale,
+                "cases": [],
+                "skipped": "every case of the split skipped this scale",
+                provenance.ATTR: json.dumps({"format": 1, "steps": [step]}, default=str),
+            }
+        )
+        consolidate(tmp)
     return Path(out)
 
 
@@ -294,8 +377,9 @@ class _ShuffleWriter:
     the records in place and writes the chunk once.
     """
 
-    def __init__(self, arrays: Mapping[str, Any], total: int, chunk: int,
-                 perm: np.ndarray, scratch: Path) -> None:
+    def __init__(
+        self, arrays: Mapping[str, Any], total: int, chunk: int, perm: np.ndarray, scratch: Path
+    ) -> None:
         self.arrays = arrays
         self.total = total
         self.chunk = chunk
@@ -305,14 +389,15 @@ class _ShuffleWriter:
         self.dir.mkdir(parents=True)
         fields = [("_pos", np.int64)]
         for name, arr in arrays.items():
-            fields.append((name, arr.dtype, tuple(arr.shape[1:])) if arr.ndim > 1
-                          else (name, arr.dtype))
+            fields.append(
+                (name, arr.dtype, tuple(arr.shape[1:])) if arr.ndim > 1 else (name, arr.dtype)
+            )
         self.record = np.dtype(fields)
 
     def add(self, start: int, data: Mapping[str, np.ndarray]) -> None:
         n = next(iter(data.values())).shape[0]
         rec = np.empty(n, dtype=self.record)
-        rec["_pos"] = self.perm[start:start + n]
+        rec["_pos"] = self.perm[start : start + n]
         for name, a in data.items():
             rec[name] = a
         bucket = rec["_pos"] // self.chunk
@@ -321,7 +406,7 @@ class _ShuffleWriter:
         bounds = np.searchsorted(bucket[order], np.arange(self.nb + 1))
         for b in np.nonzero(np.diff(bounds))[0]:
             with open(self.dir / f"{b}.bin", "ab") as fh:
-                fh.write(rec[bounds[b]:bounds[b + 1]].tobytes())
+                fh.write(rec[bounds[b] : bounds[b + 1]].tobytes())
 
     def finish(self) -> None:
         try:
@@ -330,8 +415,7 @@ class _ShuffleWriter:
                 hi = min(self.total, lo + self.chunk)
                 rec = np.fromfile(self.dir / f"{b}.bin", dtype=self.record)
                 if rec.size != hi - lo:
-                    raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected "
-                                       f"{hi - lo}")
+                    raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected {hi - lo}")
                 rec = rec[np.argsort(rec["_pos"])]
                 for name, arr in self.arrays.items():
                     arr[lo:hi] = rec[name]
@@ -353,7 +437,7 @@ def normalization_stats(store: str | Path) -> dict[str, dict[str, float]]:
         n_tot, mean, m2 = 0, 0.0, 0.0
         step = arr.chunks[0] * 4
         for lo in range(0, arr.shape[0], step):
-            a = np.asarray(arr[lo:lo + step], dtype=np.float64).reshape(-1)
+            a = np.asarray(arr[lo : lo + step], dtype=np.float64).reshape(-1)
             n = a.size
             if n == 0:
                 continue
@@ -364,20 +448,29 @@ def normalization_stats(store: str | Path) -> dict[str, dict[str, float]]:
             mean += delta * n / tot
             m2 += m2a + delta * delta * n_tot * n / tot
             n_tot = tot
-        out[name] = {"mean": mean, "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"),
-                     "count": n_tot}
+        out[name] = {
+            "mean": mean,
+            "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"),
+            "count": n_tot,
+        }
     return out
 
 
-def write_normalization(train_store: str | Path, out_json: str | Path,
-                        *, scale: str) -> dict[str, Any]:
+def write_normalization(
+    train_store: str | Path, out_json: str | Path, *, scale: str
+) -> dict[str, Any]:
     """Compute train-only normalization statistics, write them as JSON and into attrs."""
-    stats = normalization_stats(train_store)
+    stats = normalization_stats(train_store)  # {} for an empty store
     root = zarr.open_group(str(train_store), mode="r+")
-    doc = {"scale": scale, "split": "train", "cases": root.attrs.get("cases"),
-           "convention": "mean and population standard deviation (ddof=0) over every "
-           "sample (and every patch pixel) of the train split only",
-           "created": provenance.utc_now(), "statistics": stats}
+    doc = {
+        "scale": scale,
+        "split": "train",
+        "cases": root.attrs.get("cases"),
+        "convention": "mean and population standard deviation (ddof=0) over every "
+        "sample (and every patch pixel) of the train split only",
+        "created": provenance.utc_now(),
+        "statistics": stats,
+    }
     root.attrs["normalization"] = json.dumps(doc, sort_keys=True)
     consolidate(train_store)
     out_json = Path(out_json)

@@ -244,12 +244,14 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
     origin_kind: str | None = None
     attrs: dict[str, Any] = {}
     notes: list[str] = []
+    seen_vars: set[str] = set()
     per_file_times: list[tuple[np.ndarray, pd.Timestamp | None]] = []
     opened: list[RawFile] = []
     try:
         for fi, path in enumerate(files):
             ds = open_raw(path, case=case)
             opened.append(ds)
+            seen_vars.update(ds.variables)
             if not attrs:
                 attrs = {k: str(v) for k, v in ds.attrs.items()}
             secs: np.ndarray | None = None
@@ -337,6 +339,20 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
             file=str(files[0]),
             hint="fix 'coords:' in the variable map",
         )
+    mapped = {v.raw for v in varmap.variables.values()} | {c["raw"] for c in varmap.coords.values()}
+    bounds = {str(ds_name) for ds_name in seen_vars if ds_name.endswith(("_bnds", "_bounds"))}
+    extra = sorted(seen_vars - mapped - set(varmap.dims) - bounds)
+    if extra:
+        notes.append(
+            f"case {case!r}: raw variable(s) {extra} are not in the variable map and are ignored"
+        )
+    for optional in ("z_face", "z_bounds"):
+        spec = varmap.coords.get(optional)
+        if spec and spec["raw"] not in seen_vars:
+            notes.append(
+                f"case {case!r}: optional coordinate {spec['raw']!r} ({optional}) is in "
+                "no raw file; cell faces are derived from the cell centres"
+            )
     missing = [
         f"{n} (raw {varmap.variables[n].raw!r})"
         for n in varmap.variables

@@ -391,6 +391,8 @@ def ingest_case(
     vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
     files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
     cat = catalogue(files, vm, case=case)
+    for note in cat.warnings:
+        log.warning("%s", note)
     dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
     faces = vertical_faces(
         cat.grid.z, z_face=cat.grid.z_face, z_bounds=cat.grid.z_bounds, case=case
@@ -456,6 +458,7 @@ def ingest_case(
             variable_map=vm.to_dict(),
             conversions=conv_records,
             times_dropped_s=dropped,
+            warnings=cat.warnings,
             times_kept=int(keep.size),
             time_origin=cat.origin,
             settings=settings.to_dict(),

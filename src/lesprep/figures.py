@@ -1,0 +1,811 @@
+"""Report figures and tables of the workflow's stores (PNG via matplotlib's Agg canvas).
+
+Every figure function reads one or two stores, draws one figure, writes it as a PNG to
+``out_png`` (atomically: a temporary sibling renamed into place) and returns the
+:class:`matplotlib.figure.Figure` so callers and tests can inspect what was drawn. The
+figures are built on :class:`matplotlib.figure.Figure` with an Agg canvas, never through
+``pyplot``, so no global backend state is touched and nothing has to be closed.
+
+Conventions
+-----------
+* Times are plotted in hours since the store's ``time_origin`` attribute (the start of
+  the run for duration time units, a date otherwise).
+* Domain cloud cover is the fraction of columns with at least one cloudy cell
+  (``cloud_mask`` over z); the domain-mean liquid water path is the plain mean of the
+  ``(y, x)`` field (the horizontal grid is uniform).
+* Profiles are time means over the kept (post spin-up) output times of per-time
+  horizontal statistics: the cloud fraction of a level is the fraction of its cells
+  flagged cloudy; the w variance of a level is the population variance (``ddof=0``)
+  about that level's horizontal mean at each time.
+* Statistics over training stores are accumulated over slices of ``chunk`` samples, so
+  memory is bounded by one slice, and in float64.
+* The Sundqvist et al. (1989) curve uses the store's ``rh_critical`` (root attribute, or
+  the coarsening settings recorded in its provenance), else 0.8 (common practice).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import LogNorm
+from matplotlib.figure import Figure
+from numpy.typing import ArrayLike, NDArray
+
+from . import __version__, provenance
+from .baseline import baseline_errors, sundqvist_cloud_fraction
+from .errors import InputError
+from .scenes import SceneDescriptors, describe_case
+from .splits import read_assignment_tsv
+from .store import open_store
+
+__all__ = [
+    "DEFAULT_RH_CRITICAL",
+    "baseline_skill",
+    "case_lwp_map",
+    "case_profiles",
+    "case_timeseries",
+    "raw_output_times",
+    "rh_critical_of",
+    "scale_cf_vs_rh",
+    "scale_target_distribution",
+    "scene_table_rst",
+    "scenes_for_case",
+    "write_scenes_tsv",
+]
+
+DEFAULT_RH_CRITICAL = 0.8
+"""Critical relative humidity used when a store records none (common practice)."""
+
+_CHUNK = 1 << 22  # samples per read of a training store (16 MiB of float32)
+_DPI = 120
+_SPINUP_COLOUR = "0.6"
+_KG_M2 = "kg m$^{-2}$"
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _figure(width: float, height: float) -> Figure:
+    fig = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save(fig: Figure, out_png: str | Path) -> Path:
+    """Write ``fig`` as PNG into a temporary sibling and rename it to ``out_png``."""
+    out = Path(out_png)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
+    try:
+        fig.savefig(tmp, format="png", metadata={"Software": f"lesprep {__version__}"})
+        os.replace(tmp, out)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return out
+
+
+def _case_name(ds: xr.Dataset, path: str | Path) -> str:
+    return str(ds.attrs.get("case") or Path(path).parent.name)
+
+
+def _origin_text(ds: xr.Dataset) -> str:
+    """What the store's times count from: "the start of the run" or a date."""
+    origin = str(ds.attrs.get("time_origin") or ds["time"].attrs.get("time_origin") or "")
+    if not origin or origin == "start of run":
+        return "the start of the run"
+    return origin.replace("T", " ")
+
+
+def _ingest_step(ds: xr.Dataset) -> dict[str, Any]:
+    for step in provenance.load(dict(ds.attrs)).get("steps", []):
+        if step.get("step") == "ingest":
+            return step
+    return {}
+
+
+def _require(ds: xr.Dataset, names: tuple[str, ...], path: str | Path) -> None:
+    missing = [n for n in names if n not in ds.variables]
+    if missing:
+        raise InputError(
+            f"store lacks variable(s) {missing}; expected a lesprep store holding {list(names)}",
+            file=str(path),
+            hint="pass the right store (canonical.zarr, scale-<L>m.zarr or a set store)",
+        )
+
+
+def raw_output_times(canonical_path: str | Path) -> tuple[NDArray[np.float64], float]:
+    """Every raw output time of a case and its spin-up, from a canonical store.
+
+    The canonical store holds only the kept times; the dropped ones are recorded in the
+    ingest step of its provenance (``times_dropped_s``).
+
+    Parameters
+    ----------
+    canonical_path
+        A case's canonical store.
+
+    Returns
+    -------
+    times
+        Kept and dropped output times, sorted, in s since the store's time origin.
+    spinup_s
+        The spin-up the case was ingested with (root attribute ``spinup_s``), in s.
+
+    Examples
+    --------
+    >>> times, spinup = raw_output_times("results/cases/c/canonical.zarr")  # doctest: +SKIP
+    """
+    ds = open_store(canonical_path)
+    try:
+        kept = np.asarray(ds["time"].values, dtype=np.float64)
+        dropped = np.asarray(_ingest_step(ds).get("times_dropped_s", []), dtype=np.float64)
+        spinup = float(ds.attrs.get("spinup_s", 0.0))
+    finally:
+        ds.close()
+    return np.sort(np.concatenate([dropped, kept])), spinup
+
+
+def _set_slices(ds: xr.Dataset, chunk: int) -> Iterator[slice]:
+    n = int(ds.sizes.get("sample", 0))
+    for start in range(0, n, max(1, int(chunk))):
+        yield slice(start, min(n, start + chunk))
+
+
+def _set_scale(ds: xr.Dataset) -> str:
+    return str(ds.attrs.get("scale", "?"))
+
+
+def _find_rh_critical(record: Mapping[str, Any]) -> float | None:
+    for inp in record.get("inputs", []):
+        found = _find_rh_critical(inp)
+        if found is not None:
+            return found
+    for step in record.get("steps", []):
+        value = (
+            step.get("settings", {}).get("rh_critical") if step.get("step") == "coarsen" else None
+        )
+        if value is not None:
+            return float(value)
+    return None
+
+
+def rh_critical_of(ds: xr.Dataset) -> float:
+    """Critical relative humidity the store's ``cf_sundqvist`` was computed with.
+
+    Parameters
+    ----------
+    ds
+        A scale store or a training store.
+
+    Returns
+    -------
+    float
+        The root attribute ``rh_critical`` if present, else the ``rh_critical`` of the
+        first coarsening step in the provenance, else :data:`DEFAULT_RH_CRITICAL`.
+
+    Examples
+    --------
+    >>> rh_critical_of(xr.Dataset(attrs={"rh_critical": 0.7}))
+    0.7
+    >>> rh_critical_of(xr.Dataset())
+    0.8
+    """
+    if "rh_critical" in ds.attrs:
+        return float(ds.attrs["rh_critical"])
+    found = _find_rh_critical(provenance.load(dict(ds.attrs)))
+    return DEFAULT_RH_CRITICAL if found is None else found
+
+
+# --------------------------------------------------------------------------- per case
+
+
+def _domain_series(ds: xr.Dataset) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Cloud cover and mean LWP per kept time, reading one time at a time."""
+    nt = ds.sizes["time"]
+    cover = np.empty(nt, dtype=np.float64)
+    lwp = np.empty(nt, dtype=np.float64)
+    for j in range(nt):
+        mask = np.asarray(ds["cloud_mask"].isel(time=j).values) > 0
+        cover[j] = np.mean(np.any(mask, axis=0), dtype=np.float64)
+        lwp[j] = np.mean(np.asarray(ds["lwp"].isel(time=j).values, dtype=np.float64))
+    return cover, lwp
+
+
+def case_timeseries(
+    canonical_path: str | Path,
+    raw_times_s: ArrayLike | None,
+    spinup_s: float | None,
+    out_png: str | Path,
+) -> Figure:
+    """Domain cloud cover and domain-mean LWP against time, spin-up shaded.
+
+    Parameters
+    ----------
+    canonical_path
+        A case's canonical store.
+    raw_times_s
+        Every raw output time (s since the store's time origin), kept and dropped; None
+        takes them from the store (:func:`raw_output_times`).
+    spinup_s
+        Spin-up in s; None takes the store's ``spinup_s`` attribute.
+    out_png
+        PNG to write.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Two axes sharing time (h): cloud cover (top) and mean LWP (bottom). The window
+        ``[first raw time, first raw time + spin-up]`` is shaded on both with
+        ``axvspan`` (labelled ``"spin-up (dropped)"``); nothing is shaded for a zero
+        spin-up.
+
+    Examples
+    --------
+    >>> fig = case_timeseries(store, None, None, "timeseries.png")  # doctest: +SKIP
+    """
+    ds = open_store(canonical_path)
+    try:
+        _require(ds, ("time", "cloud_mask", "lwp"), canonical_path)
+        stored_raw, stored_spinup = raw_output_times(canonical_path)
+        raw = stored_raw if raw_times_s is None else np.asarray(raw_times_s, dtype=np.float64)
+        spinup = stored_spinup if spinup_s is None else float(spinup_s)
+        kept = np.asarray(ds["time"].values, dtype=np.float64)
+        cover, lwp = _domain_series(ds)
+        case = _case_name(ds, canonical_path)
+        xlabel = f"time since {_origin_text(ds)} (h)"
+    finally:
+        ds.close()
+    first = float(np.min(raw)) if raw.size else float(kept[0])
+    hours = kept / 3600.0
+    fig = _figure(7.0, 5.0)
+    ax_cover, ax_lwp = fig.subplots(2, 1, sharex=True)
+    ax_cover.plot(hours, cover, "o-", color="tab:blue", label="kept output times")
+    ax_lwp.plot(hours, lwp, "o-", color="tab:green", label="kept output times")
+    for ax in (ax_cover, ax_lwp):
+        if spinup > 0:
+            ax.axvspan(
+                first / 3600.0,
+                (first + spinup) / 3600.0,
+                color=_SPINUP_COLOUR,
+                alpha=0.35,
+                lw=0,
+                label="spin-up (dropped)",
+            )
+        ax.grid(True, alpha=0.3)
+    ax_cover.set_ylabel("domain cloud cover (1)")
+    ax_cover.set_ylim(-0.02, 1.02)
+    ax_lwp.set_ylabel(f"domain-mean LWP ({_KG_M2})")
+    ax_lwp.set_ylim(0.0, 1.1 * float(np.max(lwp)) if np.max(lwp) > 0 else 1e-3)
+    ax_lwp.set_xlabel(xlabel)
+    start = min(first, float(kept[0])) / 3600.0
+    end = max(float(kept[-1]), first + spinup) / 3600.0
+    pad = 0.03 * max(end - start, 1e-3)
+    ax_lwp.set_xlim(start - pad, end + pad)
+    handles, labels = ax_cover.get_legend_handles_labels()
+    fig.legend(handles, labels, loc="outside lower center", ncols=2, fontsize="small")
+    fig.suptitle(f"Case {case}: domain cloud cover and mean liquid water path")
+    _save(fig, out_png)
+    return fig
+
+
+def _mean_profiles(ds: xr.Dataset) -> dict[str, NDArray[np.float64]]:
+    nt, nz = ds.sizes["time"], ds.sizes["z"]
+    acc = {k: np.zeros(nz, dtype=np.float64) for k in ("cf", "qc", "w_var")}
+    for j in range(nt):
+        mask = np.asarray(ds["cloud_mask"].isel(time=j).values) > 0
+        acc["cf"] += np.mean(mask, axis=(1, 2), dtype=np.float64)
+        qc = np.asarray(ds["qc"].isel(time=j).values, dtype=np.float64)
+        acc["qc"] += qc.mean(axis=(1, 2))
+        w = np.asarray(ds["w"].isel(time=j).values, dtype=np.float64)
+        acc["w_var"] += w.var(axis=(1, 2))  # population variance (ddof=0)
+    return {k: v / nt for k, v in acc.items()}
+
+
+def case_profiles(canonical_path: str | Path, out_png: str | Path) -> Figure:
+    """Time-mean profiles of cloud fraction, qc and w variance against height.
+
+    Parameters
+    ----------
+    canonical_path
+        A case's canonical store.
+    out_png
+        PNG to write.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Three axes sharing height (km): cloud fraction (1), qc (g kg-1) and the
+        horizontal population variance of w (m2 s-2), each the mean over the kept times.
+
+    Examples
+    --------
+    >>> fig = case_profiles(store, "profiles.png")  # doctest: +SKIP
+    """
+    ds = open_store(canonical_path)
+    try:
+        _require(ds, ("z", "cloud_mask", "qc", "w"), canonical_path)
+        prof = _mean_profiles(ds)
+        z_km = np.asarray(ds["z"].values, dtype=np.float64) / 1000.0
+        case = _case_name(ds, canonical_path)
+        nt = ds.sizes["time"]
+    finally:
+        ds.close()
+    fig = _figure(8.0, 4.5)
+    axes = fig.subplots(1, 3, sharey=True)
+    series = (
+        (prof["cf"], "cloud fraction (1)", "tab:blue"),
+        (prof["qc"] * 1000.0, "qc (g kg$^{-1}$)", "tab:green"),
+        (prof["w_var"], "w variance (m$^{2}$ s$^{-2}$)", "tab:red"),
+    )
+    for ax, (values, label, colour) in zip(axes, series, strict=True):
+        ax.plot(values, z_km, color=colour)
+        ax.set_xlabel(label)
+        ax.set_xlim(left=0.0)
+        ax.grid(True, alpha=0.3)
+    axes[0].set_ylabel("height (km)")
+    axes[0].set_ylim(0.0, float(z_km[-1]) + 0.5 * float(z_km[0]))
+    fig.suptitle(f"Case {case}: mean profiles over {nt} kept output time(s)")
+    _save(fig, out_png)
+    return fig
+
+
+def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: int = -1) -> Figure:
+    """Map of the liquid water path at one kept output time.
+
+    Parameters
+    ----------
+    canonical_path
+        A case's canonical store.
+    out_png
+        PNG to write.
+    time_index
+        Index into the kept times (negative counts from the end; -1 is the last).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One map axis (x, y in km, cell edges from the centres and ``dx``) and a colour
+        bar of LWP (kg m-2).
+
+    Raises
+    ------
+    InputError
+        If ``time_index`` is out of range.
+
+    Examples
+    --------
+    >>> fig = case_lwp_map(store, "lwp.png", time_index=0)  # doctest: +SKIP
+    """
+    ds = open_store(canonical_path)
+    try:
+        _require(ds, ("time", "x", "y", "lwp"), canonical_path)
+        nt = ds.sizes["time"]
+        if not -nt <= int(time_index) < nt:
+            raise InputError(
+                f"time_index {time_index} is out of range; the store has {nt} kept time(s)",
+                file=str(canonical_path),
+                hint=f"use an index from {-nt} to {nt - 1}",
+            )
+        lwp = np.asarray(ds["lwp"].isel(time=int(time_index)).values, dtype=np.float64)
+        x = np.asarray(ds["x"].values, dtype=np.float64)
+        y = np.asarray(ds["y"].values, dtype=np.float64)
+        dx = float(ds.attrs.get("dx", x[1] - x[0]))
+        t_h = float(ds["time"].values[int(time_index)]) / 3600.0
+        case = _case_name(ds, canonical_path)
+        origin = _origin_text(ds)
+    finally:
+        ds.close()
+    xe = np.concatenate([x - dx / 2, [x[-1] + dx / 2]]) / 1000.0
+    ye = np.concatenate([y - dx / 2, [y[-1] + dx / 2]]) / 1000.0
+    fig = _figure(6.0, 5.0)
+    ax = fig.subplots()
+    top = float(lwp.max()) if lwp.size and float(lwp.max()) > 0 else 1e-3
+    mesh = ax.pcolormesh(xe, ye, lwp, cmap="Blues_r", vmin=0.0, vmax=top, shading="flat")
+    ax.set_aspect("equal")
+    ax.set_xlabel("x (km)")
+    ax.set_ylabel("y (km)")
+    cbar = fig.colorbar(mesh, ax=ax, shrink=0.9)
+    cbar.set_label(f"liquid water path ({_KG_M2})")
+    ax.set_title(
+        f"Case {case}: liquid water path\nat {t_h:.2f} h since {origin}", fontsize="medium"
+    )
+    _save(fig, out_png)
+    return fig
+
+
+# --------------------------------------------------------------------------- per scale
+
+
+def _histogram(
+    path: str | Path, edges: NDArray[np.float64], chunk: int
+) -> tuple[NDArray[np.float64], int, int, str]:
+    """Counts of cloud_fraction in ``edges``, sample count, clear count, scale label."""
+    ds = open_store(path)
+    try:
+        counts = np.zeros(edges.size - 1, dtype=np.float64)
+        n = clear = 0
+        scale = _set_scale(ds)
+        if "cloud_fraction" in ds.variables:
+            for sl in _set_slices(ds, chunk):
+                v = np.asarray(ds["cloud_fraction"].isel(sample=sl).values, dtype=np.float64)
+                v = v[~np.isnan(v)]
+                counts += np.histogram(v, bins=edges)[0]
+                n += v.size
+                clear += int(np.count_nonzero(v == 0.0))
+    finally:
+        ds.close()
+    return counts, n, clear, scale
+
+
+def scale_target_distribution(
+    train_set: str | Path,
+    test_set: str | Path,
+    out_png: str | Path,
+    *,
+    bins: int = 20,
+    chunk: int = _CHUNK,
+) -> Figure:
+    """Histogram (density) of the target cloud fraction, train against test split.
+
+    Parameters
+    ----------
+    train_set, test_set
+        Training stores of the two splits at one scale.
+    out_png
+        PNG to write.
+    bins
+        Number of equal bins on [0, 1] (the last bin includes 1).
+    chunk
+        Samples read at a time.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axis with a step histogram per split, normalised to unit area (density,
+        log y axis); the legend names each split with its sample count and the share of
+        clear samples (cloud fraction exactly 0).
+
+    Examples
+    --------
+    >>> fig = scale_target_distribution(train, test, "cf.png")  # doctest: +SKIP
+    """
+    edges = np.linspace(0.0, 1.0, int(bins) + 1)
+    width = 1.0 / int(bins)
+    fig = _figure(6.5, 4.5)
+    ax = fig.subplots()
+    scales = []
+    drawn = False
+    for name, path, colour in (("train", train_set, "tab:blue"), ("test", test_set, "tab:orange")):
+        counts, n, clear, scale = _histogram(path, edges, chunk)
+        scales.append(scale)
+        if n == 0:
+            ax.plot([], [], color=colour, label=f"{name}: no samples")
+            continue
+        density = counts / (n * width)
+        label = f"{name}: {n:,} samples, {100.0 * clear / n:.0f} % clear"
+        ax.stairs(density, edges, color=colour, lw=1.8, label=label)
+        drawn = drawn or bool(np.any(density > 0))
+    if drawn:
+        ax.set_yscale("log")
+    ax.set_xlim(0.0, 1.0)
+    ax.set_xlabel("cloud fraction of the coarse cell (1)")
+    ax.set_ylabel("probability density (1)")
+    ax.grid(True, alpha=0.3, which="both")
+    ax.legend(loc="upper center", fontsize="small")
+    scale = scales[0] if scales[0] != "?" else scales[1]
+    ax.set_title(f"Target cloud fraction at scale {scale}: train and test splits")
+    _save(fig, out_png)
+    return fig
+
+
+def scale_cf_vs_rh(
+    train_set: str | Path,
+    out_png: str | Path,
+    *,
+    rh_bins: int = 40,
+    cf_bins: int = 25,
+    chunk: int = _CHUNK,
+) -> Figure:
+    """Joint histogram of coarse cloud fraction and RH of the means, with Sundqvist.
+
+    Parameters
+    ----------
+    train_set
+        The train split's training store at one scale.
+    out_png
+        PNG to write.
+    rh_bins, cf_bins
+        Bins along relative humidity (over the data range) and cloud fraction ([0, 1]).
+    chunk
+        Samples read at a time.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axis: sample counts per bin (log colour scale, empty bins blank), the mean
+        cloud fraction of each RH bin (dots) and the Sundqvist et al. (1989) curve for
+        the store's ``rh_critical`` (:func:`rh_critical_of`).
+
+    Raises
+    ------
+    InputError
+        If the store holds no ``rh_of_means`` or ``cloud_fraction``.
+
+    Examples
+    --------
+    >>> fig = scale_cf_vs_rh(train, "cf_rh.png")  # doctest: +SKIP
+    """
+    ds = open_store(train_set)
+    try:
+        _require(ds, ("rh_of_means", "cloud_fraction"), train_set)
+        rhc = rh_critical_of(ds)
+        scale = _set_scale(ds)
+        lo, hi = math.inf, -math.inf
+        for sl in _set_slices(ds, chunk):
+            rh = np.asarray(ds["rh_of_means"].isel(sample=sl).values, dtype=np.float64)
+            if np.any(np.isfinite(rh)):
+                lo, hi = min(lo, float(np.nanmin(rh))), max(hi, float(np.nanmax(rh)))
+        if not math.isfinite(lo):
+            lo, hi = rhc, 1.0
+        lo = math.floor(min(lo, rhc) * 20.0) / 20.0
+        hi = max(1.05, math.ceil(hi * 20.0) / 20.0)
+        rh_edges = np.linspace(lo, hi, int(rh_bins) + 1)
+        cf_edges = np.linspace(0.0, 1.0, int(cf_bins) + 1)
+        counts = np.zeros((rh_edges.size - 1, cf_edges.size - 1), dtype=np.float64)
+        cf_sum = np.zeros(rh_edges.size - 1, dtype=np.float64)
+        for sl in _set_slices(ds, chunk):
+            rh = np.asarray(ds["rh_of_means"].isel(sample=sl).values, dtype=np.float64)
+            cf = np.asarray(ds["cloud_fraction"].isel(sample=sl).values, dtype=np.float64)
+            ok = np.isfinite(rh) & np.isfinite(cf)
+            counts += np.histogram2d(rh[ok], cf[ok], bins=(rh_edges, cf_edges))[0]
+            cf_sum += np.histogram(rh[ok], bins=rh_edges, weights=cf[ok])[0]
+    finally:
+        ds.close()
+    fig = _figure(6.5, 5.0)
+    ax = fig.subplots()
+    n = int(counts.sum())
+    masked = np.ma.masked_equal(counts.T, 0.0)
+    if n:
+        mesh = ax.pcolormesh(
+            rh_edges, cf_edges, masked, cmap="viridis", norm=LogNorm(vmin=1, vmax=counts.max())
+        )
+        cbar = fig.colorbar(mesh, ax=ax)
+        cbar.set_label("samples per bin (1)")
+    per_bin = counts.sum(axis=1)
+    centres = 0.5 * (rh_edges[1:] + rh_edges[:-1])
+    has = per_bin > 0
+    ax.plot(
+        centres[has],
+        cf_sum[has] / per_bin[has],
+        "o",
+        ms=3.5,
+        color="white",
+        mec="black",
+        mew=0.6,
+        label="mean cloud fraction per RH bin",
+    )
+    rh_line = np.linspace(lo, hi, 400)
+    ax.plot(
+        rh_line,
+        sundqvist_cloud_fraction(rh_line, rhc),
+        color="tab:red",
+        lw=2.0,
+        label=f"Sundqvist et al. (1989), RH$_c$ = {rhc:g}",
+    )
+    ax.set_xlim(lo, hi)
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_xlabel("relative humidity of the coarse means (1)")
+    ax.set_ylabel("cloud fraction of the coarse cell (1)")
+    ax.legend(loc="upper left", fontsize="small")
+    ax.set_title(f"Cloud fraction against RH at scale {scale}, train split ({n:,} samples)")
+    _save(fig, out_png)
+    return fig
+
+
+def baseline_skill(set_store: str | Path, *, chunk: int = _CHUNK) -> dict[str, float]:
+    """Error of the Sundqvist baseline ``cf_sundqvist`` against ``cloud_fraction``.
+
+    Parameters
+    ----------
+    set_store
+        A training store (any split, one scale).
+    chunk
+        Samples read at a time; the per-slice results of
+        :func:`lesprep.baseline.baseline_errors` are combined exactly (weighted by their
+        pair counts: mean squared error, bias and mean absolute error are means).
+
+    Returns
+    -------
+    dict
+        ``rmse``, ``bias`` (positive when the baseline predicts too much cloud), ``mae``
+        and ``n`` (pairs without NaN), as :func:`lesprep.baseline.baseline_errors`;
+        NaN metrics and ``n = 0`` for a store without samples.
+
+    Examples
+    --------
+    >>> baseline_skill("results/sets/test/scale-1000m.zarr")  # doctest: +SKIP
+    {'rmse': ..., 'bias': ..., 'mae': ..., 'n': ...}
+    """
+    ds = open_store(set_store)
+    sq = bias = mae = 0.0
+    n = 0
+    try:
+        if "cf_sundqvist" in ds.variables and "cloud_fraction" in ds.variables:
+            for sl in _set_slices(ds, chunk):
+                part = baseline_errors(
+                    ds["cf_sundqvist"].isel(sample=sl).values,
+                    ds["cloud_fraction"].isel(sample=sl).values,
+                )
+                if part["n"] == 0:
+                    continue
+                k = int(part["n"])
+                sq += k * part["rmse"] ** 2
+                bias += k * part["bias"]
+                mae += k * part["mae"]
+                n += k
+        elif int(ds.sizes.get("sample", 0)) > 0:
+            _require(ds, ("cf_sundqvist", "cloud_fraction"), set_store)
+    finally:
+        ds.close()
+    if n == 0:
+        nan = float("nan")
+        return {"rmse": nan, "bias": nan, "mae": nan, "n": 0}
+    return {"rmse": math.sqrt(sq / n), "bias": bias / n, "mae": mae / n, "n": n}
+
+
+# --------------------------------------------------------------------------- scenes
+
+
+def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
+    """Scene descriptors of every kept output time of one case.
+
+    Parameters
+    ----------
+    canonical_path
+        A case's canonical store; ``lwp`` and the column-cloudy field (any
+        ``cloud_mask`` over z) are passed to :func:`lesprep.scenes.describe_case` with
+        the store's ``dx`` (read one time at a time).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``time`` (s since the time origin) and the fields of
+        :class:`lesprep.scenes.SceneDescriptors`, one row per kept time.
+
+    Examples
+    --------
+    >>> scenes_for_case("results/cases/c/canonical.zarr").columns[0]  # doctest: +SKIP
+    'time'
+    """
+    ds = open_store(canonical_path, chunks={})
+    try:
+        _require(ds, ("lwp", "cloud_mask"), canonical_path)
+        column_cloudy = (ds["cloud_mask"] > 0).any("z")
+        return describe_case(ds["lwp"], column_cloudy, float(ds.attrs["dx"]))
+    finally:
+        ds.close()
+
+
+def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
+    """Scene descriptors of several cases as one tab-separated table.
+
+    Parameters
+    ----------
+    canonical_paths
+        Case id -> canonical store.
+    out_tsv
+        Table to write (UTF-8, a header line, one row per case and kept time, cases in
+        the order given): ``case``, ``time_s`` and the descriptor fields.
+
+    Returns
+    -------
+    pathlib.Path
+        ``out_tsv``.
+
+    Examples
+    --------
+    >>> write_scenes_tsv({"c": "results/cases/c/canonical.zarr"}, "scenes.tsv")  # doctest: +SKIP
+    """
+    frames = []
+    for case, path in canonical_paths.items():
+        frame = scenes_for_case(path).rename(columns={"time": "time_s"})
+        frame.insert(0, "case", case)
+        frames.append(frame)
+    columns = ["case", "time_s", *(f.name for f in dataclasses.fields(SceneDescriptors))]
+    table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=columns)
+    out = Path(out_tsv)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
+    table.to_csv(tmp, sep="\t", index=False, float_format="%.9g", lineterminator="\n")
+    os.replace(tmp, out)
+    return out
+
+
+def _cell(value: float, fmt: str) -> str:
+    return "n/a" if not np.isfinite(value) else format(value, fmt)
+
+
+def scene_table_rst(
+    scenes_tsv: str | Path, splits_tsv: str | Path, out_rst: str | Path | None = None
+) -> str:
+    """A reStructuredText table of every case: split assignment and scene descriptors.
+
+    Parameters
+    ----------
+    scenes_tsv
+        Table written by :func:`write_scenes_tsv`.
+    splits_tsv
+        The split assignment (``results/splits.tsv``).
+    out_rst
+        File to write the table to, or None to only return it.
+
+    Returns
+    -------
+    str
+        A ``list-table`` with one row per case of the assignment (in its order): regime,
+        split and its reason, kept times, and over those times the mean LWP (g m-2), the
+        mean population standard deviation of LWP (g m-2), the mean cloud cover, the
+        median spectral-peak wavelength (km, over times with a peak) and how many times
+        peak at the domain scale. Cases without scene rows show ``n/a``.
+
+    Examples
+    --------
+    >>> print(scene_table_rst("scenes.tsv", "splits.tsv"))  # doctest: +SKIP
+    """
+    scenes = pd.read_csv(scenes_tsv, sep="\t")
+    assignment = read_assignment_tsv(splits_tsv)
+    header = [
+        "case",
+        "regime",
+        "split (reason)",
+        "kept times",
+        "mean LWP (g m-2)",
+        "LWP std (g m-2)",
+        "cloud cover (1)",
+        "peak wavelength (km)",
+        "peak at domain",
+    ]
+    rows = []
+    for a in assignment:
+        sub = scenes[scenes["case"] == a.case]
+        n = len(sub)
+        if n:
+            peaks = sub["peak_wavelength_m"].to_numpy(dtype=np.float64)
+            peaks = peaks[np.isfinite(peaks)]
+            at_domain = sub["peak_at_domain"].astype(str).str.lower().eq("true").sum()
+            cells = [
+                str(n),
+                _cell(1000.0 * float(sub["lwp_mean"].mean()), ".1f"),
+                _cell(1000.0 * float(sub["lwp_std"].mean()), ".1f"),
+                _cell(float(sub["cloud_cover"].mean()), ".2f"),
+                _cell(float(np.median(peaks)) / 1000.0 if peaks.size else math.nan, ".2f"),
+                f"{int(at_domain)} of {n}",
+            ]
+        else:
+            cells = ["0", "n/a", "n/a", "n/a", "n/a", "n/a"]
+        rows.append([a.case, a.regime or "-", f"{a.split} ({a.reason})", *cells])
+    lines = [
+        ".. list-table:: Cases, their split and their liquid-water-path scenes "
+        "(means over the kept output times)",
+        "   :header-rows: 1",
+        "",
+    ]
+    for row in [header, *rows]:
+        for i, cell in enumerate(row):
+            lines.append(("   * - " if i == 0 else "     - ") + cell)
+    text = "\n".join(lines) + "\n"
+    if out_rst is not None:
+        out = Path(out_rst)
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text, encoding="utf-8")
+    return text

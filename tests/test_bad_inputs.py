@@ -101,7 +101,7 @@ def test_unknown_config_key():
 def test_unknown_case_sheet_column(tmp_path):
     sheet = tmp_path / "cases.tsv"
     sheet.write_text("case\tregime\tvarmap\traw\tsplitt\n" + "a1\tsc\tm.yaml\tx/*.nc\ttest\n")
-    with pytest.raises(ConfigError, match="unknown column.*splitt"):
+    with pytest.raises(ConfigError, match=r"unknown column.*splitt"):
         read_case_sheet(sheet)
 
 

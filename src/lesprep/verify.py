@@ -810,7 +810,7 @@ def kept_indices(
 
 
 def _check_scale_vs_canonical(tree: _Tree) -> None:
-    for (case, label), path in sorted(tree.scale.items()):
+    for (case, _), path in sorted(tree.scale.items()):
         canon = tree.canonical.get(case)
         if not tree.opened(path) or canon is None or not tree.opened(canon):
             continue

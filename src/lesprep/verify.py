@@ -890,7 +890,7 @@ def _open_case(path: Path, step: Mapping[str, Any]) -> _CaseStore:
     )
 
 
-def _check_set(tree: _Tree, split: str, label: str, path: Path, k: int, seed: Any) -> None:
+def _check_set(tree: _Tree, label: str, path: Path, k: int, seed: Any) -> None:
     tree.checked["consistency"] += 1
     attrs = tree.attrs[path]
     step = _own_step(tree.prov.get(path, {}), "assemble")
@@ -1064,11 +1064,11 @@ def _check_samples(
 
 def _check_consistency(tree: _Tree, sample_checks: int, seed: int) -> None:
     _check_scale_vs_canonical(tree)
-    for i, ((split, label), path) in enumerate(sorted(tree.sets.items())):
+    for i, ((_, label), path) in enumerate(sorted(tree.sets.items())):
         if not tree.opened(path):
             continue
         try:
-            _check_set(tree, split, label, path, sample_checks, [seed, i])
+            _check_set(tree, label, path, sample_checks, [seed, i])
         except Exception as exc:  # unreadable data
             tree.add("consistency", path, f"cannot compare: {type(exc).__name__}: {exc}")
 

@@ -10,6 +10,11 @@ is missing; in CI (``CI=true``) they fail instead (the policy of ``test_slurm_sm
 The module starts its own cluster (about 12 s) and stops it when the module is done.
 Tests run in file order and share module fixtures: the SLURM run, the local run and a
 project whose ingest job is made to fail and is then resumed.
+
+Every run uses a snapshot of the workflow and of ``src/lesprep`` taken when the module
+starts (``PYTHONPATH`` points at it, in the SLURM jobs too). The workflow's params hold a
+hash of lesprep's source, so an edit of the checkout during the few minutes the module
+runs would otherwise make the later runs redo every job.
 """
 
 from __future__ import annotations
@@ -32,7 +37,7 @@ import pytest
 
 from lesprep.store import open_store
 from slurm_cluster import ACCOUNT, Cluster, slurm_available, start_cluster
-from workflow_project import SNAKEMAKE, Project, parse_job_stats
+from workflow_project import FLAVOUR, SNAKEMAKE, Project, parse_job_stats
 
 pytestmark = pytest.mark.slurm
 
@@ -71,10 +76,83 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
         yield running
 
 
-# --- projects and runs ----------------------------------------------------------------
+# --- the code under test, projects and runs ------------------------------------------
 
 
-def tiny_project(root: Path) -> Project:
+@dataclass(frozen=True)
+class Code:
+    """A frozen copy of the workflow and the lesprep package."""
+
+    root: Path
+
+    @property
+    def snakefile(self) -> Path:
+        return self.root / "Snakefile"
+
+    def varmap(self, case: str) -> Path:
+        return self.root / "config/varmaps" / f"flavour-{FLAVOUR[case]}.yaml"
+
+    def environ(self, base: dict[str, str]) -> dict[str, str]:
+        """`base` with the snapshot's package first on ``PYTHONPATH``."""
+        path = os.pathsep.join(p for p in (str(self.root / "src"), base.get("PYTHONPATH")) if p)
+        return {**base, "PYTHONPATH": path, "PYTHONWARNINGS": "ignore"}
+
+
+@pytest.fixture(scope="module")
+def code(tmp_path_factory: pytest.TempPathFactory) -> Code:
+    root = tmp_path_factory.mktemp("code")
+    skip = shutil.ignore_patterns("__pycache__", "*.pyc")
+    for rel in ("src/lesprep", "workflow", "config/varmaps"):
+        shutil.copytree(REPO / rel, root / rel, ignore=skip)
+    shutil.copy2(REPO / "Snakefile", root / "Snakefile")
+    return Code(root)
+
+
+def snakemake(
+    code: Code, project: Project, *args: str, env: dict[str, str], timeout: float
+) -> subprocess.CompletedProcess[str]:
+    """Run the snapshot's Snakefile for `project`, from inside the project folder.
+
+    The working directory matters: the SLURM plugin puts ``.snakemake/slurm_logs``
+    under the directory Snakemake starts in, and a ``profiles/default`` there would
+    be read. Output is captured; the exit code is the caller's to check.
+    """
+    project.write()
+    cmd = [
+        SNAKEMAKE,
+        "-s", str(code.snakefile),
+        "--directory", str(project.root),
+        "--configfile", str(project.root / "config/config.yaml"),
+        *args,
+    ]  # fmt: skip
+    return subprocess.run(
+        cmd,
+        cwd=project.root,
+        env=code.environ(env),
+        stdin=subprocess.DEVNULL,
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        check=False,
+    )
+
+
+def run_locally(code: Code, project: Project, *args: str) -> None:
+    """Run `project` on Snakemake's plain local executor with two cores; must succeed."""
+    res = snakemake(
+        code, project, "--cores", "2", *args, env=dict(os.environ), timeout=LOCAL_RUN_TIMEOUT
+    )
+    assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-6000:]
+
+
+def planned_jobs(code: Code, project: Project) -> dict[str, int]:
+    """Jobs a dry run would execute, by rule."""
+    res = snakemake(code, project, "--cores", "2", "--dry-run", env=dict(os.environ), timeout=120)
+    assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-6000:]
+    return parse_job_stats(res.stdout + res.stderr)
+
+
+def tiny_project(root: Path, code: Code) -> Project:
     """Two demo cases at the TINY size, one scale; the splits are pinned (one per split).
 
     Pinning makes the job list fixed: ``assemble_train`` reads only TRAIN_CASE and
@@ -83,6 +161,8 @@ def tiny_project(root: Path) -> Project:
     p = Project(root)
     p.add_demo_case(TRAIN_CASE, split="train")
     p.add_demo_case(TEST_CASE, split="test")
+    for row in p.rows:
+        row["varmap"] = str(code.varmap(row["case"]))
     p.config["coarsen"] = {
         "scales": ["600 m"],
         "groups": [["600 m"]],
@@ -158,33 +238,22 @@ def _final_records(
     pytest.fail(f"sacct shows no final state for all of {sorted(job_ids)}: {records}")
 
 
-def run_on_slurm(cluster: Cluster, project: Project, *extra: str) -> SlurmRun:
-    """Run the repository's Snakefile for `project` with the CI SLURM profile.
+def run_on_slurm(cluster: Cluster, code: Code, project: Project, *extra: str) -> SlurmRun:
+    """Run `project` with the CI SLURM profile.
 
-    The working directory is the project (the plugin puts ``.snakemake/slurm_logs``
-    under the directory Snakemake starts in). The SLURM jobs of the run are the jobs
-    accounting gained during it; they must be the ones Snakemake reports as submitted.
+    The SLURM jobs of the run are the jobs accounting gained during it; they must be
+    the ones Snakemake reports as submitted.
     """
-    project.write()
     before = set(_accounting(cluster))
-    cmd = [
-        SNAKEMAKE,
-        "-s", str(REPO / "Snakefile"),
-        "--directory", str(project.root),
-        "--configfile", str(project.root / "config/config.yaml"),
-        "--profile", str(CI_PROFILE),
-        *extra,
-    ]  # fmt: skip
     start = time.monotonic()
-    proc = subprocess.run(
-        cmd,
-        cwd=project.root,
-        env={**cluster.environ(), "PYTHONWARNINGS": "ignore"},
-        stdin=subprocess.DEVNULL,
-        capture_output=True,
-        text=True,
+    proc = snakemake(
+        code,
+        project,
+        "--profile",
+        str(CI_PROFILE),
+        *extra,
+        env=cluster.environ(),
         timeout=SLURM_RUN_TIMEOUT,
-        check=False,
     )
     seconds = time.monotonic() - start
     output = proc.stdout + proc.stderr
@@ -230,17 +299,17 @@ def assert_same_results(root: Path, reference: Path) -> None:
 
 @pytest.fixture(scope="module")
 def slurm_run(
-    cluster: Cluster, tmp_path_factory: pytest.TempPathFactory
+    cluster: Cluster, code: Code, tmp_path_factory: pytest.TempPathFactory
 ) -> tuple[Project, SlurmRun]:
-    project = tiny_project(tmp_path_factory.mktemp("on-slurm"))
-    return project, run_on_slurm(cluster, project)
+    project = tiny_project(tmp_path_factory.mktemp("on-slurm"), code)
+    return project, run_on_slurm(cluster, code, project)
 
 
 @pytest.fixture(scope="module")
-def local_run(tmp_path_factory: pytest.TempPathFactory) -> Project:
+def local_run(code: Code, tmp_path_factory: pytest.TempPathFactory) -> Project:
     """The same project on Snakemake's plain local executor (no SLURM involved)."""
-    project = tiny_project(tmp_path_factory.mktemp("local"))
-    project.snakemake(timeout=LOCAL_RUN_TIMEOUT)
+    project = tiny_project(tmp_path_factory.mktemp("local"), code)
+    run_locally(code, project)
     return project
 
 
@@ -253,28 +322,30 @@ class FailedProject:
 
 
 @pytest.fixture(scope="module")
-def failed(cluster: Cluster, tmp_path_factory: pytest.TempPathFactory) -> FailedProject:
+def failed(cluster: Cluster, code: Code, tmp_path_factory: pytest.TempPathFactory) -> FailedProject:
     """A project whose TRAIN_CASE archive gets wrong units after the demo step.
 
     The demo archives are written locally; the rest runs on SLURM with ``--keep-going``,
     so everything not downstream of the failing ingest job finishes.
     """
-    project = tiny_project(tmp_path_factory.mktemp("failing"))
-    project.snakemake("--until", "demo_archive", timeout=LOCAL_RUN_TIMEOUT)
+    project = tiny_project(tmp_path_factory.mktemp("failing"), code)
+    run_locally(code, project, "--until", "demo_archive")
     damaged = project.root / "resources/demo" / TRAIN_CASE / DAMAGED_FILE
     backup = project.root / f"{DAMAGED_FILE}.orig"
     shutil.copy2(damaged, backup)
     with netCDF4.Dataset(damaged, "a") as nc:
         assert nc[DAMAGED_VARIABLE].getncattr("units") != WRONG_UNITS
         nc[DAMAGED_VARIABLE].setncattr("units", WRONG_UNITS)
-    run = run_on_slurm(cluster, project, "--keep-going")
+    run = run_on_slurm(cluster, code, project, "--keep-going")
     return FailedProject(project, run, damaged, backup)
 
 
 # --- tests ----------------------------------------------------------------------------
 
 
-def test_demo_runs_as_one_slurm_job_per_snakemake_job(slurm_run: tuple[Project, SlurmRun]) -> None:
+def test_demo_runs_as_one_slurm_job_per_snakemake_job(
+    code: Code, slurm_run: tuple[Project, SlurmRun]
+) -> None:
     project, run = slurm_run
     assert run.proc.returncode == 0, run.output[-6000:]
     # Snakemake's own job table (rule `all` has no action and is not submitted) ...
@@ -298,7 +369,7 @@ def test_demo_runs_as_one_slurm_job_per_snakemake_job(slurm_run: tuple[Project, 
     for case in CASES:
         assert (project.root / "results/cases" / case / f"scale-{SCALE}.zarr").is_dir()
     # Snakemake's record agrees: nothing is left to do.
-    assert project.planned_jobs() == {}
+    assert planned_jobs(code, project) == {}
 
 
 def test_slurm_outputs_equal_local_run(
@@ -345,7 +416,7 @@ def test_failing_job_fails_the_run_with_slurm_reason(failed: FailedProject) -> N
 
 
 def test_rerun_after_fix_submits_only_the_missing_jobs(
-    cluster: Cluster, failed: FailedProject, local_run: Project
+    cluster: Cluster, code: Code, failed: FailedProject, local_run: Project
 ) -> None:
     project = failed.project
     shutil.copy2(failed.backup, failed.damaged)  # the fix: the original file again
@@ -356,9 +427,9 @@ def test_rerun_after_fix_submits_only_the_missing_jobs(
     }
     # What Snakemake plans (dry run) and what SLURM then runs are the missing jobs only;
     # the jobs that completed in the failed run are not submitted again.
-    planned = project.planned_jobs()
+    planned = planned_jobs(code, project)
     assert planned == {"ingest": 1, COARSEN_RULE: 1, "assemble_train": 1, "all": 1}
-    rerun = run_on_slurm(cluster, project)
+    rerun = run_on_slurm(cluster, code, project)
     assert rerun.proc.returncode == 0, rerun.output[-6000:]
     assert rerun.comments() == Counter(missing)
     assert all(r["State"] == "COMPLETED" for r in rerun.jobs.values())

@@ -43,6 +43,14 @@ def _cmd_provenance(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_verify(args: argparse.Namespace) -> int:
+    from .verify import verify_results
+
+    report = verify_results(args.results, sample_checks=args.samples, workdir=args.workdir)
+    print(report.summary())
+    return 0 if report.ok else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``lesprep``."""
     p = argparse.ArgumentParser(
@@ -65,6 +73,22 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("store", type=Path, help="a lesprep Zarr store")
     pr.add_argument("--json", action="store_true", help="print the full record as JSON")
     pr.set_defaults(func=_cmd_provenance)
+
+    v = sub.add_parser("verify", help="check a results tree; exit 1 on any failure")
+    v.add_argument("results", type=Path, help="the results folder (e.g. results)")
+    v.add_argument(
+        "--samples",
+        type=int,
+        default=200,
+        help="set samples compared with their per-case cells (default 200)",
+    )
+    v.add_argument(
+        "--workdir",
+        type=Path,
+        default=None,
+        help="folder the recorded raw paths are relative to (default: inferred)",
+    )
+    v.set_defaults(func=_cmd_verify)
     return p
 
 

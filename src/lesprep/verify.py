@@ -154,7 +154,8 @@ class VerifyReport:
           open: 2 stores checked, 0 failed
         """
         status = "OK" if self.ok else "FAILED"
-        lines = [f"verify {self.results}: {status}, {len(self.findings)} findings"]
+        n = len(self.findings)
+        lines = [f"verify {self.results}: {status}, {n} finding{'' if n == 1 else 's'}"]
         lines.extend(str(f) for f in self.findings)
         failed = Counter(f.check for f in self.findings)
         lines.append("checks:")
@@ -700,7 +701,9 @@ def _forbidden(kind: str, name: str) -> bool:
     return name == "cloud_fraction" or (bool(base) and suffix in ("mean", "var", "skew"))
 
 
-def nonfinite(arr: Any, *, block_bytes: int = _BLOCK_BYTES) -> tuple[int, int, tuple | None]:
+def nonfinite(
+    arr: Any, *, block_bytes: int = _BLOCK_BYTES
+) -> tuple[int, int, tuple[int, ...] | None]:
     """NaN count, infinity count and the first non-finite index of an array.
 
     Reads blocks of whole chunks along the first axis, so memory stays bounded.
@@ -730,7 +733,7 @@ def nonfinite(arr: Any, *, block_bytes: int = _BLOCK_BYTES) -> tuple[int, int, t
     per_row = max(1, math.prod(arr.shape[1:]) * arr.dtype.itemsize)
     step = max(chunk0, (block_bytes // per_row) // chunk0 * chunk0)
     n_nan = n_inf = 0
-    first = None
+    first: tuple[int, ...] | None = None
     for lo in range(0, arr.shape[0], step):
         a = np.asarray(arr[lo : lo + step])
         if a.dtype.kind not in "fc":

@@ -9,11 +9,15 @@ min_version("9.0")
 configfile: "config/config.yaml"
 
 
+report: "workflow/report/workflow.rst"
+
+
 include: "workflow/rules/common.smk"
 include: "workflow/rules/demo.smk"
 include: "workflow/rules/ingest.smk"
 include: "workflow/rules/coarsen.smk"
 include: "workflow/rules/sets.smk"
+include: "workflow/rules/report.smk"
 
 
 rule all:

@@ -604,10 +604,11 @@ def w_check(*, lesprep_dir: str, xarray_dir: str, labels: list[str], ntimes: int
                 base = name[: -len("_skew")]
                 mean = gl[f"{base}_mean"][:ntimes].astype(np.float64)
                 var = gl[f"{base}_var"][:ntimes].astype(np.float64)
-                # well-conditioned blocks only (std > 1e-6 |mean|): nearer to a constant block
-                # g1 is round-off, and the two codes' zero-variance rules differ
+                # skip only near-constant blocks (0 < std <= 1e-6 |mean|): there g1 is
+                # round-off and the two codes' zero-variance rules differ; constant blocks
+                # (both give 0) and all others are compared
                 std = np.sqrt(var)
-                mask = (std > 1e-6 * np.abs(mean)) & (var > 0)
+                mask = (var == 0) | (std > 1e-6 * np.abs(mean))
                 r = _compare(a, b, rtol=1e-4, atol_rel=1e-6, mask=mask)
                 r["masked_out"] = int(mask.size - mask.sum())
             else:
@@ -615,7 +616,7 @@ def w_check(*, lesprep_dir: str, xarray_dir: str, labels: list[str], ntimes: int
             res[name] = r
         out[lab] = res
     ok = all(r.get("ok") for res in out.values() for r in res.values())
-    return {"time_s": time.perf_counter() - t0, "ok": ok, "scales": out}
+    return {"time_s": time.perf_counter() - t0, "ok": ok, "scales": out, "ntimes": ntimes}
 
 
 _CODECS: tuple[tuple[str, dict[str, Any]], ...] = (
@@ -891,7 +892,11 @@ def worker_main(name: str, params_file: str, result_file: str) -> int:
     res["cpu_s"] = (cpu1.user - cpu0.user) + (cpu1.system - cpu0.system)
     res["peak_rss_mib"] = _status_kib("VmHWM") / 1024
     res["start_rss_mib"] = base / 1024
-    res["ru_maxrss_mib"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    res["ru_maxrss_mib"] = ru.ru_maxrss / 1024
+    res["minor_faults"] = ru.ru_minflt
+    res["major_faults"] = ru.ru_majflt
+    res["threads_cpu_note"] = "cpu_s is user+system of all threads of the worker"
     Path(result_file).write_text(json.dumps(res, default=str))
     return rc
 
@@ -979,9 +984,32 @@ class Runner:
             self.save()
 
 
-def machine_info() -> dict[str, Any]:
-    """nproc, RAM, CPU model, OS, free disk."""
+def disk_write_gbps(folder: Path, nbytes: int = 2**30) -> dict[str, float]:
+    """Sequential write of ``nbytes`` to ``folder``: into the page cache, and with fsync."""
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / "disk-probe.bin"
+    block = os.urandom(8 * MIB)
+    t0 = time.perf_counter()
+    with open(path, "wb") as fh:
+        for _ in range(nbytes // len(block)):
+            fh.write(block)
+        t_cache = time.perf_counter() - t0
+        fh.flush()
+        os.fsync(fh.fileno())
+    t_sync = time.perf_counter() - t0
+    remove(path)
+    return {
+        "page_cache_write_gbps": nbytes / 1e9 / t_cache,
+        "fsync_write_gbps": nbytes / 1e9 / t_sync,
+    }
+
+
+def machine_info(out: Path) -> dict[str, Any]:
+    """nproc, RAM, CPU model, OS, free disk, disk write speed."""
     info: dict[str, Any] = {"nproc": os.cpu_count(), "platform": platform.platform()}
+    with contextlib.suppress(OSError):
+        info.update(disk_write_gbps(out))
+    info["disk_free_gb"] = shutil.disk_usage(out).free / 1e9
     with contextlib.suppress(OSError):
         for line in Path("/proc/meminfo").read_text().splitlines():
             if line.startswith("MemTotal:"):
@@ -1058,14 +1086,19 @@ class Suite:
     # ------------------------------------------------------------------ setup
     def setup(self) -> None:
         a = self.args
-        self.r.results["machine"] = machine_info()
+        self.r.results["machine"] = machine_info(Path(a.out))
         self.r.results["versions"] = self.r.step("info", "info", {}, record=False)
         for k in ("cpu_s", "peak_rss_mib", "start_rss_mib", "ru_maxrss_mib", "process_wall_s"):
             self.r.results["versions"].pop(k, None)
         for k in ("warm_s", "sync_before_s", "sync_after_s", "time_s"):
             self.r.results["versions"].pop(k, None)
         m, v = self.r.results["machine"], self.r.results["versions"]
-        print(f"machine: {m.get('nproc')} CPUs ({m.get('cpu', '?')}), {m.get('ram_gib')} GiB RAM")
+        print(
+            f"machine: {m.get('nproc')} CPUs ({m.get('cpu', '?')}), {m.get('ram_gib')} GiB RAM, "
+            f"disk {m.get('disk_free_gb', 0):.0f} GB free, sequential write "
+            f"{m.get('page_cache_write_gbps', 0):.2f} GB/s to the page cache, "
+            f"{m.get('fsync_write_gbps', 0):.2f} GB/s with fsync"
+        )
         print("versions: " + ", ".join(f"{k} {val}" for k, val in v.items()), flush=True)
         res = self.r.step(
             "generate",
@@ -1215,31 +1248,37 @@ class Suite:
         self._print_check(chk)
 
     def _print_check(self, chk: Mapping[str, Any]) -> None:
-        rows = []
+        by_var: dict[str, list[tuple[str, dict[str, Any]]]] = {}
         for lab, res in chk["scales"].items():
             for name, c in res.items():
-                rows.append(
-                    [
-                        lab,
-                        name,
-                        "ok" if c.get("ok") else "DIFF",
-                        c.get("compared", "-"),
-                        c.get("mismatched", "-"),
-                        _fmt(c.get("max_abs"), ".2e"),
-                        _fmt(c.get("max_rel"), ".2e"),
-                        f"rtol {c.get('rtol')}"
-                        + (
-                            f", {c['masked_out']} ill-conditioned cells skipped"
-                            if "masked_out" in c
-                            else ""
-                        ),
-                    ]
-                )
-        print("\nlesprep vs xarray script, same numbers?")
-        print_table(
-            ["scale", "variable", "same", "cells", "differ", "max |diff|", "max rel", "test"],
+                by_var.setdefault(name, []).append((lab, c))
+        rows = []
+        for name, items in sorted(by_var.items()):
+            cs = [c for _, c in items]
+            bad = [lab for lab, c in items if not c.get("ok")]
+            rows.append(
+                [
+                    name,
+                    " ".join(lab for lab, _ in items),
+                    "yes" if not bad else "NO at " + " ".join(bad),
+                    sum(c.get("compared", 0) for c in cs),
+                    sum(c.get("mismatched", 0) for c in cs),
+                    _fmt(max(c.get("max_abs", 0.0) for c in cs), ".2e"),
+                    _fmt(max(c.get("max_rel", 0.0) for c in cs), ".2e"),
+                    f"rtol {cs[0].get('rtol')}"
+                    + (
+                        f"; {sum(c['masked_out'] for c in cs)} near-constant cells skipped"
+                        if "masked_out" in cs[0]
+                        else ""
+                    ),
+                ]
+            )
+        print(f"\nlesprep vs xarray script on the first {chk.get('ntimes', '?')} time(s):")
+        text = print_table(
+            ["variable", "scales", "same", "cells", "differ", "max |diff|", "max rel", "test"],
             rows,
         )
+        self.r.results["check_table"] = text
 
     # ------------------------------------------------------------------ 4: memory
     def memory(self) -> None:
@@ -1304,6 +1343,7 @@ class Suite:
                 "note": f"{nsmall} vs {nbig} times ({mode})",
             }
             r.results["comparisons"][f"memory_{what}"] = out[what]
+            steps[f"memory_{what}"]["note"] = f"{n_other} times (main runs: {n_main})"
         r.save()
         if not a.keep:
             remove(mdir)

@@ -313,6 +313,27 @@ def test_baseline_skill_against_numpy(tree):
             assert got["mae"] == pytest.approx(np.mean(np.abs(d)), rel=1e-12)
 
 
+def test_empty_split(tree, tmp_path):
+    """A split whose every case skipped the scale: drawn as "no samples", skill n = 0."""
+    case = "sc-ostra-01"
+    skipped = coarsen_case(
+        tree["canon"][case],
+        {"7000m": tmp_path / "scale-7000m.zarr"},
+        CoarsenSettings(scales=tuple(parse_scales(["7 km"])), on_misfit="skip"),
+    )["7000m"]
+    empty = build_set(
+        {case: skipped}, REGIME, tmp_path / "empty.zarr", SetSettings(), split="test", scale="7000m"
+    )
+    fig = figures.scale_target_distribution(tree["sets"]["train"], empty, tmp_path / "e.png")
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert texts[1] == "test: no samples"
+    assert len([p for p in fig.axes[0].patches if isinstance(p, StepPatch)]) == 1
+    skill = figures.baseline_skill(empty)
+    assert skill["n"] == 0 and math.isnan(skill["rmse"]) and math.isnan(skill["bias"])
+    with pytest.raises(InputError, match="rh_of_means"):
+        figures.scale_cf_vs_rh(empty, tmp_path / "x.png")
+
+
 def test_rh_critical_default_when_unrecorded():
     import xarray as xr
 

@@ -117,3 +117,15 @@ def test_sets_round_trip_to_per_case_store(project):
         cell = src.sel(time=float(s.time), z=float(s.z), y=float(s.y), x=float(s.x))
         for v in ("qc_mean", "w_var", "cloud_fraction", "lwp_mean", "rh_of_means"):
             assert float(s[v]) == float(cell[v])
+
+
+def test_report_html(project):
+    out = project.root / "report.html"
+    project.snakemake("--report", str(out))
+    html = out.read_text(errors="replace")
+    assert len(html) > 50_000
+    for part in ("timeseries.png", "cf_vs_rh.png", "scenes.tsv", "baseline.tsv", "Cases"):
+        assert part in html
+    base = (project.root / "results/baseline.tsv").read_text().splitlines()
+    assert base[0].split("\t") == ["split", "scale", "rmse", "bias", "mae", "n"]
+    assert len(base) == 1 + 2 * 3  # train and test at three scales

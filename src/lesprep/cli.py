@@ -51,6 +51,17 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     return 0 if report.ok else 1
 
 
+def _cmd_inspect(args: argparse.Namespace) -> int:
+    from .inspect import draft_varmap, inspect_files
+
+    report = inspect_files(args.paths)
+    print(report.summary())
+    if args.draft:
+        args.draft.write_text(draft_varmap(report, flavour=args.flavour))
+        print(f"wrote draft variable map {args.draft}: edit it, then name it in the case sheet")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``lesprep``."""
     p = argparse.ArgumentParser(
@@ -89,6 +100,12 @@ def build_parser() -> argparse.ArgumentParser:
         help="folder the recorded raw paths are relative to (default: inferred)",
     )
     v.set_defaults(func=_cmd_verify)
+
+    i = sub.add_parser("inspect", help="describe an unseen LES archive and draft a variable map")
+    i.add_argument("paths", type=Path, nargs="+", help="NetCDF files or folders of them")
+    i.add_argument("--draft", type=Path, help="write a draft variable map (YAML) here")
+    i.add_argument("--flavour", default="draft", help="flavour name in the draft map")
+    i.set_defaults(func=_cmd_inspect)
     return p
 
 

@@ -809,3 +809,29 @@ def scene_table_rst(
         out.parent.mkdir(parents=True, exist_ok=True)
         out.write_text(text, encoding="utf-8")
     return text
+
+
+def write_baseline_table(sets: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
+    """Skill of the Sundqvist baseline per split and scale, as a TSV.
+
+    Parameters
+    ----------
+    sets
+        ``"<split>/<scale>"`` -> training store.
+    out_tsv
+        Table to write (columns split, scale, rmse, bias, mae, n), atomically.
+    """
+    rows = ["split\tscale\trmse\tbias\tmae\tn"]
+    for key in sorted(sets):
+        split, scale = key.split("/", 1)
+        skill = baseline_skill(sets[key])
+        rows.append(
+            f"{split}\t{scale}\t{skill['rmse']:.6g}\t{skill['bias']:.6g}\t"
+            f"{skill['mae']:.6g}\t{int(skill['n'])}"
+        )
+    out = Path(out_tsv)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(f".{out.name}.tmp")
+    tmp.write_text("\n".join(rows) + "\n")
+    tmp.replace(out)
+    return out

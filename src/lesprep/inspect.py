@@ -902,8 +902,7 @@ def inspect_files(paths: Sequence[str | Path]) -> InspectReport:
 
     Examples
     --------
-    >>> report = inspect_files(sorted(Path("resources/demo/sc-ostra-01").glob("*.nc")))
-    ... # doctest: +SKIP
+    >>> report = inspect_files(["resources/demo/sc-ostra-01"])  # doctest: +SKIP
     >>> report.proposals["qc"].raw  # doctest: +SKIP
     'liq'
     """

@@ -91,12 +91,43 @@ def _assemble(smk: Any) -> None:
         write_normalization(smk.output.store, smk.output.stats, scale=p["scale"])
 
 
+def _figures(smk: Any) -> None:
+    from . import figures
+
+    results = Path(smk.params.results)
+    for case in smk.params.cases:
+        canon = results / "cases" / case / "canonical.zarr"
+        out = results / "figures" / "cases" / case
+        figures.case_timeseries(canon, None, None, out / "timeseries.png")
+        figures.case_profiles(canon, out / "profiles.png")
+        figures.case_lwp_map(canon, out / "lwp_map.png")
+    for label in smk.params.scales:
+        sets = results / "sets"
+        out = results / "figures" / "scales" / label
+        train, test = sets / "train" / f"scale-{label}.zarr", sets / "test" / f"scale-{label}.zarr"
+        figures.scale_target_distribution(train, test, out / "target_distribution.png")
+        figures.scale_cf_vs_rh(train, out / "cf_vs_rh.png")
+
+
+def _tables(smk: Any) -> None:
+    import shutil
+
+    from . import figures
+
+    cases = {c: p for c, p in zip(smk.params.cases, smk.input.canonical, strict=True)}
+    figures.write_scenes_tsv(cases, smk.output.scenes)
+    figures.write_baseline_table(smk.params.sets, smk.output.baseline)
+    shutil.copyfile(smk.input.splits, smk.output.splits)
+
+
 STEPS: dict[str, Callable[[Any], None]] = {
     "demo": _demo,
     "ingest": _ingest,
     "coarsen": _coarsen,
     "splits": _splits,
     "assemble": _assemble,
+    "figures": _figures,
+    "tables": _tables,
 }
 
 

@@ -200,6 +200,25 @@ def split_params(wildcards):
     }
 
 
+def set_stores_only():
+    """Every training store (no statistics files)."""
+    return [f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS]
+
+
+def report_scales():
+    """Scales that get the train/test figures (both splits must exist)."""
+    return SCALE_LABELS if {"train", "test"} <= set(SPLITS) else []
+
+
+def report_outputs():
+    """Figures and tables of the report."""
+    return [f"{RESULTS}/scenes.tsv", f"{RESULTS}/baseline.tsv", f"{RESULTS}/report/splits.tsv"] + [
+        f"{RESULTS}/figures/cases/{c}/{k}.png"
+        for c in CASES
+        for k in ("timeseries", "profiles", "lwp_map")
+    ]
+
+
 def set_stores():
     """Every training store and the train normalization statistics."""
     out = [f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS]
@@ -210,7 +229,13 @@ def set_stores():
 
 def final_outputs():
     """Everything `rule all` asks for."""
-    return [*canonical_stores(), *scale_stores(), f"{RESULTS}/splits.tsv", *set_stores()]
+    return [
+        *canonical_stores(),
+        *scale_stores(),
+        f"{RESULTS}/splits.tsv",
+        *set_stores(),
+        *report_outputs(),
+    ]
 
 
 wildcard_constraints:

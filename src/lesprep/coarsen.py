@@ -41,6 +41,7 @@ import xarray as xr
 import zarr
 
 from . import provenance, thermo
+from ._memory import retain_freed_memory
 from .baseline import sundqvist_cloud_fraction
 from .errors import ConfigError, ScaleError
 from .moments import block_mean, hierarchical_moments, plan_hierarchy
@@ -412,6 +413,7 @@ def coarsen_case(
     dict
         Scale label -> written store.
     """
+    retain_freed_memory()
     canon = open_store(canonical)
     case = str(canon.attrs.get("case", Path(canonical).parent.name))
     dx = float(canon.attrs["dx"])

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from . import provenance, thermo
+from ._memory import retain_freed_memory
 from .archive import Catalogue, catalogue, read_field, resolve_files
 from .checks import check_finite, check_range, resolve_ranges
 from .errors import TimeAxisError
@@ -388,6 +389,7 @@ def ingest_case(
     lesprep.errors.InputError
         Any problem with the archive; nothing is left at ``out``.
     """
+    retain_freed_memory()
     vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
     files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
     cat = catalogue(files, vm, case=case)

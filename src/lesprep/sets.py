@@ -32,8 +32,9 @@ import xarray as xr
 import zarr
 
 from . import provenance
+from ._memory import retain_freed_memory
 from .errors import ConfigError
-from .store import atomic_path, compressors, consolidate, open_store
+from .store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
 from .units import parse_quantity
 
 log = logging.getLogger(__name__)
@@ -195,6 +196,7 @@ def build_set(
     extra_provenance
         Extra fields of the provenance step (split rule, assignment, ...).
     """
+    retain_freed_memory()
     if not inputs:
         raise ConfigError(f"split {split!r} has no case at scale {scale}; nothing to assemble")
     stores = {c: open_store(inputs[c]) for c in sorted(inputs)}
@@ -268,6 +270,7 @@ def build_set(
                 compressors=comp,
                 fill_value=fill,
                 dimension_names=dims,
+                chunk_key_encoding=CHUNK_KEYS,
             )
             if name in first:
                 attrs = dict(first[name].attrs)

@@ -214,13 +214,6 @@ def scale_stores(tmp_path_factory, demo_root):
         settings=IngestSettings(
             spinup="1 h",
             cloud_threshold="1e-5 kg/kg",
-            ranges={
-                "qc": (0, 0.02),
-                "qv": (0, 0.05),
-                "T": (150, 340),
-                "p": (1e4, 1.1e5),
-                "w": (-60, 60),
-            },
         ),
         out=out / "canonical.zarr",
     )

@@ -54,13 +54,6 @@ def tree(tmp_path_factory, demo_root):
     ingest = IngestSettings(
         spinup="1 h",
         cloud_threshold="1e-5 kg/kg",
-        ranges={
-            "qc": (0, 0.02),
-            "qv": (0, 0.05),
-            "T": (150, 340),
-            "p": (1e4, 1.1e5),
-            "w": (-60, 60),
-        },
     )
     coarsen = CoarsenSettings(
         scales=tuple(parse_scales(["300 m"])), patch_scales=(), rh_critical=RH_CRITICAL

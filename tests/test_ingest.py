@@ -30,7 +30,6 @@ VARMAPS = {f: REPO / f"config/varmaps/flavour-{f}.yaml" for f in ("alpha", "beta
 SETTINGS = IngestSettings(
     spinup="1 h",
     cloud_threshold="1e-5 kg/kg",
-    ranges={"qc": (0, 0.02), "qv": (0, 0.05), "T": (150, 340), "p": (1e4, 1.1e5), "w": (-60, 60)},
 )
 
 

@@ -36,13 +36,6 @@ def case_stores(tmp_path_factory, demo_root):
     ing = IngestSettings(
         spinup="1 h",
         cloud_threshold="1e-5 kg/kg",
-        ranges={
-            "qc": (0, 0.02),
-            "qv": (0, 0.05),
-            "T": (150, 340),
-            "p": (1e4, 1.1e5),
-            "w": (-60, 60),
-        },
     )
     co = CoarsenSettings(
         scales=tuple(parse_scales(["400 m"])), patch_scales=("400m",), patch_size=4

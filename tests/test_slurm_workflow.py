@@ -1,20 +1,22 @@
 """The lesprep demo workflow on a real one-node SLURM cluster (started by ``slurm_cluster``).
 
 Outside references: SLURM's accounting database, read with ``sacct``, must record one
-job per Snakemake job with the rule in its comment and the final state; a run with the
-plain local executor of the same project must give the same arrays (``numpy.array_equal``);
+job per Snakemake job, tagged with its rule, and how it ended; Snakemake's plain local
+executor, run on the same project, must give the same arrays (``numpy.array_equal``);
 pint's dimensionality decides that ``m s-1`` is no temperature, which is the deliberate
 failure. Nothing is mocked. Outside CI the tests skip when SLURM or the executor plugin
 is missing; in CI (``CI=true``) they fail instead (the policy of ``test_slurm_smoke.py``).
 
 The module starts its own cluster (about 12 s) and stops it when the module is done.
-Tests run in file order and share module fixtures: the SLURM run, the local run and a
-project whose ingest job is made to fail and is then resumed.
+Tests run in file order and share module fixtures: a run on SLURM, a local run of the
+same project, and a second project whose ingest job is made to fail and is then resumed.
 
-Every run uses a snapshot of the workflow and of ``src/lesprep`` taken when the module
-starts (``PYTHONPATH`` points at it, in the SLURM jobs too). The workflow's params hold a
-hash of lesprep's source, so an edit of the checkout during the few minutes the module
-runs would otherwise make the later runs redo every job.
+Runs target the data products (per-case stores, splits, training stores, normalization),
+not ``rule all``, so report rules stay out of the job count. Every run uses a snapshot of
+the workflow and of ``src/lesprep`` taken when the module starts (``PYTHONPATH`` points at
+it, in the SLURM jobs too): the workflow's params hold a hash of lesprep's source, so an
+edit of the checkout during the minutes the module runs would make later runs redo
+every job.
 """
 
 from __future__ import annotations
@@ -25,9 +27,10 @@ import os
 import re
 import shutil
 import subprocess
+import sys
 import time
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,6 +38,7 @@ import netCDF4
 import numpy as np
 import pytest
 
+from lesprep.provenance import load
 from lesprep.store import open_store
 from slurm_cluster import ACCOUNT, Cluster, slurm_available, start_cluster
 from workflow_project import FLAVOUR, SNAKEMAKE, Project, parse_job_stats
@@ -43,8 +47,14 @@ pytestmark = pytest.mark.slurm
 
 REPO = Path(__file__).resolve().parents[1]
 CI_PROFILE = REPO / "profiles" / "slurm-ci"
-SLURM_RUN_TIMEOUT = 300  # s; nine tiny jobs, two at a time, take about 90 s
-LOCAL_RUN_TIMEOUT = 300  # s; the same project on the local executor takes about 40 s
+# On top of the CI profile. Jobs here take 10-25 s (two Snakemake start-ups and the
+# lesprep step), longer than the smoke test's 9 s. The plugin checks job states s,
+# 2s + 10, 3s + 30 ... seconds after its last check that saw a job end, s being the
+# value below: 6 gives 6, 22, 48. More jobs than the node's two CPUs keep a ready job
+# queued in SLURM, which starts it as soon as a CPU is free, before the next check.
+SLURM_FLAGS = ("--jobs", "4", "--slurm-init-seconds-before-status-checks", "6")
+SLURM_RUN_TIMEOUT = 300  # s; nine jobs take about 100 s
+LOCAL_RUN_TIMEOUT = 300  # s; the same project on the local executor takes about 30 s
 SACCT_FIELDS = ("JobID", "JobName", "State", "ExitCode", "Account", "Comment", "Start", "End")
 TERMINAL = {"COMPLETED", "FAILED", "CANCELLED", "TIMEOUT", "OUT_OF_MEMORY", "NODE_FAIL"}
 
@@ -53,7 +63,7 @@ CASES = (TRAIN_CASE, TEST_CASE)
 SCALE = "600m"
 COARSEN_RULE = f"coarsen_g-{SCALE}"  # the one scale group configured in tiny_project
 # The file damaged in the failure test, its variable (flavour alpha's temperature) and
-# the wrong units: a velocity, not a temperature (dimensionality as pint sees it).
+# the wrong units: a velocity, not a temperature.
 DAMAGED_FILE, DAMAGED_VARIABLE, WRONG_UNITS = "snap_0003.nc", "tempc", "m s-1"
 
 
@@ -76,14 +86,15 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
         yield running
 
 
-# --- the code under test, projects and runs ------------------------------------------
+# --- the code under test --------------------------------------------------------------
 
 
 @dataclass(frozen=True)
 class Code:
-    """A frozen copy of the workflow and the lesprep package."""
+    """A frozen copy of the workflow and the lesprep package, and its code hash."""
 
     root: Path
+    version: str = ""
 
     @property
     def snakefile(self) -> Path:
@@ -100,18 +111,91 @@ class Code:
 
 @pytest.fixture(scope="module")
 def code(tmp_path_factory: pytest.TempPathFactory) -> Code:
+    """Snapshot the workflow and the package; check that the snapshot is what imports."""
     root = tmp_path_factory.mktemp("code")
     skip = shutil.ignore_patterns("__pycache__", "*.pyc")
     for rel in ("src/lesprep", "workflow", "config/varmaps"):
         shutil.copytree(REPO / rel, root / rel, ignore=skip)
     shutil.copy2(REPO / "Snakefile", root / "Snakefile")
-    return Code(root)
+    probe = subprocess.run(
+        [sys.executable, "-c",
+         "import lesprep.provenance as p; print(p.__file__); print(p.code_version())"],
+        env=Code(root).environ(dict(os.environ)),
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=True,
+    )  # fmt: skip
+    where, version = probe.stdout.split()
+    assert Path(where).is_relative_to(root), where  # the snapshot, not the checkout
+    return Code(root, version)
+
+
+# --- projects and runs ----------------------------------------------------------------
+
+
+def tiny_project(root: Path, code: Code) -> Project:
+    """Two demo cases at the TINY size, one scale; the splits are pinned (one per split).
+
+    Pinning fixes the job list: ``assemble_train`` reads only TRAIN_CASE and
+    ``assemble_heldout`` (split ``test``) only TEST_CASE.
+    """
+    p = Project(root)
+    p.add_demo_case(TRAIN_CASE, split="train")
+    p.add_demo_case(TEST_CASE, split="test")
+    for row in p.rows:
+        row["varmap"] = str(code.varmap(row["case"]))
+    p.config["coarsen"] = {
+        "scales": ["600 m"],
+        "groups": [["600 m"]],
+        "patches": {"variables": ["qc", "w"], "scales": ["600 m"], "size": 6},
+    }
+    return p
+
+
+def case_stores(case: str) -> list[str]:
+    return [f"results/cases/{case}/canonical.zarr", f"results/cases/{case}/scale-{SCALE}.zarr"]
+
+
+def set_stores() -> list[str]:
+    return [f"results/sets/train/scale-{SCALE}.zarr", f"results/sets/test/scale-{SCALE}.zarr"]
+
+
+NORMALIZATION = f"results/sets/normalization-{SCALE}.json"
+DATA_TARGETS = (
+    *(s for c in CASES for s in case_stores(c)),
+    "results/splits.tsv",
+    *set_stores(),
+    NORMALIZATION,
+)
+
+
+def expected_jobs() -> dict[str, str]:
+    """Rule of every job a run for DATA_TARGETS submits, by the job's SLURM comment.
+
+    The plugin tags a job ``--comment rule_<rule>`` and, for jobs with wildcards,
+    ``rule_<rule>_wildcards_<wildcard values joined by _>``.
+    """
+    jobs = {
+        f"rule_{rule}_wildcards_{case}": rule
+        for case in CASES
+        for rule in ("demo_archive", "ingest", COARSEN_RULE)
+    }
+    jobs["rule_assign_splits"] = "assign_splits"
+    jobs[f"rule_assemble_train_wildcards_{SCALE}"] = "assemble_train"
+    jobs[f"rule_assemble_heldout_wildcards_test_{SCALE}"] = "assemble_heldout"
+    return jobs
 
 
 def snakemake(
-    code: Code, project: Project, *args: str, env: dict[str, str], timeout: float
+    code: Code,
+    project: Project,
+    *args: str,
+    targets: Sequence[str] = DATA_TARGETS,
+    env: dict[str, str],
+    timeout: float,
 ) -> subprocess.CompletedProcess[str]:
-    """Run the snapshot's Snakefile for `project`, from inside the project folder.
+    """Run the snapshot's Snakefile for `project` from inside the project folder.
 
     The working directory matters: the SLURM plugin puts ``.snakemake/slurm_logs``
     under the directory Snakemake starts in, and a ``profiles/default`` there would
@@ -120,6 +204,7 @@ def snakemake(
     project.write()
     cmd = [
         SNAKEMAKE,
+        *targets,
         "-s", str(code.snakefile),
         "--directory", str(project.root),
         "--configfile", str(project.root / "config/config.yaml"),
@@ -137,54 +222,20 @@ def snakemake(
     )
 
 
-def run_locally(code: Code, project: Project, *args: str) -> None:
+def run_locally(code: Code, project: Project, targets: Sequence[str] = DATA_TARGETS) -> None:
     """Run `project` on Snakemake's plain local executor with two cores; must succeed."""
     res = snakemake(
-        code, project, "--cores", "2", *args, env=dict(os.environ), timeout=LOCAL_RUN_TIMEOUT
-    )
+        code, project, "--cores", "2",
+        targets=targets, env=dict(os.environ), timeout=LOCAL_RUN_TIMEOUT,
+    )  # fmt: skip
     assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-6000:]
 
 
 def planned_jobs(code: Code, project: Project) -> dict[str, int]:
-    """Jobs a dry run would execute, by rule."""
+    """Jobs a dry run for DATA_TARGETS would execute, by rule."""
     res = snakemake(code, project, "--cores", "2", "--dry-run", env=dict(os.environ), timeout=120)
     assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-6000:]
     return parse_job_stats(res.stdout + res.stderr)
-
-
-def tiny_project(root: Path, code: Code) -> Project:
-    """Two demo cases at the TINY size, one scale; the splits are pinned (one per split).
-
-    Pinning makes the job list fixed: ``assemble_train`` reads only TRAIN_CASE and
-    ``assemble_heldout`` (split ``test``) only TEST_CASE.
-    """
-    p = Project(root)
-    p.add_demo_case(TRAIN_CASE, split="train")
-    p.add_demo_case(TEST_CASE, split="test")
-    for row in p.rows:
-        row["varmap"] = str(code.varmap(row["case"]))
-    p.config["coarsen"] = {
-        "scales": ["600 m"],
-        "groups": [["600 m"]],
-        "patches": {"variables": ["qc", "w"], "scales": ["600 m"], "size": 6},
-    }
-    return p
-
-
-def expected_comments(cases: tuple[str, ...] = CASES) -> Counter[str]:
-    """The plugin's ``--comment`` of every job a full run of ``tiny_project`` submits.
-
-    The plugin writes ``rule_<rule>`` and, for jobs with wildcards,
-    ``rule_<rule>_wildcards_<values joined by _>``.
-    """
-    per_case = ("demo_archive", "ingest", COARSEN_RULE)
-    comments = [f"rule_{rule}_wildcards_{case}" for case in cases for rule in per_case]
-    comments += [
-        "rule_assign_splits",
-        f"rule_assemble_train_wildcards_{SCALE}",
-        f"rule_assemble_heldout_wildcards_test_{SCALE}",
-    ]
-    return Counter(comments)
 
 
 @dataclass
@@ -202,13 +253,17 @@ class SlurmRun:
     def comments(self) -> Counter[str]:
         return Counter(r["Comment"] for r in self.jobs.values())
 
+    def jobs_by_comment(self) -> dict[str, dict[str, str]]:
+        """Records by comment; a comment that occurs twice is an error."""
+        assert max(self.comments().values(), default=1) == 1, self.comments()
+        return {r["Comment"]: r for r in self.jobs.values()}
+
     def by_comment(self, comment: str) -> dict[str, str]:
-        (record,) = [r for r in self.jobs.values() if r["Comment"] == comment]
-        return record
+        return self.jobs_by_comment()[comment]
 
 
 def _accounting(cluster: Cluster) -> dict[str, dict[str, str]]:
-    """Every job in the accounting database (one row per job, no steps)."""
+    """Every job in the accounting database, by job id (allocations only, no steps)."""
     out = cluster.run(
         ["sacct", "-X", "-n", "-P", "-a", "-S", "2000-01-01", "-o", ",".join(SACCT_FIELDS)]
     )
@@ -219,7 +274,7 @@ def _accounting(cluster: Cluster) -> dict[str, dict[str, str]]:
 def _final_records(
     cluster: Cluster, job_ids: set[str], timeout: float = 60.0
 ) -> dict[str, dict[str, str]]:
-    """Accounting records of `job_ids` once all reached a final state.
+    """Accounting records of `job_ids` once every one reached a final state.
 
     slurmdbd stores the end of a job a moment after the job ends, so poll.
     """
@@ -227,19 +282,19 @@ def _final_records(
     records: dict[str, dict[str, str]] = {}
     while time.monotonic() < deadline:
         records = {k: v for k, v in _accounting(cluster).items() if k in job_ids}
-        done = [
+        final = [
             r
             for r in records.values()
             if r["State"].split()[0] in TERMINAL and r["End"] != "Unknown"
         ]
-        if len(done) == len(job_ids):
+        if len(final) == len(job_ids):
             return records
         time.sleep(0.5)
     pytest.fail(f"sacct shows no final state for all of {sorted(job_ids)}: {records}")
 
 
 def run_on_slurm(cluster: Cluster, code: Code, project: Project, *extra: str) -> SlurmRun:
-    """Run `project` with the CI SLURM profile.
+    """Run `project` for DATA_TARGETS with the CI SLURM profile.
 
     The SLURM jobs of the run are the jobs accounting gained during it; they must be
     the ones Snakemake reports as submitted.
@@ -247,24 +302,19 @@ def run_on_slurm(cluster: Cluster, code: Code, project: Project, *extra: str) ->
     before = set(_accounting(cluster))
     start = time.monotonic()
     proc = snakemake(
-        code,
-        project,
-        "--profile",
-        str(CI_PROFILE),
-        *extra,
-        env=cluster.environ(),
-        timeout=SLURM_RUN_TIMEOUT,
-    )
+        code, project, "--profile", str(CI_PROFILE), *SLURM_FLAGS, *extra,
+        env=cluster.environ(), timeout=SLURM_RUN_TIMEOUT,
+    )  # fmt: skip
     seconds = time.monotonic() - start
     output = proc.stdout + proc.stderr
     submitted = set(re.findall(r"has been submitted with SLURM jobid (\d+)", output))
-    new = set(_accounting(cluster)) - before
-    assert new == submitted, f"accounting gained {new}, Snakemake submitted {submitted}"
-    return SlurmRun(proc, _final_records(cluster, new), seconds)
+    gained = set(_accounting(cluster)) - before
+    assert gained == submitted, f"accounting gained {gained}, Snakemake submitted {submitted}"
+    return SlurmRun(proc, _final_records(cluster, gained), seconds)
 
 
 def _same_arrays(a: Path, b: Path) -> None:
-    """Every variable (data and coordinates) of two stores has equal dims and values.
+    """Every variable (data and coordinates) of two stores has equal dims, dtype, values.
 
     Attributes are not compared: provenance holds timestamps and paths.
     """
@@ -286,15 +336,17 @@ def _normalization(path: Path) -> dict[str, object]:
 
 
 def assert_same_results(root: Path, reference: Path) -> None:
-    """Canonical, scale and training stores and normalization of `root` equal `reference`."""
-    stores = [
-        f"cases/{c}/{name}" for c in CASES for name in ("canonical.zarr", f"scale-{SCALE}.zarr")
-    ]
-    stores += [f"sets/train/scale-{SCALE}.zarr", f"sets/test/scale-{SCALE}.zarr"]
-    for rel in stores:
-        _same_arrays(root / "results" / rel, reference / "results" / rel)
-    norm = f"results/sets/normalization-{SCALE}.json"
-    assert _normalization(root / norm) == _normalization(reference / norm)
+    """Per-case and training stores and normalization of `root` equal `reference`'s."""
+    for rel in [*case_stores(TRAIN_CASE), *case_stores(TEST_CASE), *set_stores()]:
+        _same_arrays(root / rel, reference / rel)
+    assert _normalization(root / NORMALIZATION) == _normalization(reference / NORMALIZATION)
+
+
+def assert_made_by(code: Code, root: Path) -> None:
+    """Every step recorded in every per-case store ran the snapshot's code."""
+    for rel in [*case_stores(TRAIN_CASE), *case_stores(TEST_CASE)]:
+        steps = load(open_store(root / rel).attrs)["steps"]
+        assert steps and {s["environment"]["code_version"] for s in steps} == {code.version}
 
 
 @pytest.fixture(scope="module")
@@ -325,19 +377,21 @@ class FailedProject:
 def failed(cluster: Cluster, code: Code, tmp_path_factory: pytest.TempPathFactory) -> FailedProject:
     """A project whose TRAIN_CASE archive gets wrong units after the demo step.
 
-    The demo archives are written locally; the rest runs on SLURM with ``--keep-going``,
-    so everything not downstream of the failing ingest job finishes.
+    The demo archives are written locally, the rest is run on SLURM. The three jobs
+    ready at the start -- both ingest jobs and ``assign_splits`` -- are submitted at
+    once (``--jobs 4``). Once Snakemake sees the failure it submits nothing more and
+    waits for the jobs already out; jobs made ready by one of those ending may have
+    gone out before (timing decides).
     """
     project = tiny_project(tmp_path_factory.mktemp("failing"), code)
-    run_locally(code, project, "--until", "demo_archive")
+    run_locally(code, project, targets=[f"resources/demo/{c}" for c in CASES])
     damaged = project.root / "resources/demo" / TRAIN_CASE / DAMAGED_FILE
     backup = project.root / f"{DAMAGED_FILE}.orig"
     shutil.copy2(damaged, backup)
     with netCDF4.Dataset(damaged, "a") as nc:
         assert nc[DAMAGED_VARIABLE].getncattr("units") != WRONG_UNITS
         nc[DAMAGED_VARIABLE].setncattr("units", WRONG_UNITS)
-    run = run_on_slurm(cluster, code, project, "--keep-going")
-    return FailedProject(project, run, damaged, backup)
+    return FailedProject(project, run_on_slurm(cluster, code, project), damaged, backup)
 
 
 # --- tests ----------------------------------------------------------------------------
@@ -348,14 +402,12 @@ def test_demo_runs_as_one_slurm_job_per_snakemake_job(
 ) -> None:
     project, run = slurm_run
     assert run.proc.returncode == 0, run.output[-6000:]
-    # Snakemake's own job table (rule `all` has no action and is not submitted) ...
-    stats = parse_job_stats(run.output)
-    assert stats.pop("all") == 1
-    assert sum(stats.values()) == len(run.jobs)
-    # ... and SLURM's accounting: one COMPLETED job per Snakemake job, each tagged
-    # with its rule and wildcards, under the harness's account, all of one run
-    # (the plugin names every job of a run by the run's id).
-    assert run.comments() == expected_comments()
+    # Snakemake's own job table and SLURM's accounting agree on the number of jobs ...
+    assert sum(parse_job_stats(run.output).values()) == len(run.jobs)
+    # ... and accounting has one COMPLETED job per Snakemake job, tagged with its rule
+    # and wildcards, under the harness's account, all of one run (the plugin names
+    # every job of a run by the run's id).
+    assert run.comments() == Counter(list(expected_jobs()))
     for record in run.jobs.values():
         assert record["State"] == "COMPLETED", record
         assert record["ExitCode"] == "0:0", record
@@ -366,9 +418,9 @@ def test_demo_runs_as_one_slurm_job_per_snakemake_job(
         demo = run.by_comment(f"rule_demo_archive_wildcards_{case}")
         ingest = run.by_comment(f"rule_ingest_wildcards_{case}")
         assert ingest["Start"] >= demo["End"]  # ISO 8601 timestamps sort as text
-    for case in CASES:
-        assert (project.root / "results/cases" / case / f"scale-{SCALE}.zarr").is_dir()
-    # Snakemake's record agrees: nothing is left to do.
+    # The stores were written by the jobs, with the snapshot's code, and Snakemake's
+    # record of the run is complete: nothing is left to do.
+    assert_made_by(code, project.root)
     assert planned_jobs(code, project) == {}
 
 
@@ -386,21 +438,27 @@ def test_failing_job_fails_the_run_with_slurm_reason(failed: FailedProject) -> N
     doomed = run.by_comment(f"rule_ingest_wildcards_{TRAIN_CASE}")
     assert doomed["State"] == "FAILED", doomed
     assert doomed["ExitCode"] != "0:0", doomed
-    # With --keep-going everything that does not need the failed job ran and completed.
-    others = {
+    # The three jobs ready at the start went out together (--jobs 4). Once Snakemake
+    # saw the failure it submitted nothing more; it waited for the jobs out already,
+    # and they completed. Jobs that do not need the failed one may have been submitted
+    # before the failure was seen (which depends on timing), those needing it never.
+    others = {c: r for c, r in run.jobs_by_comment().items() if c != doomed["Comment"]}
+    assert {f"rule_ingest_wildcards_{TEST_CASE}", "rule_assign_splits"} <= set(others)
+    independent = {
         f"rule_ingest_wildcards_{TEST_CASE}",
         f"rule_{COARSEN_RULE}_wildcards_{TEST_CASE}",
         "rule_assign_splits",
         f"rule_assemble_heldout_wildcards_test_{SCALE}",
     }
-    assert set(run.comments()) == others | {doomed["Comment"]}
-    assert sum(run.comments().values()) == len(others) + 1
-    for comment in others:
-        assert run.by_comment(comment)["State"] == "COMPLETED"
-    # SLURM's verdict reaches the user through Snakemake's output ...
+    assert set(others) <= independent, sorted(others)
+    assert sum(run.comments().values()) == len(others) + 1  # each job once
+    assert all(r["State"] == "COMPLETED" for r in others.values()), others
+    # SLURM's verdict reaches the user through Snakemake's output, with the rule's log ...
     job_id = doomed["JobID"]
     assert f"SLURM-job '{job_id}' failed, SLURM status is: 'FAILED'" in run.output
-    # ... and lesprep's one-line error is in the rule's log and in the job's SLURM log.
+    assert f"logs/ingest/{TRAIN_CASE}.log" in run.output
+    # ... where lesprep's one-line error names case, file, variable and the units found;
+    # the job's SLURM log holds it too (the step's stderr).
     message = (
         f"case '{TRAIN_CASE}', file resources/demo/{TRAIN_CASE}/{DAMAGED_FILE}, "
         f"variable '{DAMAGED_VARIABLE}': has units '{WRONG_UNITS}'"
@@ -409,10 +467,9 @@ def test_failing_job_fails_the_run_with_slurm_reason(failed: FailedProject) -> N
     assert message in rule_log, rule_log
     slurm_log = root / ".snakemake/slurm_logs/rule_ingest" / TRAIN_CASE / f"{job_id}.log"
     assert f"lesprep ingest failed: {message}" in slurm_log.read_text()
-    assert f"logs/ingest/{TRAIN_CASE}.log" in run.output
-    # The failed job left no canonical store behind; the other case's is complete.
-    assert not (root / "results/cases" / TRAIN_CASE / "canonical.zarr").exists()
-    assert (root / "results/cases" / TEST_CASE / f"scale-{SCALE}.zarr").is_dir()
+    # The failed job left no canonical store behind; the other case's is there.
+    assert not (root / case_stores(TRAIN_CASE)[0]).exists()
+    assert (root / case_stores(TEST_CASE)[0]).is_dir()
 
 
 def test_rerun_after_fix_submits_only_the_missing_jobs(
@@ -420,23 +477,26 @@ def test_rerun_after_fix_submits_only_the_missing_jobs(
 ) -> None:
     project = failed.project
     shutil.copy2(failed.backup, failed.damaged)  # the fix: the original file again
+    # Missing: every job of the workflow but the demo jobs (run locally before) and the
+    # jobs that completed in the failed run; the failed job is among them.
+    completed = {c for c, r in failed.run.jobs_by_comment().items() if r["State"] == "COMPLETED"}
     missing = {
-        f"rule_ingest_wildcards_{TRAIN_CASE}",
-        f"rule_{COARSEN_RULE}_wildcards_{TRAIN_CASE}",
-        f"rule_assemble_train_wildcards_{SCALE}",
+        c: rule
+        for c, rule in expected_jobs().items()
+        if rule != "demo_archive" and c not in completed
     }
-    # What Snakemake plans (dry run) and what SLURM then runs are the missing jobs only;
-    # the jobs that completed in the failed run are not submitted again.
-    planned = planned_jobs(code, project)
-    assert planned == {"ingest": 1, COARSEN_RULE: 1, "assemble_train": 1, "all": 1}
+    for comment in (
+        f"rule_ingest_wildcards_{TRAIN_CASE}",
+        f"rule_assemble_train_wildcards_{SCALE}",
+    ):
+        assert comment in missing
+    # Snakemake plans (dry run) and SLURM then runs exactly those: no job that completed
+    # in the failed run is submitted again.
+    assert planned_jobs(code, project) == dict(Counter(missing.values()))
     rerun = run_on_slurm(cluster, code, project)
     assert rerun.proc.returncode == 0, rerun.output[-6000:]
-    assert rerun.comments() == Counter(missing)
+    assert rerun.comments() == Counter(list(missing))
     assert all(r["State"] == "COMPLETED" for r in rerun.jobs.values())
-    # Over both runs every job of the workflow ran on SLURM once, except the demo jobs
-    # (run locally) and the one that failed and was run again.
-    both = failed.run.comments() + rerun.comments()
-    demo = Counter(f"rule_demo_archive_wildcards_{c}" for c in CASES)
-    assert both == expected_comments() - demo + Counter({f"rule_ingest_wildcards_{TRAIN_CASE}": 1})
     # The resumed project holds the same arrays as the uninterrupted local run.
     assert_same_results(project.root, local_run.root)
+    assert planned_jobs(code, project) == {}

@@ -19,7 +19,7 @@ import numpy as np
 from . import provenance, thermo
 from ._memory import retain_freed_memory
 from .archive import Catalogue, catalogue, read_field, resolve_files
-from .checks import check_finite, check_range, resolve_ranges
+from .checks import DEFAULT_RANGES, check_finite, check_range, resolve_ranges
 from .errors import TimeAxisError
 from .grid import (
     destagger_periodic,
@@ -79,7 +79,7 @@ class IngestSettings:
 
     spinup: str
     cloud_threshold: str
-    ranges: dict[str, tuple[float, float]] = field(default_factory=dict)
+    ranges: dict[str, tuple[float, float]] = field(default_factory=lambda: dict(DEFAULT_RANGES))
     dtype: str = "float32"
     chunk_mib: float = 32.0
     store: dict[str, Any] = field(default_factory=dict)

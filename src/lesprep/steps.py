@@ -131,6 +131,16 @@ STEPS: dict[str, Callable[[Any], None]] = {
 }
 
 
+def _use_job_threads(threads: int) -> None:
+    """Keep the compiled kernels to the job's threads (not every CPU of the node)."""
+    try:
+        import numba
+
+        numba.set_num_threads(max(1, min(threads, numba.config.NUMBA_NUM_THREADS)))
+    except ImportError:  # the numpy engine is used then
+        pass
+
+
 def run(step: str, smk: Any) -> None:
     """Run one workflow step for a Snakemake job (``smk`` is the ``snakemake`` object)."""
     log_file = smk.log[0] if len(smk.log) else None
@@ -145,6 +155,7 @@ def run(step: str, smk: Any) -> None:
         force=True,
     )
     logging.getLogger("pint").setLevel(logging.ERROR)  # unit redefinitions by cf-xarray
+    _use_job_threads(int(getattr(smk, "threads", 1) or 1))
     try:
         STEPS[step](smk)
     except LesprepError as exc:

@@ -67,15 +67,9 @@ def _status_kib(key: str) -> int:
 
 def dir_bytes(path: str | Path) -> int:
     """Bytes of the files under ``path`` (a store or an archive)."""
-    p = Path(path)
-    if p.is_file():
-        return p.stat().st_size
-    total = 0
-    for root, _, files in os.walk(p):
-        for f in files:
-            with contextlib.suppress(OSError):
-                total += os.stat(os.path.join(root, f)).st_size
-    return total
+    from lesprep.store import dir_size_bytes
+
+    return dir_size_bytes(path)
 
 
 def file_count(path: str | Path) -> int:

@@ -1327,7 +1327,14 @@ class Suite:
         nt = a.ntimes
         k = min(nt, a.xr_times or 1)
         key = "coarsen_xarray" if a.xr_times or k == nt else "coarsen_xarray_pilot"
-        res = r.step(key, "coarsen_xarray", {**params, "ntimes": k}, warm_paths=[self.canonical])
+        runs = [
+            r.step(key, "coarsen_xarray", {**params, "ntimes": k}, warm_paths=[self.canonical])
+            for _ in range(max(1, a.repeat) if k < nt else 1)
+        ]
+        res = dict(min(runs, key=lambda x: x["time_s"]))
+        if len(runs) > 1:
+            res["runs"] = [{f: x.get(f) for f in RUN_FIELDS} for x in runs]
+        r.results["steps"][key] = res
         if key == "coarsen_xarray_pilot":
             if res["time_s"] * nt / k <= a.xr_budget:
                 res = r.step(
@@ -1603,6 +1610,8 @@ class Suite:
                 ratio = _fmt(t / steps[ref]["time_s"], ".2f")
             gbps = s["bytes"] / 1e9 / s["time_s"] if s.get("bytes") else None
             note = s.get("note", "")
+            if "read_s" in s:
+                note = f"read {s['read_s']:.1f} s + write {s['write_s']:.1f} s; " + note
             if len(s.get("runs", [])) > 1:
                 times = ", ".join(f"{x['time_s']:.1f}" for x in s["runs"])
                 peaks = ", ".join(f"{x['peak_rss_mib']:.0f}" for x in s["runs"])

@@ -1609,13 +1609,14 @@ class Suite:
             if ref and ref in steps and "error" not in steps[ref]:
                 ratio = _fmt(t / steps[ref]["time_s"], ".2f")
             gbps = s["bytes"] / 1e9 / s["time_s"] if s.get("bytes") else None
-            note = s.get("note", "")
+            parts = [s["note"]] if s.get("note") else []
             if "read_s" in s:
-                note = f"read {s['read_s']:.1f} s + write {s['write_s']:.1f} s; " + note
+                parts.append(f"read {s['read_s']:.1f} s + write {s['write_s']:.1f} s")
             if len(s.get("runs", [])) > 1:
                 times = ", ".join(f"{x['time_s']:.1f}" for x in s["runs"])
                 peaks = ", ".join(f"{x['peak_rss_mib']:.0f}" for x in s["runs"])
-                note = f"fastest of {len(s['runs'])} runs: {times} s; peaks {peaks} MiB " + note
+                parts.append(f"fastest of {len(s['runs'])} runs: {times} s; peaks {peaks} MiB")
+            note = "; ".join(parts)
             return [
                 label,
                 _fmt(t, ".1f"),

@@ -9,7 +9,6 @@ Nothing is mocked. Outside CI the tests skip when SLURM is not installed; in CI
 from __future__ import annotations
 
 import importlib.util
-import os
 import re
 import socket
 import subprocess
@@ -20,6 +19,7 @@ from pathlib import Path
 
 import pytest
 
+from ci_policy import unavailable
 from slurm_cluster import ACCOUNT, PARTITION, Cluster, slurm_available, start_cluster
 
 pytestmark = pytest.mark.slurm
@@ -34,19 +34,12 @@ SACCT_FIELDS = ("JobID", "JobName", "State", "ExitCode", "Account", "Comment", "
 TERMINAL = {"COMPLETED", "FAILED", "CANCELLED", "TIMEOUT", "OUT_OF_MEMORY", "NODE_FAIL"}
 
 
-def _unavailable(reason: str) -> None:
-    """Skip outside CI; fail in CI, where SLURM must be there."""
-    if os.environ.get("CI") == "true":
-        pytest.fail(f"SLURM tests cannot run in CI: {reason}", pytrace=False)
-    pytest.skip(reason)
-
-
 @pytest.fixture(scope="session")
 def slurm_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
     """Start a one-node SLURM cluster for the session and stop it afterwards."""
     ok, why = slurm_available()
     if not ok:
-        _unavailable(why)
+        unavailable(why)
     with start_cluster(tmp_path_factory.mktemp("slurm")) as cluster:
         yield cluster
 
@@ -55,7 +48,7 @@ def slurm_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]
 def slurm_plugin() -> None:
     """Require the Snakemake SLURM executor plugin."""
     if importlib.util.find_spec("snakemake_executor_plugin_slurm") is None:
-        _unavailable(
+        unavailable(
             "snakemake-executor-plugin-slurm is not installed "
             "(pip install snakemake-executor-plugin-slurm==2.8.0)"
         )

@@ -38,6 +38,7 @@ import netCDF4
 import numpy as np
 import pytest
 
+from ci_policy import unavailable
 from lesprep.provenance import load
 from lesprep.store import open_store
 from slurm_cluster import ACCOUNT, Cluster, slurm_available, start_cluster
@@ -67,21 +68,14 @@ COARSEN_RULE = f"coarsen_g-{SCALE}"  # the one scale group configured in tiny_pr
 DAMAGED_FILE, DAMAGED_VARIABLE, WRONG_UNITS = "snap_0003.nc", "tempc", "m s-1"
 
 
-def _unavailable(reason: str) -> None:
-    """Skip outside CI; fail in CI, where SLURM must be there."""
-    if os.environ.get("CI") == "true":
-        pytest.fail(f"SLURM tests cannot run in CI: {reason}", pytrace=False)
-    pytest.skip(reason)
-
-
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
     """A one-node SLURM cluster for this module (the executor plugin is required too)."""
     ok, why = slurm_available()
     if not ok:
-        _unavailable(why)
+        unavailable(why)
     if importlib.util.find_spec("snakemake_executor_plugin_slurm") is None:
-        _unavailable("snakemake-executor-plugin-slurm is not installed (pip install -e '.[slurm]')")
+        unavailable("snakemake-executor-plugin-slurm is not installed (pip install -e '.[slurm]')")
     with start_cluster(tmp_path_factory.mktemp("slurm-workflow")) as running:
         yield running
 

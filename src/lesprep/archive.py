@@ -21,6 +21,7 @@ import netCDF4
 import numpy as np
 import pandas as pd
 
+from .checks import value_extent
 from .errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
 from .units import ureg
 from .varmap import VariableMap
@@ -50,12 +51,59 @@ class RawVariable:
         self.attrs: dict[str, Any] = {k: var.getncattr(k) for k in var.ncattrs()}
         self.shape: tuple[int, ...] = tuple(var.shape)
 
-    def read(self, index: dict[str, int] | None = None) -> np.ndarray:
-        """Values as float64 (scale/offset applied, fill values as NaN), optionally
-        with one index fixed per named dimension."""
+    def read(self, index: dict[str, int] | None = None, *, native: bool = False) -> np.ndarray:
+        """Values with scale/offset applied and invalid values as NaN, optionally with one
+        index fixed per named dimension.
+
+        Invalid values are those netCDF4's masking would hide: the fill value (the
+        ``_FillValue`` attribute, or the library default when fill mode is on),
+        ``missing_value`` and values outside ``valid_min``/``valid_max``/``valid_range``.
+
+        By default the result is float64. With ``native=True`` an unpacked floating-point
+        variable keeps its own dtype (a float32 field is not widened), and the invalid-value
+        test reads the values once instead of building a masked array; packed or integer
+        variables still come back as float64.
+        """
         sel = tuple((index or {}).get(d, slice(None)) for d in self.dims)
-        raw = self._var[sel] if sel else self._var[...]
-        return np.ma.filled(np.ma.asarray(raw).astype(np.float64), np.nan)
+        packed = "scale_factor" in self.attrs or "add_offset" in self.attrs
+        if not native or packed or np.dtype(self._var.dtype).kind != "f":
+            raw = self._var[sel] if sel else self._var[...]
+            return np.ma.filled(np.ma.asarray(raw).astype(np.float64), np.nan)
+        self._var.set_auto_maskandscale(False)
+        try:
+            values = np.asarray(self._var[sel] if sel else self._var[...])
+        finally:
+            self._var.set_auto_maskandscale(True)
+        _, lo, hi = value_extent(values)
+        invalid = self._invalid(values, lo, hi)
+        if invalid is not None:
+            values = np.array(values, copy=True)
+            values[invalid] = np.nan
+        return values
+
+    def _invalid(self, values: np.ndarray, lo: float, hi: float) -> np.ndarray | None:
+        """Mask of the invalid values, or None when the value range shows there are none."""
+        specials = [float(v) for v in np.ravel(self.attrs.get("missing_value", []))]
+        fill = self._var.get_fill_value()
+        if fill is not None:
+            specials.append(float(fill))
+        vmin = self.attrs.get("valid_min")
+        vmax = self.attrs.get("valid_max")
+        if "valid_range" in self.attrs:
+            vmin, vmax = np.ravel(self.attrs["valid_range"])[:2]
+        hit = [v for v in specials if lo <= v <= hi]
+        low = vmin is not None and lo < float(vmin)
+        high = vmax is not None and hi > float(vmax)
+        if not (hit or low or high):
+            return None
+        mask = np.zeros(values.shape, dtype=bool)
+        for v in hit:
+            mask |= values == v
+        if low:
+            mask |= values < float(vmin)
+        if high:
+            mask |= values > float(vmax)
+        return mask
 
     @property
     def values(self) -> np.ndarray:
@@ -449,7 +497,8 @@ def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, 
     Returns
     -------
     values, file, units
-        The raw array (float64, raw dim order without the time dim), the file it came
+        The raw array (its own float dtype, float64 if packed or integer; raw dim order
+        without the time dim; invalid values as NaN), the file it came
         from and its ``units`` attribute (None if missing).
     """
     spec = cat.varmap.variables[name]
@@ -460,7 +509,7 @@ def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, 
     try:
         var = ds.variables[spec.raw]
         time_dim = cat.varmap.raw_dim("time")
-        values = var.read({time_dim: k} if k >= 0 else None)
+        values = var.read({time_dim: k} if k >= 0 else None, native=True)
         units = var.attrs.get("units")
     except Exception as exc:
         raise InputError(

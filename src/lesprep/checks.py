@@ -22,6 +22,7 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
+from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from .errors import NonFiniteError, RangeError
 
 DEFAULT_RANGES: dict[str, tuple[float, float]] = {
@@ -43,6 +44,55 @@ def resolve_ranges(
     return out
 
 
+def value_extent(
+    values: NDArray[np.floating], *, engine: Engine = "auto"
+) -> tuple[int, float, float]:
+    """Count of NaN/Inf values and the minimum and maximum of the finite ones, in one pass.
+
+    Returns ``(nonfinite, vmin, vmax)``; ``vmin > vmax`` (``inf, -inf``) when no value is
+    finite. The numba engine reads the array once without temporaries; the numpy engine
+    (reference) masks.
+    """
+    a = np.asarray(values)
+    if a.size == 0:
+        return 0, float("inf"), float("-inf")
+    if resolve_engine(engine) == "numba" and a.dtype.char in "fd" and a.dtype.isnative:
+        flat = a.reshape(-1) if a.flags.c_contiguous else np.ravel(a)
+        bad, lo, hi = _nb_extent(flat, max(1, min(64, flat.size // 65536)))
+        return int(bad), float(lo), float(hi)
+    finite = np.isfinite(a)
+    good = a[finite]
+    if good.size == 0:
+        return int(a.size), float("inf"), float("-inf")
+    return int(a.size - good.size), float(good.min()), float(good.max())
+
+
+if HAVE_NUMBA:
+
+    @njit(parallel=True, cache=True)
+    def _nb_extent(a, parts):  # pragma: no cover - compiled
+        n = a.size
+        bad = np.zeros(parts, dtype=np.int64)
+        lo = np.full(parts, np.inf)
+        hi = np.full(parts, -np.inf)
+        step = (n + parts - 1) // parts
+        for k in prange(parts):
+            b = 0
+            mn = np.inf
+            mx = -np.inf
+            for i in range(k * step, min(n, (k + 1) * step)):
+                v = np.float64(a[i])
+                if np.isfinite(v):
+                    mn = min(mn, v)
+                    mx = max(mx, v)
+                else:
+                    b += 1
+            bad[k] = b
+            lo[k] = mn
+            hi[k] = mx
+        return bad.sum(), lo.min(), hi.max()
+
+
 def check_finite(
     values: NDArray[np.floating],
     *,
@@ -53,9 +103,9 @@ def check_finite(
     time: float | None = None,
 ) -> None:
     """Raise NonFiniteError with the count and first location of NaN/Inf values."""
-    bad = ~np.isfinite(values)
-    if not bad.any():
+    if value_extent(values)[0] == 0:
         return
+    bad = ~np.isfinite(values)
     first = np.unravel_index(int(np.argmax(bad)), values.shape)
     loc = ", ".join(f"{d}={i}" for d, i in zip(dims, first, strict=True))
     when = f" at time {time:g} s" if time is not None else ""
@@ -79,10 +129,17 @@ def check_range(
     raw_variable: str,
     raw_units: str,
     time: float | None = None,
+    extent: tuple[float, float] | None = None,
 ) -> None:
-    """Raise RangeError if converted values fall outside the plausible range."""
+    """Raise RangeError if converted values fall outside the plausible range.
+
+    ``extent`` is ``(min, max)`` of ``values`` when the caller has it already.
+    """
     lo, hi = bounds
-    vmin, vmax = float(values.min()), float(values.max())
+    if extent is None:
+        _, vmin, vmax = value_extent(values)
+    else:
+        vmin, vmax = float(extent[0]), float(extent[1])
     if vmin >= lo and vmax <= hi:
         return
     when = f" at time {time:g} s" if time is not None else ""

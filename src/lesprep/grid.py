@@ -16,8 +16,10 @@ Conventions
 from __future__ import annotations
 
 import numpy as np
+import numpy.typing as npt
 from numpy.typing import NDArray
 
+from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from .errors import GridError
 
 
@@ -117,13 +119,48 @@ def destagger_vertical(
     z: NDArray[np.float64],
     *,
     axis: int = 0,
-) -> NDArray[np.float64]:
-    """Interpolate a face-staggered field linearly in height to the cell centres."""
-    a = np.moveaxis(np.asarray(values_on_faces, dtype=np.float64), axis, 0)
-    w = (z - z_faces[:-1]) / (z_faces[1:] - z_faces[:-1])
+    dtype: npt.DTypeLike = np.float64,
+    engine: Engine = "auto",
+) -> NDArray[np.floating]:
+    """Interpolate a face-staggered field linearly in height to the cell centres.
+
+    ``out = a[k] + (a[k+1] - a[k]) * w_k`` with ``w_k = (z_k - zf_k) / (zf_{k+1} - zf_k)``,
+    computed in float64 and stored as ``dtype``. The numba engine handles a C-ordered
+    3-D field with height first in one pass; everything else takes the numpy reference.
+    """
+    w = (np.asarray(z, dtype=np.float64) - z_faces[:-1]) / (z_faces[1:] - z_faces[:-1])
+    src = np.asarray(values_on_faces)
+    dt = np.dtype(dtype)
+    fast = (
+        resolve_engine(engine) == "numba"
+        and axis == 0
+        and src.ndim == 3
+        and src.flags.c_contiguous
+        and src.dtype.char in "fd"
+        and dt.char in "fd"
+    )
+    if fast:
+        out = np.empty((src.shape[0] - 1, *src.shape[1:]), dtype=dt)
+        _nb_destagger(src, w, out)
+        return out
+    a = np.moveaxis(src.astype(np.float64, copy=False), axis, 0)
     shape = (-1,) + (1,) * (a.ndim - 1)
-    out = a[:-1] + (a[1:] - a[:-1]) * w.reshape(shape)
-    return np.moveaxis(out, 0, axis)
+    res = a[:-1] + (a[1:] - a[:-1]) * w.reshape(shape)
+    return np.moveaxis(res, 0, axis).astype(dt, copy=False)
+
+
+if HAVE_NUMBA:
+
+    @njit(parallel=True, cache=True, fastmath=False)
+    def _nb_destagger(a, w, out):  # pragma: no cover - compiled
+        nz, ny, nx = out.shape
+        for kj in prange(nz * ny):
+            k = kj // ny
+            j = kj - k * ny
+            wk = w[k]
+            for i in range(nx):
+                lo = np.float64(a[k, j, i])
+                out[k, j, i] = lo + (np.float64(a[k + 1, j, i]) - lo) * wk
 
 
 def destagger_periodic(values_on_faces: NDArray[np.float64], *, axis: int) -> NDArray[np.float64]:

@@ -20,6 +20,7 @@ from . import provenance, thermo
 from ._memory import retain_freed_memory
 from .archive import Catalogue, catalogue, read_field, resolve_files
 from .checks import DEFAULT_RANGES, check_finite, check_range, resolve_ranges
+from .derived import cell_diagnostics
 from .errors import TimeAxisError
 from .grid import (
     destagger_periodic,
@@ -28,7 +29,6 @@ from .grid import (
     layer_thickness,
     vertical_faces,
 )
-from .mask import cloud_mask
 from .store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
 from .units import Conversion, conversion, parse_quantity
 from .varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
@@ -183,14 +183,19 @@ def canonical_step(
     settings: IngestSettings,
     conversions: _ConversionLog,
 ) -> dict[str, np.ndarray]:
-    """Canonical float64 fields of one output time, checked and derived.
+    """Canonical fields of one output time, checked and derived, in the store dtype.
 
-    Returns ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask`` (bool), ``lwp`` (y, x) and
-    ``p`` as (z, y, x) or, for a profile, (z,).
+    Returns ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask`` (int8 0/1), ``lwp`` (y, x,
+    float64) and ``p`` as (z, y, x) or, for a profile, (z,). Every value is computed in
+    float64 from the raw value and rounded once per operation to ``settings.dtype``
+    (unit conversion, then destaggering or a quantity change); the derived fields are
+    computed from the rounded (stored) values, so they agree with what a reader of the
+    store recomputes (:mod:`lesprep.derived`).
     """
     vm: VariableMap = cat.varmap
     t = float(cat.times[time_index])
     z = cat.grid.z
+    dtype = np.dtype(settings.dtype)
     out: dict[str, np.ndarray] = {}
     files: dict[str, str] = {}
     for name in ("p", "qc", "qv", "T", "w"):
@@ -210,19 +215,26 @@ def canonical_step(
             case=cat.case,
             file=file,
         )
-        values = np.asarray(conv.apply(raw), dtype=np.float64)
+        values = conv.convert(raw, dtype)
+        del raw
         values, cax = _to_canonical_axes(values, axes)
         for i, a in enumerate(cax):
             if a == "z_face":
-                values = destagger_vertical(values, faces, z, axis=i)
+                values = destagger_vertical(
+                    np.ascontiguousarray(values) if i == 0 else values,
+                    faces,
+                    z,
+                    axis=i,
+                    dtype=dtype,
+                )
             elif a in ("y_face", "x_face"):
-                values = destagger_periodic(values, axis=i)
+                values = destagger_periodic(values, axis=i).astype(dtype)
         if spec.quantity == "specific_humidity":
-            values = thermo.mixing_ratio_from_specific_humidity(values)
+            values = thermo.mixing_ratio_from_specific_humidity(values).astype(dtype)
         elif spec.quantity == "potential_temperature":
             p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
-            values = thermo.temperature_from_potential_temperature(values, p)
-        out[name] = values
+            values = thermo.temperature_from_potential_temperature(values, p).astype(dtype)
+        out[name] = np.ascontiguousarray(values)
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
         check_range(
@@ -239,11 +251,18 @@ def canonical_step(
             ),
             time=t,
         )
-    p3 = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
-    out["rh"] = thermo.relative_humidity(p3, out["T"], out["qv"])
-    out["cloud_mask"] = cloud_mask(out["qc"], settings.threshold)
-    rho = thermo.air_density(p3, out["T"], out["qv"])
-    out["lwp"] = np.tensordot(layer_thickness(faces), out["qc"] * rho, axes=(0, 0))
+    diag = cell_diagnostics(
+        out["p"],
+        out["T"],
+        out["qv"],
+        out["qc"],
+        layer_thickness(faces),
+        settings.threshold,
+        dtype=dtype,
+    )
+    out["rh"] = diag.rh
+    out["cloud_mask"] = diag.cloud_mask
+    out["lwp"] = diag.lwp
     return out
 
 
@@ -406,8 +425,7 @@ def ingest_case(
     dtype = np.dtype(settings.dtype)
     layout = _layout(cat, keep, faces, settings, p_profile)
     out = Path(out)
-    raw_records = [provenance.file_record(f) for f in files]
-    with atomic_path(out) as tmp:
+    with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
         group = create_store(tmp, layout, codecs=compressors(settings.store))
         writer = TimeWriter(group)
         for j, ti in enumerate(keep):
@@ -415,15 +433,18 @@ def ingest_case(
                 cat, int(ti), faces=faces, settings=settings, conversions=conversions
             )
             step = {
-                n: fields[n].astype("int8" if n == "cloud_mask" else dtype)
+                n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
                 for n in (*FIELDS_3D, "lwp")
             }
             if not p_profile:
-                step["p"] = fields["p"].astype(dtype)
+                step["p"] = fields["p"].astype(dtype, copy=False)
             elif j == 0:
                 group["p"][:] = fields["p"].astype(dtype)
+            del fields
             writer.add(j, step)
+            del step
         writer.flush()
+        raw_records = hashes.result()
         conv_records = conversions.records()
         for name, spec in vm.variables.items():
             if spec.quantity == "specific_humidity":

@@ -73,18 +73,13 @@ import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import Literal
 
 import numpy as np
+import numpy.typing as npt
 
-from .errors import ConfigError, InputError, ScaleError
-
-try:  # numba is a declared dependency; fall back to numpy if it cannot be imported
-    from numba import njit, prange
-
-    HAVE_NUMBA = True
-except ImportError:  # pragma: no cover - exercised only where numba is missing
-    HAVE_NUMBA = False
+from ._jit import HAVE_NUMBA, Engine, njit, prange
+from ._jit import resolve_engine as _resolve_engine
+from .errors import InputError, ScaleError
 
 __all__ = [
     "HAVE_NUMBA",
@@ -100,8 +95,6 @@ __all__ = [
     "merge_blocks",
     "plan_hierarchy",
 ]
-
-Engine = Literal["auto", "numba", "numpy"]
 
 ZERO_VARIANCE_SKEWNESS: float = 0.0
 """Skewness reported for a block whose variance is zero (or round-off of zero)."""
@@ -249,21 +242,6 @@ def _as_real_array(a: object) -> np.ndarray:
     return arr
 
 
-def _resolve_engine(engine: str) -> str:
-    if engine == "auto":
-        return "numba" if HAVE_NUMBA else "numpy"
-    if engine == "numba":
-        if not HAVE_NUMBA:
-            raise ConfigError(
-                "engine 'numba' was requested but numba cannot be imported",
-                hint="install numba or use engine='auto' or 'numpy'",
-            )
-        return "numba"
-    if engine == "numpy":
-        return "numpy"
-    raise ConfigError(f"engine {engine!r} is not one of 'auto', 'numba', 'numpy'")
-
-
 # --------------------------------------------------------------------------------------
 # Result type
 # --------------------------------------------------------------------------------------
@@ -350,6 +328,41 @@ class BlockMoments:
             np.divide(var, denom, out=var)
         var[degenerate] = ZERO_VARIANCE_SKEWNESS
         return var
+
+    def variance_and_skewness(
+        self, dtype: npt.DTypeLike = np.float64, *, engine: Engine = "auto"
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`variance` and :meth:`skewness` in one pass, stored as ``dtype``.
+
+        The arithmetic is float64 whatever ``dtype`` is; only the results are rounded to
+        it. The numba engine fuses both into one loop without float64 temporaries; the
+        numpy engine (the reference) calls :meth:`variance` and :meth:`skewness`.
+
+        Returns
+        -------
+        variance, skewness
+            Arrays of ``dtype`` and the shape of :attr:`mean`.
+        """
+        eng = _resolve_engine(engine)
+        dt = np.dtype(dtype)
+        if eng == "numpy" or dt.char not in "fd":
+            return self.variance().astype(dt), self.skewness().astype(dt)
+        shape = self.shape
+        var = np.empty(shape, dtype=dt)
+        skew = np.empty(shape, dtype=dt)
+        flat = [np.ascontiguousarray(a, dtype=np.float64).reshape(-1) for a in self._arrays()]
+        _nb_var_skew(
+            *flat,
+            float(self.count),
+            TINY_RELATIVE_STD,
+            ZERO_VARIANCE_SKEWNESS,
+            var.reshape(-1),
+            skew.reshape(-1),
+        )
+        return var, skew
+
+    def _arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        return np.asarray(self.mean), np.asarray(self.m2), np.asarray(self.m3)
 
 
 # --------------------------------------------------------------------------------------
@@ -672,6 +685,20 @@ if HAVE_NUMBA:
                             a2 += c2 + nc * d * d
                             a3 += cm3[p, r, c] + 3.0 * d * c2 + nc * d * d * d
                     o1[bj], o2[bj], o3[bj] = _nb_finish(m0, nc * s1b, a2, a3, n)
+
+    @njit(parallel=True, cache=True, fastmath=False)
+    def _nb_var_skew(mean, m2, m3, n, tiny_rel, zero, var, skew):  # pragma: no cover
+        """Same operations as BlockMoments.variance/skewness, per element."""
+        for i in prange(mean.size):
+            v = m2[i] / n
+            var[i] = v
+            tiny = mean[i] * tiny_rel
+            tiny = tiny * tiny
+            denom = np.sqrt(v) * v
+            if v <= tiny or denom == 0.0:
+                skew[i] = zero
+            else:
+                skew[i] = (m3[i] / n) / denom
 
 
 # --------------------------------------------------------------------------------------

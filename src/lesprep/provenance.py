@@ -19,6 +19,8 @@ import json
 import platform
 import subprocess
 import sys
+import threading
+from collections.abc import Sequence
 from functools import cache
 from pathlib import Path
 from typing import Any
@@ -49,13 +51,57 @@ def utc_now() -> str:
     return _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
-def sha256_file(path: str | Path, *, block: int = 1 << 22) -> str:
+def sha256_file(path: str | Path) -> str:
     """sha256 of a file, streamed."""
-    h = hashlib.sha256()
     with open(path, "rb") as fh:
-        while chunk := fh.read(block):
-            h.update(chunk)
-    return h.hexdigest()
+        return hashlib.file_digest(fh, "sha256").hexdigest()
+
+
+class FileRecords:
+    """:func:`file_record` of several files, computed on a background thread.
+
+    Hashing a large raw archive takes seconds of CPU that overlap with reading and
+    converting it. Use as a context manager; :meth:`result` waits for the records. When the
+    block raises, the files not yet hashed are skipped and the thread is joined.
+
+    Examples
+    --------
+    >>> with FileRecords([]) as records:
+    ...     records.result()
+    []
+    """
+
+    def __init__(self, paths: Sequence[str | Path]) -> None:
+        self.paths = [Path(p) for p in paths]
+        self._stop = threading.Event()
+        self._records: list[dict[str, Any]] = []
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, name="lesprep-hash", daemon=True)
+
+    def _run(self) -> None:
+        try:
+            for p in self.paths:
+                if self._stop.is_set():
+                    return
+                self._records.append(file_record(p))
+        except BaseException as exc:  # re-raised by result()
+            self._error = exc
+
+    def __enter__(self) -> FileRecords:
+        self._thread.start()
+        return self
+
+    def result(self) -> list[dict[str, Any]]:
+        """The records, in the order of the paths (waits for the thread)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return list(self._records)
+
+    def __exit__(self, *exc: Any) -> None:
+        if exc[0] is not None:
+            self._stop.set()
+        self._thread.join()
 
 
 def file_record(path: str | Path) -> dict[str, Any]:

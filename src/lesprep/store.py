@@ -230,7 +230,10 @@ class TimeWriter:
     def _write(self, start: int, buf: dict[str, list[np.ndarray]]) -> None:
         def write(item: tuple[str, list[np.ndarray]]) -> None:
             name, steps = item
-            self.group[name][start : start + len(steps)] = np.stack(steps)
+            if len(steps) == 1:  # a large step: no stacked copy
+                self.group[name][start] = steps[0]
+            else:
+                self.group[name][start : start + len(steps)] = np.stack(steps)
 
         with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
             list(pool.map(write, buf.items()))

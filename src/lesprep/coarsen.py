@@ -30,17 +30,20 @@ Arithmetic is float64; stored values are float32 unless the config says otherwis
 
 from __future__ import annotations
 
+import contextlib
 import logging
 from collections.abc import Mapping, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 import xarray as xr
 import zarr
 
-from . import provenance, thermo
+from . import derived, provenance
 from ._memory import retain_freed_memory
 from .baseline import sundqvist_cloud_fraction
 from .errors import ConfigError, ScaleError
@@ -58,6 +61,10 @@ from .store import (
 )
 
 log = logging.getLogger(__name__)
+
+WRITE_BUFFER_BYTES = 256 * 2**20
+"""Time steps buffered for writing, over all scales of a job (one large step is never
+split)."""
 
 UNITS = {"qc": "kg kg-1", "qv": "kg kg-1", "T": "K", "w": "m s-1", "rh": "1", "p": "Pa"}
 VAR_UNITS = {"qc": "kg2 kg-2", "qv": "kg2 kg-2", "T": "K2", "w": "m2 s-2", "rh": "1", "p": "Pa2"}
@@ -154,58 +161,80 @@ def coarse_fields(
     z: np.ndarray,
     scales: Sequence[Scale],
     settings: CoarsenSettings,
+    *,
+    dtype: npt.DTypeLike = np.float64,
 ) -> dict[str, dict[str, np.ndarray]]:
-    """All coarse fields of one output time, per scale label (float64).
+    """All coarse fields of one output time, per scale label.
 
     Parameters
     ----------
     fine
-        Canonical fine fields of one time: ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask``
-        (z, y, x, bool or 0/1), ``lwp`` (y, x) and ``p`` as (z, y, x) or (z,).
+        Canonical fine fields of one time: ``qc, qv, T, w, rh`` (z, y, x, float32 or
+        float64), ``cloud_mask`` (z, y, x, bool or 0/1), ``lwp`` (y, x) and ``p`` as
+        (z, y, x) or (z,).
     z
         Cell-centre heights (m).
     scales
         Resolved scales.
     settings
         Coarsening settings.
+    dtype
+        dtype of the returned arrays. The arithmetic is float64 whatever it is: moments
+        are accumulated in float64, and the GCM-view inputs (``rh_of_means``,
+        ``drh_dz``, ``cf_sundqvist``) are computed from the float64 means before rounding.
     """
+    dt = np.dtype(dtype)
     factors = sorted({s.factor for s in scales})
     need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
     moments = {v: hierarchical_moments(fine[v], factors) for v in need}
-    mask = np.asarray(fine["cloud_mask"], dtype=np.float64)
+    mask = np.asarray(fine["cloud_mask"]).astype(np.float32)  # 0/1: exact in float32
     cf = hierarchical_means(mask, factors)
-    column = np.any(np.asarray(fine["cloud_mask"]) > 0, axis=0).astype(np.float64)
+    column = np.any(np.asarray(fine["cloud_mask"]) > 0, axis=0).astype(np.float32)
     cover = hierarchical_means(column, factors)
     lwp = hierarchical_moments(fine["lwp"], factors)
-    p = np.asarray(fine["p"], dtype=np.float64)
+    p = np.asarray(fine["p"])
     p_means = hierarchical_means(p, factors) if p.ndim == 3 else None
+    p = p.astype(np.float64)
+
+    def cast(a: np.ndarray) -> np.ndarray:
+        return np.asarray(a).astype(dt, copy=False)
+
+    uses = {f: sum(s.factor == f for s in scales) for f in factors}
     out: dict[str, dict[str, np.ndarray]] = {}
     for s in scales:
         f = s.factor
         d: dict[str, np.ndarray] = {}
         for v in need:
             m = moments[v][f]
-            d[f"{v}_mean"] = m.mean
+            d[f"{v}_mean"] = cast(m.mean)
             if v in settings.moments:
-                d[f"{v}_var"] = m.variance()
-                d[f"{v}_skew"] = m.skewness()
+                d[f"{v}_var"], d[f"{v}_skew"] = m.variance_and_skewness(dt)
+        t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
         if p_means is not None:
             p3 = p_means[f]
         else:  # a 1-D profile: the same at every coarse cell of a level
-            p3 = np.broadcast_to(p[:, None, None], d["T_mean"].shape)
-        d["p_mean"] = p3
-        d["cloud_fraction"] = cf[f]
-        d["rh_of_means"] = thermo.relative_humidity(p3, d["T_mean"], d["qv_mean"])
-        d["drh_dz"] = vertical_derivative(d["rh_of_means"], z, axis=0)
-        d["cf_sundqvist"] = sundqvist_cloud_fraction(d["rh_of_means"], settings.rh_critical)
-        d["lwp_mean"] = lwp[f].mean
-        d["lwp_var"] = lwp[f].variance()
-        d["cloud_cover"] = cover[f]
+            p3 = np.broadcast_to(p[:, None, None], t_mean.shape)
+        d["p_mean"] = cast(p3)
+        d["cloud_fraction"] = cast(cf[f])
+        rh = derived.relative_humidity(p3, t_mean, qv_mean)
+        d["rh_of_means"] = cast(rh)
+        d["drh_dz"] = cast(vertical_derivative(rh, z, axis=0))
+        d["cf_sundqvist"] = cast(sundqvist_cloud_fraction(rh, settings.rh_critical))
+        del rh
+        d["lwp_mean"] = cast(lwp[f].mean)
+        d["lwp_var"] = cast(lwp[f].variance())
+        d["cloud_cover"] = cast(cover[f])
         if s.label in settings.patch_scales:
             for v in settings.patch_variables:
                 src = mask if v == "cloud_mask" else fine[v]
-                d[f"{v}_patch"] = extract_patches(src, f, settings.patch_size, settings.patch_halo)
+                d[f"{v}_patch"] = extract_patches(
+                    src, f, settings.patch_size, settings.patch_halo, dtype=dt
+                )
         out[s.label] = d
+        uses[f] -= 1
+        if uses[f] == 0:  # float64 moments of this factor are no longer needed
+            for v in need:
+                moments[v].pop(f, None)
     return out
 
 
@@ -354,16 +383,60 @@ def _layout(
     return out
 
 
-def _read_fine(canon: xr.Dataset, j: int) -> dict[str, np.ndarray]:
-    out: dict[str, np.ndarray] = {}
-    for v in ("qc", "qv", "T", "w", "rh", "cloud_mask"):
-        out[v] = np.asarray(
-            canon[v].isel(time=j).values, dtype=np.int8 if v == "cloud_mask" else np.float64
-        )
-    out["lwp"] = np.asarray(canon["lwp"].isel(time=j).values, dtype=np.float64)
-    p = canon["p"]
-    out["p"] = np.asarray((p.isel(time=j) if "time" in p.dims else p).values, dtype=np.float64)
-    return out
+FINE_INPUTS = ("qc", "qv", "T", "w", "rh", "cloud_mask", "lwp", "p")
+"""Canonical arrays coarsening reads."""
+
+
+class FineReader:
+    """Read the fine fields of one output time after another, one time ahead.
+
+    The arrays of a time step are read concurrently straight from the canonical Zarr
+    store in their stored dtype (float32 fields stay float32, the mask int8). While the
+    caller computes time ``j`` the arrays of ``j + 1`` are read on a background thread,
+    so at most two time steps of input are in memory.
+    """
+
+    def __init__(self, path: str | Path, names: Sequence[str] = FINE_INPUTS) -> None:
+        self.group = zarr.open_group(str(path), mode="r")
+        self.names = tuple(names)
+        self.ntimes = int(self.group["time"].shape[0])
+        self._io = ThreadPoolExecutor(max_workers=len(self.names))
+        self._ahead = ThreadPoolExecutor(max_workers=1)
+        self._next: tuple[int, Future[dict[str, np.ndarray]]] | None = None
+
+    def _read(self, j: int) -> dict[str, np.ndarray]:
+        def one(name: str) -> np.ndarray:
+            arr = self.group[name]
+            timed = "time" in (arr.metadata.dimension_names or ())
+            return np.asarray(arr[j] if timed else arr[...])
+
+        return dict(zip(self.names, self._io.map(one, self.names), strict=True))
+
+    def get(self, j: int) -> dict[str, np.ndarray]:
+        """The fine fields of time ``j``; starts reading ``j + 1``."""
+        if self._next is not None and self._next[0] == j:
+            fields = self._next[1].result()
+        else:
+            fields = self._read(j)
+        self._next = None
+        if j + 1 < self.ntimes:
+            self._next = (j + 1, self._ahead.submit(self._read, j + 1))
+        return fields
+
+    def close(self) -> None:
+        """Wait for a pending read and stop the threads."""
+        if self._next is not None:
+            with contextlib.suppress(Exception):
+                self._next[1].result()
+            self._next = None
+        self._ahead.shutdown(wait=True)
+        self._io.shutdown(wait=True)
+
+    def __enter__(self) -> FineReader:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
 
 
 def resolve_for_case(
@@ -428,21 +501,24 @@ def coarsen_case(
         groups: dict[str, zarr.Group] = {}
         writers: dict[str, TimeWriter] = {}
         codecs = compressors(settings.store)
-        for j in range(nt):
-            fine = _read_fine(canon, j)
-            fields = coarse_fields(fine, z, scales, settings)
-            for s in scales:
-                d = fields[s.label]
-                if j == 0:
-                    layout = _layout(canon, s, d, settings, threshold)
-                    groups[s.label] = create_store(tmps[s.label], layout, codecs=codecs)
-                    writers[s.label] = TimeWriter(groups[s.label])
-                    for name, arr in d.items():
-                        if arr.ndim == 1:
-                            groups[s.label][name][:] = arr.astype(settings.dtype)
-                writers[s.label].add(
-                    j, {n: a.astype(settings.dtype) for n, a in d.items() if a.ndim > 1}
-                )
+        # One buffer budget shared by all scales: memory does not grow with their number.
+        limit = WRITE_BUFFER_BYTES // max(1, len(scales))
+        with FineReader(canonical) as reader:
+            for j in range(nt):
+                fine = reader.get(j)
+                fields = coarse_fields(fine, z, scales, settings, dtype=settings.dtype)
+                del fine
+                for s in scales:
+                    d = fields.pop(s.label)
+                    if j == 0:
+                        layout = _layout(canon, s, d, settings, threshold)
+                        groups[s.label] = create_store(tmps[s.label], layout, codecs=codecs)
+                        writers[s.label] = TimeWriter(groups[s.label], limit_bytes=limit)
+                        for name, arr in d.items():
+                            if arr.ndim == 1:
+                                groups[s.label][name][:] = arr
+                    writers[s.label].add(j, {n: a for n, a in d.items() if a.ndim > 1})
+                    del d
         for w in writers.values():
             w.flush()
         for lab, tmp in tmps.items():

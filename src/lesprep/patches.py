@@ -12,6 +12,7 @@ index-aligned with the coarse cells: ``patch[..., j, i, :, :]`` lies under coars
 from __future__ import annotations
 
 import numpy as np
+import numpy.typing as npt
 from numpy.typing import NDArray
 
 from .errors import ScaleError
@@ -47,10 +48,22 @@ def patch_geometry(factor: int, size: int, halo: int, *, scale: str = "") -> tup
 
 
 def extract_patches(
-    field: NDArray[np.floating], factor: int, size: int, halo: int = 0
-) -> NDArray[np.float64]:
-    """Patches of a ``(..., ny, nx)`` field: ``(..., ny/f, nx/f, p, p)`` (float64)."""
-    a = np.asarray(field, dtype=np.float64)
+    field: NDArray[np.floating],
+    factor: int,
+    size: int,
+    halo: int = 0,
+    *,
+    dtype: npt.DTypeLike = np.float64,
+) -> NDArray[np.floating]:
+    """Patches of a ``(..., ny, nx)`` field: ``(..., ny/f, nx/f, p, p)`` of ``dtype``.
+
+    Native patches copy the fine values (exact in any dtype that holds them); downsampled
+    patches are float64 block means rounded to ``dtype``.
+    """
+    dt = np.dtype(dtype)
+    a = np.asarray(field)
+    if a.dtype.kind != "f":
+        a = a.astype(np.float64)
     d, _ = patch_geometry(factor, size, halo)
     ny, nx = a.shape[-2:]
     if halo:
@@ -64,11 +77,14 @@ def extract_patches(
     cy, cx = ny // factor, nx // factor
     lead = a.shape[:-2]
     if h == 0:
-        out = a.reshape(*lead, cy, f, cx, f)
-        return np.ascontiguousarray(np.moveaxis(out, -3, -2))
-    win = 2 * h + f
-    view = np.lib.stride_tricks.sliding_window_view(a, (win, win), axis=(-2, -1))
-    return np.ascontiguousarray(view[..., ::f, ::f, :, :][..., :cy, :cx, :, :])
+        out = np.moveaxis(a.reshape(*lead, cy, f, cx, f), -3, -2)
+    else:
+        win = 2 * h + f
+        view = np.lib.stride_tricks.sliding_window_view(a, (win, win), axis=(-2, -1))
+        out = view[..., ::f, ::f, :, :][..., :cy, :cx, :, :]
+    res = np.empty(out.shape, dtype=dt)
+    res[...] = out
+    return res
 
 
 def reassemble(patches: NDArray[np.floating], halo: int = 0) -> NDArray[np.float64]:

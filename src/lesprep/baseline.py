@@ -98,6 +98,16 @@ def sundqvist_cloud_fraction(rh: ArrayLike | xr.DataArray, rh_critical: float = 
         values = np.asarray(rh, dtype=np.float64)
     # Clipping RH to [RHc, 1] gives C = 0 at and below RHc and C = 1 at and above
     # saturation without a branch; np.maximum/np.minimum propagate NaN.
+    if isinstance(values, np.ndarray) and values.ndim:  # same operations, in one buffer
+        fraction = np.maximum(values, rhc)
+        np.minimum(fraction, 1.0, out=fraction)
+        np.subtract(1.0, fraction, out=fraction)
+        np.divide(fraction, 1.0 - rhc, out=fraction)
+        np.sqrt(fraction, out=fraction)
+        np.subtract(1.0, fraction, out=fraction)
+        np.maximum(fraction, 0.0, out=fraction)
+        np.minimum(fraction, 1.0, out=fraction)
+        return fraction
     capped = np.minimum(np.maximum(values, rhc), 1.0)
     fraction = 1.0 - np.sqrt((1.0 - capped) / (1.0 - rhc))
     fraction = np.minimum(np.maximum(fraction, 0.0), 1.0)

@@ -22,7 +22,6 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from .errors import NonFiniteError, RangeError
 
 DEFAULT_RANGES: dict[str, tuple[float, float]] = {
@@ -44,53 +43,24 @@ def resolve_ranges(
     return out
 
 
-def value_extent(
-    values: NDArray[np.floating], *, engine: Engine = "auto"
-) -> tuple[int, float, float]:
-    """Count of NaN/Inf values and the minimum and maximum of the finite ones, in one pass.
+def value_extent(values: NDArray[np.floating]) -> tuple[int, float, float]:
+    """Count of NaN/Inf values and the minimum and maximum of the finite ones.
 
     Returns ``(nonfinite, vmin, vmax)``; ``vmin > vmax`` (``inf, -inf``) when no value is
-    finite. The numba engine reads the array once without temporaries; the numpy engine
-    (reference) masks.
+    finite. The common case (all finite) costs two vectorised reductions and no
+    temporary: NaN propagates through ``min`` and an infinity shows as an extreme, so
+    finite extremes prove every value finite. Only otherwise are the values masked.
     """
     a = np.asarray(values)
     if a.size == 0:
         return 0, float("inf"), float("-inf")
-    if resolve_engine(engine) == "numba" and a.dtype.char in "fd" and a.dtype.isnative:
-        flat = a.reshape(-1) if a.flags.c_contiguous else np.ravel(a)
-        bad, lo, hi = _nb_extent(flat, max(1, min(64, flat.size // 65536)))
-        return int(bad), float(lo), float(hi)
-    finite = np.isfinite(a)
-    good = a[finite]
+    lo, hi = float(a.min()), float(a.max())
+    if np.isfinite(lo) and np.isfinite(hi):
+        return 0, lo, hi
+    good = a[np.isfinite(a)]
     if good.size == 0:
         return int(a.size), float("inf"), float("-inf")
     return int(a.size - good.size), float(good.min()), float(good.max())
-
-
-if HAVE_NUMBA:
-
-    @njit(parallel=True, cache=True)
-    def _nb_extent(a, parts):  # pragma: no cover - compiled
-        n = a.size
-        bad = np.zeros(parts, dtype=np.int64)
-        lo = np.full(parts, np.inf)
-        hi = np.full(parts, -np.inf)
-        step = (n + parts - 1) // parts
-        for k in prange(parts):
-            b = 0
-            mn = np.inf
-            mx = -np.inf
-            for i in range(k * step, min(n, (k + 1) * step)):
-                v = np.float64(a[i])
-                if np.isfinite(v):
-                    mn = min(mn, v)
-                    mx = max(mx, v)
-                else:
-                    b += 1
-            bad[k] = b
-            lo[k] = mn
-            hi[k] = mx
-        return bad.sum(), lo.min(), hi.max()
 
 
 def check_finite(

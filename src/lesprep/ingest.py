@@ -19,7 +19,7 @@ import numpy as np
 from . import provenance, thermo
 from ._memory import retain_freed_memory
 from .archive import Catalogue, catalogue, read_field, resolve_files
-from .checks import DEFAULT_RANGES, check_finite, check_range, resolve_ranges
+from .checks import DEFAULT_RANGES, check_finite, check_range, resolve_ranges, value_extent
 from .derived import cell_diagnostics
 from .errors import TimeAxisError
 from .grid import (
@@ -198,13 +198,13 @@ def canonical_step(
     dtype = np.dtype(settings.dtype)
     out: dict[str, np.ndarray] = {}
     files: dict[str, str] = {}
+    extents: dict[str, tuple[float, float]] = {}
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
         raw, file, units = read_field(cat, name, time_index)
         files[name] = file
         axes = tuple(a for a in spec.axes(vm.dims) if a != "time")
         raw_dims = [d for d in spec.dims if vm.dims[d] != "time"]
-        check_finite(raw, variable=spec.raw, case=cat.case, file=file, dims=raw_dims, time=t)
         target = QUANTITY_UNITS.get(spec.quantity, CANONICAL_UNITS[name])
         conv = conversions.get(
             name=name,
@@ -216,6 +216,10 @@ def canonical_step(
             file=file,
         )
         values = conv.convert(raw, dtype)
+        if value_extent(values)[0]:  # NaN/Inf: report them where the raw file has them
+            where = {"case": cat.case, "file": file, "time": t}
+            check_finite(raw, variable=spec.raw, dims=raw_dims, **where)
+            check_finite(values, variable=f"{spec.raw} (converted)", dims=raw_dims, **where)
         del raw
         values, cax = _to_canonical_axes(values, axes)
         for i, a in enumerate(cax):
@@ -235,6 +239,7 @@ def canonical_step(
             p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
             values = thermo.temperature_from_potential_temperature(values, p).astype(dtype)
         out[name] = np.ascontiguousarray(values)
+        extents[name] = value_extent(out[name])[1:]
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
         check_range(
@@ -250,6 +255,7 @@ def canonical_step(
                 and next((c.from_units for k, c in conversions.items.items() if k[0] == name), "?")
             ),
             time=t,
+            extent=extents[name],
         )
     diag = cell_diagnostics(
         out["p"],

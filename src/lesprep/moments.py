@@ -626,6 +626,49 @@ if HAVE_NUMBA:
                     o1[bj], o2[bj], o3[bj] = _nb_finish(m0, s1b, s2b, s3b, n)
 
     @njit(parallel=True, cache=True, fastmath=False)
+    def _nb_mean(a, f, mean):  # pragma: no cover - compiled
+        """The mean of _nb_moments (same sums in the same order), without M2 and M3."""
+        planes, ny, nx = a.shape
+        nby = ny // f
+        nbx = nx // f
+        n = f * f
+        for t in prange(planes * nby):
+            p = t // nby
+            bi = t - p * nby
+            r0 = bi * f
+            o1 = mean[p, bi]
+            if f <= _ROWWISE_MAX:
+                s1 = np.zeros(nbx)
+                o1[:] = 0.0
+                for r in range(r0, r0 + f):
+                    row = a[p, r]
+                    for c in range(f):
+                        for bj in range(nbx):
+                            o1[bj] += row[bj * f + c]
+                for bj in range(nbx):
+                    o1[bj] = o1[bj] / n
+                for r in range(r0, r0 + f):
+                    row = a[p, r]
+                    for c in range(f):
+                        for bj in range(nbx):
+                            s1[bj] += row[bj * f + c] - o1[bj]
+                for bj in range(nbx):
+                    o1[bj] = o1[bj] + s1[bj] / n
+            else:
+                for bj in range(nbx):
+                    c0 = bj * f
+                    sm = 0.0
+                    for r in range(r0, r0 + f):
+                        for c in range(c0, c0 + f):
+                            sm += a[p, r, c]
+                    m0 = sm / n
+                    s1b = 0.0
+                    for r in range(r0, r0 + f):
+                        for c in range(c0, c0 + f):
+                            s1b += a[p, r, c] - m0
+                    o1[bj] = m0 + s1b / n
+
+    @njit(parallel=True, cache=True, fastmath=False)
     def _nb_merge(cmean, cm2, cm3, nc, k, mean, m2, m3):  # pragma: no cover - compiled
         planes, nyc, nxc = cmean.shape
         nyp = nyc // k
@@ -809,13 +852,12 @@ def block_mean(a: np.ndarray, factor: int, *, engine: Engine = "auto") -> np.nda
     def work(offset: int, chunk: np.ndarray) -> None:
         x = _prepare(chunk, eng)
         view = out[offset : offset + chunk.shape[0]]
-        if eng == "numba":  # the moments kernel, with M2 and M3 going to a small scratch
-            scratch = np.empty((2, *view.shape))
-            _nb_moments(x, f, view, scratch[0], scratch[1])
+        if eng == "numba":  # the first pass and shift correction of the moments kernel
+            _nb_mean(x, f, view)
         else:
             view[...] = _np_mean(x, f)
 
-    _run(_work_items(arr, eng, whole=False), work, eng)
+    _run(_work_items(arr, eng), work, eng)
     return out.reshape((*lead, ny // f, nx // f))
 
 

@@ -266,3 +266,32 @@ def test_misfit_scale_skipped_and_recorded(scale_stores):
     assert "does not divide" in ds.attrs["skipped"]
     step = load(ds.attrs)["steps"][-1]
     assert step["skipped"] and step["skipped"][0]["scale"] == "7 km"
+
+
+@pytest.mark.parametrize("profile", [True, False])
+def test_slabs_and_output_dtype_do_not_change_the_numbers(profile: bool) -> None:
+    # Coarsening z-slab by z-slab gives exactly the whole-column result, and float32
+    # outputs are the float64 results rounded once (the arithmetic stays float64).
+    fine = random_fine(np.random.default_rng(7), nz=7)
+    if not profile:
+        fine["p"] = np.broadcast_to(fine["p"][:, None, None], fine["qc"].shape).copy()
+    settings = CoarsenSettings(
+        scales=(),
+        moments=("qc", "w", "qv", "T", "rh"),
+        patch_variables=("qc", "w"),
+        patch_scales=("f6", "f12"),
+        patch_size=6,
+    )
+    scales = scales_for([2, 6, 12, 24])
+    whole = coarse_fields(fine, np.arange(7.0) * 40 + 20, scales, settings)
+    for levels in (1, 3):
+        sliced = coarse_fields(fine, np.arange(7.0) * 40 + 20, scales, settings, slab_levels=levels)
+        for lab, d in whole.items():
+            assert sliced[lab].keys() == d.keys()
+            for name, a in d.items():
+                np.testing.assert_array_equal(sliced[lab][name], a, err_msg=f"{lab} {name}")
+    f32 = coarse_fields(fine, np.arange(7.0) * 40 + 20, scales, settings, dtype=np.float32)
+    for lab, d in whole.items():
+        for name, a in d.items():
+            assert f32[lab][name].dtype == np.float32
+            np.testing.assert_array_equal(f32[lab][name], a.astype(np.float32), err_msg=name)

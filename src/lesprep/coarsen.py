@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -156,6 +156,142 @@ def hierarchical_means(a: np.ndarray, factors: Sequence[int]) -> dict[int, np.nd
     return out
 
 
+SLAB_INPUTS = ("qc", "qv", "T", "w", "rh", "cloud_mask")
+"""Canonical 3-D fields read one z-slab at a time (with ``p`` when it is 3-D)."""
+
+
+def slab_bounds(nz: int, levels: int) -> list[tuple[int, int]]:
+    """``(z0, z1)`` of consecutive slabs of at most ``levels`` levels covering ``nz``."""
+    step = max(1, int(levels))
+    return [(z0, min(nz, z0 + step)) for z0 in range(0, nz, step)]
+
+
+class StepCoarsener:
+    """Coarse fields of one output time, built from z-slabs of the fine fields.
+
+    Every statistic except ``drh_dz`` and the column quantities is horizontal, so each
+    slab of levels is coarsened on its own and written into the step's output arrays:
+    the float64 work arrays are sized by the slab, not the column. :meth:`finish` adds
+    the column quantities and the vertical derivative (from float64 ``rh_of_means``).
+
+    Parameters
+    ----------
+    z
+        Cell-centre heights (m), ``(nz,)``.
+    shape
+        Fine ``(nz, ny, nx)``.
+    scales, settings
+        Resolved scales and the coarsening settings.
+    dtype
+        dtype of the outputs (arithmetic is float64).
+    p_profile
+        The ``(nz,)`` pressure profile when pressure is 1-D, else None (then every slab
+        carries ``p``).
+    """
+
+    def __init__(
+        self,
+        z: np.ndarray,
+        shape: tuple[int, int, int],
+        scales: Sequence[Scale],
+        settings: CoarsenSettings,
+        *,
+        dtype: npt.DTypeLike = np.float64,
+        p_profile: np.ndarray | None = None,
+    ) -> None:
+        self.z = np.asarray(z, dtype=np.float64)
+        self.shape = tuple(int(n) for n in shape)
+        self.scales = list(scales)
+        self.settings = settings
+        self.dtype = np.dtype(dtype)
+        self.p_profile = None if p_profile is None else np.asarray(p_profile, np.float64)
+        self.factors = sorted({s.factor for s in self.scales})
+        self.need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
+
+    def begin(self) -> None:
+        """Allocate the output arrays of a new time step."""
+        nz, ny, nx = self.shape
+        dt = self.dtype
+        st = self.settings
+        self.out: dict[str, dict[str, np.ndarray]] = {}
+        self.rh64 = {f: np.empty((nz, ny // f, nx // f)) for f in self.factors}
+        self.column = np.zeros((ny, nx), dtype=bool)
+        for s in self.scales:
+            f = s.factor
+            c3 = (nz, ny // f, nx // f)
+            names = []
+            for v in self.need:
+                names.append(f"{v}_mean")
+                if v in st.moments:
+                    names += [f"{v}_var", f"{v}_skew"]
+            names += ["p_mean", "cloud_fraction", "rh_of_means", "drh_dz", "cf_sundqvist"]
+            d = {n: np.empty(c3, dtype=dt) for n in names}
+            for n in ("lwp_mean", "lwp_var", "cloud_cover"):
+                d[n] = np.empty(c3[1:], dtype=dt)
+            if s.label in st.patch_scales:
+                _, edge = patch_geometry(f, st.patch_size, st.patch_halo)
+                for v in st.patch_variables:
+                    d[f"{v}_patch"] = np.empty((*c3, edge, edge), dtype=dt)
+            self.out[s.label] = d
+
+    def add_slab(self, z0: int, fine: Mapping[str, np.ndarray]) -> None:
+        """Coarsen the levels ``z0 : z0 + k`` (``fine`` holds ``SLAB_INPUTS`` and, for 3-D
+        pressure, ``p``, each ``(k, ny, nx)``)."""
+        st = self.settings
+        factors = self.factors
+        k = int(np.shape(fine["qc"])[0])
+        sl = slice(z0, z0 + k)
+        moments = {v: hierarchical_moments(fine[v], factors) for v in self.need}
+        mask = np.asarray(fine["cloud_mask"])
+        self.column |= np.any(mask > 0, axis=0)
+        maskf = mask.astype(np.float32)  # 0/1: exact in float32
+        cf = hierarchical_means(maskf, factors)
+        p_means = None if self.p_profile is not None else hierarchical_means(fine["p"], factors)
+        for s in self.scales:
+            f = s.factor
+            d = self.out[s.label]
+            for v in self.need:
+                m = moments[v][f]
+                d[f"{v}_mean"][sl] = m.mean
+                if v in st.moments:
+                    m.variance_and_skewness(out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]))
+            t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
+            if p_means is not None:
+                p3 = p_means[f]
+            else:  # a 1-D profile: the same at every coarse cell of a level
+                assert self.p_profile is not None
+                p3 = np.broadcast_to(self.p_profile[sl, None, None], t_mean.shape)
+            d["p_mean"][sl] = p3
+            d["cloud_fraction"][sl] = cf[f]
+            rh = derived.relative_humidity(p3, t_mean, qv_mean)
+            self.rh64[f][sl] = rh
+            d["rh_of_means"][sl] = rh
+            d["cf_sundqvist"][sl] = sundqvist_cloud_fraction(rh, st.rh_critical)
+            del rh
+            if s.label in st.patch_scales:
+                for v in st.patch_variables:
+                    src = maskf if v == "cloud_mask" else fine[v]
+                    d[f"{v}_patch"][sl] = extract_patches(
+                        src, f, st.patch_size, st.patch_halo, dtype=self.dtype
+                    )
+
+    def finish(self, lwp: np.ndarray) -> dict[str, dict[str, np.ndarray]]:
+        """Column quantities and ``drh_dz``; returns the step's outputs per scale label."""
+        factors = self.factors
+        cover = hierarchical_means(self.column.astype(np.float32), factors)
+        lwp_m = hierarchical_moments(lwp, factors)
+        for s in self.scales:
+            f = s.factor
+            d = self.out[s.label]
+            d["drh_dz"][...] = vertical_derivative(self.rh64[f], self.z, axis=0)
+            d["lwp_mean"][...] = lwp_m[f].mean
+            d["lwp_var"][...] = lwp_m[f].variance()
+            d["cloud_cover"][...] = cover[f]
+        out, self.out = self.out, {}
+        self.rh64 = {}
+        return out
+
+
 def coarse_fields(
     fine: Mapping[str, np.ndarray],
     z: np.ndarray,
@@ -163,6 +299,7 @@ def coarse_fields(
     settings: CoarsenSettings,
     *,
     dtype: npt.DTypeLike = np.float64,
+    slab_levels: int | None = None,
 ) -> dict[str, dict[str, np.ndarray]]:
     """All coarse fields of one output time, per scale label.
 
@@ -182,60 +319,21 @@ def coarse_fields(
         dtype of the returned arrays. The arithmetic is float64 whatever it is: moments
         are accumulated in float64, and the GCM-view inputs (``rh_of_means``,
         ``drh_dz``, ``cf_sundqvist``) are computed from the float64 means before rounding.
+    slab_levels
+        Levels coarsened at a time (default: all); the result does not depend on it.
     """
-    dt = np.dtype(dtype)
-    factors = sorted({s.factor for s in scales})
-    need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
-    moments = {v: hierarchical_moments(fine[v], factors) for v in need}
-    mask = np.asarray(fine["cloud_mask"]).astype(np.float32)  # 0/1: exact in float32
-    cf = hierarchical_means(mask, factors)
-    column = np.any(np.asarray(fine["cloud_mask"]) > 0, axis=0).astype(np.float32)
-    cover = hierarchical_means(column, factors)
-    lwp = hierarchical_moments(fine["lwp"], factors)
+    shape = tuple(np.shape(fine["qc"]))
     p = np.asarray(fine["p"])
-    p_means = hierarchical_means(p, factors) if p.ndim == 3 else None
-    p = p.astype(np.float64)
-
-    def cast(a: np.ndarray) -> np.ndarray:
-        return np.asarray(a).astype(dt, copy=False)
-
-    uses = {f: sum(s.factor == f for s in scales) for f in factors}
-    out: dict[str, dict[str, np.ndarray]] = {}
-    for s in scales:
-        f = s.factor
-        d: dict[str, np.ndarray] = {}
-        for v in need:
-            m = moments[v][f]
-            d[f"{v}_mean"] = cast(m.mean)
-            if v in settings.moments:
-                d[f"{v}_var"], d[f"{v}_skew"] = m.variance_and_skewness(dt)
-        t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
-        if p_means is not None:
-            p3 = p_means[f]
-        else:  # a 1-D profile: the same at every coarse cell of a level
-            p3 = np.broadcast_to(p[:, None, None], t_mean.shape)
-        d["p_mean"] = cast(p3)
-        d["cloud_fraction"] = cast(cf[f])
-        rh = derived.relative_humidity(p3, t_mean, qv_mean)
-        d["rh_of_means"] = cast(rh)
-        d["drh_dz"] = cast(vertical_derivative(rh, z, axis=0))
-        d["cf_sundqvist"] = cast(sundqvist_cloud_fraction(rh, settings.rh_critical))
-        del rh
-        d["lwp_mean"] = cast(lwp[f].mean)
-        d["lwp_var"] = cast(lwp[f].variance())
-        d["cloud_cover"] = cast(cover[f])
-        if s.label in settings.patch_scales:
-            for v in settings.patch_variables:
-                src = mask if v == "cloud_mask" else fine[v]
-                d[f"{v}_patch"] = extract_patches(
-                    src, f, settings.patch_size, settings.patch_halo, dtype=dt
-                )
-        out[s.label] = d
-        uses[f] -= 1
-        if uses[f] == 0:  # float64 moments of this factor are no longer needed
-            for v in need:
-                moments[v].pop(f, None)
-    return out
+    step = StepCoarsener(
+        z, shape, scales, settings, dtype=dtype, p_profile=p if p.ndim == 1 else None
+    )
+    step.begin()
+    for z0, z1 in slab_bounds(shape[0], slab_levels or shape[0]):
+        slab = {v: np.asarray(fine[v])[z0:z1] for v in SLAB_INPUTS}
+        if p.ndim == 3:
+            slab["p"] = p[z0:z1]
+        step.add_slab(z0, slab)
+    return step.finish(np.asarray(fine["lwp"]))
 
 
 def _attrs(name: str, s: Scale, threshold: float) -> dict[str, str]:
@@ -383,52 +481,57 @@ def _layout(
     return out
 
 
-FINE_INPUTS = ("qc", "qv", "T", "w", "rh", "cloud_mask", "lwp", "p")
-"""Canonical arrays coarsening reads."""
-
-
 class FineReader:
-    """Read the fine fields of one output time after another, one time ahead.
+    """Read the canonical store's fine fields slab by slab, one slab ahead.
 
-    The arrays of a time step are read concurrently straight from the canonical Zarr
-    store in their stored dtype (float32 fields stay float32, the mask int8). While the
-    caller computes time ``j`` the arrays of ``j + 1`` are read on a background thread,
-    so at most two time steps of input are in memory.
+    A slab is ``levels`` levels (default: the store's chunk height, so each read
+    decodes whole chunks) of every 3-D input at one time. The arrays of a slab are read
+    concurrently in their stored dtype (float32 stays float32, the mask int8); while the
+    caller coarsens one slab the next is read on a background thread. Memory is two
+    slabs, whatever the column height or the number of times.
     """
 
-    def __init__(self, path: str | Path, names: Sequence[str] = FINE_INPUTS) -> None:
+    def __init__(self, path: str | Path, *, levels: int | None = None) -> None:
         self.group = zarr.open_group(str(path), mode="r")
-        self.names = tuple(names)
-        self.ntimes = int(self.group["time"].shape[0])
+        qc = self.group["qc"]
+        self.ntimes, self.nz, self.ny, self.nx = (int(n) for n in qc.shape)
+        self.levels = int(levels or qc.chunks[1])
+        p = self.group["p"]
+        self.p_profile = np.asarray(p[...], dtype=np.float64) if p.ndim == 1 else None
+        self.names = SLAB_INPUTS if self.p_profile is not None else (*SLAB_INPUTS, "p")
+        self.bounds = slab_bounds(self.nz, self.levels)
         self._io = ThreadPoolExecutor(max_workers=len(self.names))
         self._ahead = ThreadPoolExecutor(max_workers=1)
-        self._next: tuple[int, Future[dict[str, np.ndarray]]] | None = None
 
-    def _read(self, j: int) -> dict[str, np.ndarray]:
+    def _read(self, j: int, z0: int, z1: int) -> dict[str, np.ndarray]:
         def one(name: str) -> np.ndarray:
-            arr = self.group[name]
-            timed = "time" in (arr.metadata.dimension_names or ())
-            return np.asarray(arr[j] if timed else arr[...])
+            return np.asarray(self.group[name][j, z0:z1])
 
         return dict(zip(self.names, self._io.map(one, self.names), strict=True))
 
-    def get(self, j: int) -> dict[str, np.ndarray]:
-        """The fine fields of time ``j``; starts reading ``j + 1``."""
-        if self._next is not None and self._next[0] == j:
-            fields = self._next[1].result()
-        else:
-            fields = self._read(j)
-        self._next = None
-        if j + 1 < self.ntimes:
-            self._next = (j + 1, self._ahead.submit(self._read, j + 1))
-        return fields
+    def slabs(self) -> Iterator[tuple[int, int, dict[str, np.ndarray]]]:
+        """Yield ``(time index, z0, fields)`` for every slab of every time, in order."""
+        keys = [(j, z0, z1) for j in range(self.ntimes) for z0, z1 in self.bounds]
+        pending: Future[dict[str, np.ndarray]] | None = None
+        try:
+            for n, key in enumerate(keys):
+                fields = pending.result() if pending is not None else self._read(*key)
+                pending = None
+                if n + 1 < len(keys):
+                    pending = self._ahead.submit(self._read, *keys[n + 1])
+                yield key[0], key[1], fields
+                del fields
+        finally:
+            if pending is not None:
+                with contextlib.suppress(Exception):
+                    pending.result()
+
+    def lwp(self, j: int) -> np.ndarray:
+        """Liquid water path of time ``j``."""
+        return np.asarray(self.group["lwp"][j])
 
     def close(self) -> None:
-        """Wait for a pending read and stop the threads."""
-        if self._next is not None:
-            with contextlib.suppress(Exception):
-                self._next[1].result()
-            self._next = None
+        """Stop the reader threads."""
         self._ahead.shutdown(wait=True)
         self._io.shutdown(wait=True)
 
@@ -495,7 +598,6 @@ def coarsen_case(
     scales, skipped = resolve_for_case(settings, dx, nx, ny, case=case)
     scales = [s for s in scales if s.label in outputs]
     z = canon.z.values.astype(np.float64)
-    nt = canon.sizes["time"]
     written: dict[str, Path] = {}
     with _AtomicGroup({lab: Path(p) for lab, p in outputs.items()}) as tmps:
         groups: dict[str, zarr.Group] = {}
@@ -504,10 +606,23 @@ def coarsen_case(
         # One buffer budget shared by all scales: memory does not grow with their number.
         limit = WRITE_BUFFER_BYTES // max(1, len(scales))
         with FineReader(canonical) as reader:
-            for j in range(nt):
-                fine = reader.get(j)
-                fields = coarse_fields(fine, z, scales, settings, dtype=settings.dtype)
-                del fine
+            step = StepCoarsener(
+                z,
+                (reader.nz, reader.ny, reader.nx),
+                scales,
+                settings,
+                dtype=settings.dtype,
+                p_profile=reader.p_profile,
+            )
+            last = reader.bounds[-1][0]
+            for j, z0, slab in reader.slabs():
+                if z0 == 0:
+                    step.begin()
+                step.add_slab(z0, slab)
+                del slab
+                if z0 != last:
+                    continue
+                fields = step.finish(reader.lwp(j))
                 for s in scales:
                     d = fields.pop(s.label)
                     if j == 0:

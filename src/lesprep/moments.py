@@ -330,7 +330,11 @@ class BlockMoments:
         return var
 
     def variance_and_skewness(
-        self, dtype: npt.DTypeLike = np.float64, *, engine: Engine = "auto"
+        self,
+        dtype: npt.DTypeLike = np.float64,
+        *,
+        out: tuple[np.ndarray, np.ndarray] | None = None,
+        engine: Engine = "auto",
     ) -> tuple[np.ndarray, np.ndarray]:
         """:meth:`variance` and :meth:`skewness` in one pass, stored as ``dtype``.
 
@@ -338,18 +342,29 @@ class BlockMoments:
         it. The numba engine fuses both into one loop without float64 temporaries; the
         numpy engine (the reference) calls :meth:`variance` and :meth:`skewness`.
 
+        ``out`` may give two C-contiguous arrays of the shape of :attr:`mean` to write into
+        (their dtype then wins over ``dtype``).
+
         Returns
         -------
         variance, skewness
             Arrays of ``dtype`` and the shape of :attr:`mean`.
         """
         eng = _resolve_engine(engine)
-        dt = np.dtype(dtype)
-        if eng == "numpy" or dt.char not in "fd":
-            return self.variance().astype(dt), self.skewness().astype(dt)
         shape = self.shape
-        var = np.empty(shape, dtype=dt)
-        skew = np.empty(shape, dtype=dt)
+        if out is None:
+            dt = np.dtype(dtype)
+            var = np.empty(shape, dtype=dt)
+            skew = np.empty(shape, dtype=dt)
+        else:
+            var, skew = out
+            if var.shape != shape or skew.shape != shape:
+                raise InputError(f"out arrays must have shape {shape}")
+        fast = all(a.flags.c_contiguous and a.dtype.char in "fd" for a in (var, skew))
+        if eng == "numpy" or not fast:
+            var[...] = self.variance()
+            skew[...] = self.skewness()
+            return var, skew
         flat = [np.ascontiguousarray(a, dtype=np.float64).reshape(-1) for a in self._arrays()]
         _nb_var_skew(
             *flat,

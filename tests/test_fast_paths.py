@@ -128,6 +128,9 @@ def test_unit_conversion_fast_matches_pint(found: str, expected: str) -> None:
     np.testing.assert_allclose(fast, want.astype(np.float32), rtol=F32_ULP, atol=1e-30)
     if conv.is_identity:
         assert conv.convert(raw, np.float32) is raw
+    inplace = raw.copy()
+    assert conv.convert(inplace, out=inplace) is inplace
+    np.testing.assert_array_equal(inplace, fast)
 
 
 def test_destagger_fast_matches_reference() -> None:

@@ -215,7 +215,8 @@ def canonical_step(
             case=cat.case,
             file=file,
         )
-        values = conv.convert(raw, dtype)
+        reuse = raw.dtype == dtype and raw.flags.writeable and raw.flags.c_contiguous
+        values = conv.convert(raw, dtype, out=raw if reuse else None)  # in place if it can
         if value_extent(values)[0]:  # NaN/Inf: report them where the raw file has them
             where = {"case": cat.case, "file": file, "time": t}
             check_finite(raw, variable=spec.raw, dims=raw_dims, **where)

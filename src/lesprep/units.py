@@ -65,26 +65,41 @@ class Conversion:
         return values * self.factor + self.offset
 
     def convert(
-        self, values: np.ndarray, dtype: Any = np.float64, *, engine: Engine = "auto"
+        self,
+        values: np.ndarray,
+        dtype: Any = np.float64,
+        *,
+        out: np.ndarray | None = None,
+        engine: Engine = "auto",
     ) -> np.ndarray:
-        """Convert a numpy array into a new array of ``dtype``, with float64 arithmetic.
+        """Convert a numpy array into an array of ``dtype``, with float64 arithmetic.
 
         Each value is computed as ``float64(raw) * factor + offset`` and rounded once to
         ``dtype``. An identity conversion of an array already of ``dtype`` returns it
-        unchanged (no copy). The numba engine does it in one parallel pass; the numpy engine
-        is the reference.
+        unchanged (no copy). ``out`` (C-contiguous, the shape of ``values``; it may be
+        ``values`` itself) receives the result instead of a new array, and its dtype wins.
+        The numba engine does it in one parallel pass; the numpy engine is the reference.
         """
         a = np.asarray(values)
-        dt = np.dtype(dtype)
+        dt = np.dtype(dtype) if out is None else out.dtype
         if self.is_identity and a.dtype == dt:
+            if out is not None and out is not a:
+                out[...] = a
+                return out
             return a
+        if out is not None and (out.shape != a.shape or not out.flags.c_contiguous):
+            raise ValueError(f"out must be C-contiguous of shape {a.shape}")
         eng = resolve_engine(engine)
         if eng == "numpy" or dt.char not in "fd" or a.dtype.char not in "fd":
-            return np.asarray(self.apply(a.astype(np.float64)), dtype=dt)
+            res = np.asarray(self.apply(a.astype(np.float64)), dtype=dt)
+            if out is None:
+                return res
+            out[...] = res
+            return out
         src = np.ascontiguousarray(a)
-        out = np.empty(src.shape, dtype=dt)
-        _nb_affine(src.reshape(-1), float(self.factor), float(self.offset), out.reshape(-1))
-        return out
+        res = np.empty(src.shape, dtype=dt) if out is None else out
+        _nb_affine(src.reshape(-1), float(self.factor), float(self.offset), res.reshape(-1))
+        return res
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-dict form for provenance."""

@@ -74,12 +74,33 @@ class RawVariable:
             values = np.asarray(self._var[sel] if sel else self._var[...])
         finally:
             self._var.set_auto_maskandscale(True)
-        _, lo, hi = value_extent(values)
-        invalid = self._invalid(values, lo, hi)
+        return self._checked(values)[0]
+
+    def read_with_extent(
+        self, index: dict[str, int] | None = None
+    ) -> tuple[np.ndarray, tuple[int, float, float]]:
+        """:meth:`read` with ``native=True``, and :func:`~lesprep.checks.value_extent` of
+        the result (computed on the way, no extra pass over the values)."""
+        sel = tuple((index or {}).get(d, slice(None)) for d in self.dims)
+        packed = "scale_factor" in self.attrs or "add_offset" in self.attrs
+        if packed or np.dtype(self._var.dtype).kind != "f":
+            values = self.read(index, native=True)
+            return values, value_extent(values)
+        self._var.set_auto_maskandscale(False)
+        try:
+            values = np.asarray(self._var[sel] if sel else self._var[...])
+        finally:
+            self._var.set_auto_maskandscale(True)
+        return self._checked(values)
+
+    def _checked(self, values: np.ndarray) -> tuple[np.ndarray, tuple[int, float, float]]:
+        extent = value_extent(values)
+        invalid = self._invalid(values, extent[1], extent[2])
         if invalid is not None:
             values = np.array(values, copy=True)
             values[invalid] = np.nan
-        return values
+            extent = value_extent(values)
+        return values, extent
 
     def _invalid(self, values: np.ndarray, lo: float, hi: float) -> np.ndarray | None:
         """Mask of the invalid values, or None when the value range shows there are none."""
@@ -491,15 +512,18 @@ def _same_grid(a: RawGrid, b: RawGrid, *, case: str, file: str, ref_file: str) -
             )
 
 
-def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, str, str | None]:
+def read_field(
+    cat: Catalogue, name: str, time_index: int
+) -> tuple[np.ndarray, str, str | None, tuple[int, float, float]]:
     """Read one canonical variable's raw values at one output time.
 
     Returns
     -------
-    values, file, units
+    values, file, units, extent
         The raw array (its own float dtype, float64 if packed or integer; raw dim order
-        without the time dim; invalid values as NaN), the file it came
-        from and its ``units`` attribute (None if missing).
+        without the time dim; invalid values as NaN), the file it came from, its
+        ``units`` attribute (None if missing) and ``(nonfinite, min, max)`` of the values
+        (:func:`lesprep.checks.value_extent`).
     """
     spec = cat.varmap.variables[name]
     locs = cat.where[name]
@@ -509,7 +533,7 @@ def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, 
     try:
         var = ds.variables[spec.raw]
         time_dim = cat.varmap.raw_dim("time")
-        values = var.read({time_dim: k} if k >= 0 else None, native=True)
+        values, extent = var.read_with_extent({time_dim: k} if k >= 0 else None)
         units = var.attrs.get("units")
     except Exception as exc:
         raise InputError(
@@ -521,4 +545,4 @@ def read_field(cat: Catalogue, name: str, time_index: int) -> tuple[np.ndarray, 
         ) from None
     finally:
         ds.close()
-    return values, str(path), units
+    return values, str(path), units, extent

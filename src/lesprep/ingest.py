@@ -201,7 +201,7 @@ def canonical_step(
     extents: dict[str, tuple[float, float]] = {}
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
-        raw, file, units = read_field(cat, name, time_index)
+        raw, file, units, raw_extent = read_field(cat, name, time_index)
         files[name] = file
         axes = tuple(a for a in spec.axes(vm.dims) if a != "time")
         raw_dims = [d for d in spec.dims if vm.dims[d] != "time"]
@@ -216,13 +216,23 @@ def canonical_step(
             file=file,
         )
         reuse = raw.dtype == dtype and raw.flags.writeable and raw.flags.c_contiguous
-        values = conv.convert(raw, dtype, out=raw if reuse else None)  # in place if it can
-        if value_extent(values)[0]:  # NaN/Inf: report them where the raw file has them
-            where = {"case": cat.case, "file": file, "time": t}
+        where = {"case": cat.case, "file": file, "time": t}
+        if raw_extent[0]:  # NaN/Inf (or fill values): report them where the raw file has them
             check_finite(raw, variable=spec.raw, dims=raw_dims, **where)
-            check_finite(values, variable=f"{spec.raw} (converted)", dims=raw_dims, **where)
+        raw_dtype = raw.dtype
+        values = conv.convert(raw, dtype, out=raw if reuse else None)  # in place if it can
         del raw
+        # Rounding is monotonic, so the converted extremes are the converted raw extremes
+        # (same kernel, same rounding); an overflow shows as an infinite extreme.
+        ends = conv.convert(np.array(raw_extent[1:], dtype=raw_dtype), dtype)
+        extent = (float(ends.min()), float(ends.max()))
+        if not np.all(np.isfinite(ends)):
+            check_finite(values, variable=f"{spec.raw} (converted)", dims=raw_dims, **where)
         values, cax = _to_canonical_axes(values, axes)
+        reshaped = any(a in ("z_face", "y_face", "x_face") for a in cax) or spec.quantity in (
+            "specific_humidity",
+            "potential_temperature",
+        )
         for i, a in enumerate(cax):
             if a == "z_face":
                 values = destagger_vertical(
@@ -240,7 +250,7 @@ def canonical_step(
             p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
             values = thermo.temperature_from_potential_temperature(values, p).astype(dtype)
         out[name] = np.ascontiguousarray(values)
-        extents[name] = value_extent(out[name])[1:]
+        extents[name] = value_extent(out[name])[1:] if reshaped else extent
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
         check_range(

@@ -64,28 +64,29 @@ class RawVariable:
         test reads the values once instead of building a masked array; packed or integer
         variables still come back as float64.
         """
-        sel = tuple((index or {}).get(d, slice(None)) for d in self.dims)
-        packed = "scale_factor" in self.attrs or "add_offset" in self.attrs
-        if not native or packed or np.dtype(self._var.dtype).kind != "f":
-            raw = self._var[sel] if sel else self._var[...]
-            return np.ma.filled(np.ma.asarray(raw).astype(np.float64), np.nan)
-        self._var.set_auto_maskandscale(False)
-        try:
-            values = np.asarray(self._var[sel] if sel else self._var[...])
-        finally:
-            self._var.set_auto_maskandscale(True)
-        return self._checked(values)[0]
+        if native and not self._packed():
+            return self.read_with_extent(index)[0]
+        sel = self._selection(index)
+        raw = self._var[sel] if sel else self._var[...]
+        return np.ma.filled(np.ma.asarray(raw).astype(np.float64), np.nan)
+
+    def _selection(self, index: dict[str, int] | None) -> tuple[Any, ...]:
+        return tuple((index or {}).get(d, slice(None)) for d in self.dims)
+
+    def _packed(self) -> bool:
+        """Scaled, offset or integer data (always read as float64 through netCDF4)."""
+        scaled = "scale_factor" in self.attrs or "add_offset" in self.attrs
+        return scaled or np.dtype(self._var.dtype).kind != "f"
 
     def read_with_extent(
         self, index: dict[str, int] | None = None
     ) -> tuple[np.ndarray, tuple[int, float, float]]:
         """:meth:`read` with ``native=True``, and :func:`~lesprep.checks.value_extent` of
         the result (computed on the way, no extra pass over the values)."""
-        sel = tuple((index or {}).get(d, slice(None)) for d in self.dims)
-        packed = "scale_factor" in self.attrs or "add_offset" in self.attrs
-        if packed or np.dtype(self._var.dtype).kind != "f":
-            values = self.read(index, native=True)
+        if self._packed():
+            values = self.read(index)
             return values, value_extent(values)
+        sel = self._selection(index)
         self._var.set_auto_maskandscale(False)
         try:
             values = np.asarray(self._var[sel] if sel else self._var[...])

@@ -1,9 +1,11 @@
 """Multi-scale coarsening of one case: sub-grid moments, GCM-view inputs, fine patches.
 
-For every kept output time the canonical fine fields are read once and every scale of
-the job's group is computed from them in one pass: the finest factor from the fine
-field, each coarser factor from the moments of the finest computed factor dividing it
-(:func:`lesprep.moments.hierarchical_moments`). Per coarse cell ``(time, z, y, x)``:
+For every kept output time the canonical fine fields are read once, one z-slab (one chunk
+height) at a time, and every scale of the job's group is computed from each slab in one
+pass: the finest factor from the fine field, each coarser factor from the moments of the
+finest computed factor dividing it (:func:`lesprep.moments.hierarchical_moments`). Only
+``drh_dz`` and the column quantities need the whole column; they are added when a time
+step's last slab is done (:class:`StepCoarsener`). Per coarse cell ``(time, z, y, x)``:
 
 ``<v>_mean``, ``<v>_var``, ``<v>_skew``
     block mean, population variance (``M2 / n``) and skewness ``g1 = (M3/n) / var**1.5``

@@ -601,10 +601,27 @@ def coarsen_case(
     scales = [s for s in scales if s.label in outputs]
     z = canon.z.values.astype(np.float64)
     written: dict[str, Path] = {}
-    with _AtomicGroup({lab: Path(p) for lab, p in outputs.items()}) as tmps:
+    codecs = compressors(settings.store)
+
+    def create_all(shapes: Mapping[str, Mapping[str, np.ndarray]]) -> dict[str, zarr.Group]:
+        return {
+            s.label: create_store(
+                tmps[s.label],
+                _layout(canon, s, shapes[s.label], settings, threshold),
+                codecs=codecs,
+            )
+            for s in scales
+        }
+
+    # The pool is left (and a pending store creation finished) before the outputs are
+    # published or removed.
+    with (
+        _AtomicGroup({lab: Path(p) for lab, p in outputs.items()}) as tmps,
+        ThreadPoolExecutor(max_workers=1) as creator,
+    ):
         groups: dict[str, zarr.Group] = {}
         writers: dict[str, TimeWriter] = {}
-        codecs = compressors(settings.store)
+        creating: Future[dict[str, zarr.Group]] | None = None
         # One buffer budget shared by all scales: memory does not grow with their number.
         limit = WRITE_BUFFER_BYTES // max(1, len(scales))
         with FineReader(canonical) as reader:
@@ -620,22 +637,19 @@ def coarsen_case(
             for j, z0, slab in reader.slabs():
                 if z0 == 0:
                     step.begin()
+                    if j == 0:  # create the stores (shapes known) while the first step runs
+                        creating = creator.submit(create_all, step.out)
                 step.add_slab(z0, slab)
                 del slab
                 if z0 != last:
                     continue
                 fields = step.finish(reader.lwp(j))
+                if creating is not None:
+                    groups = creating.result()
+                    creating = None
+                    writers = {lab: TimeWriter(g, limit_bytes=limit) for lab, g in groups.items()}
                 for s in scales:
-                    d = fields.pop(s.label)
-                    if j == 0:
-                        layout = _layout(canon, s, d, settings, threshold)
-                        groups[s.label] = create_store(tmps[s.label], layout, codecs=codecs)
-                        writers[s.label] = TimeWriter(groups[s.label], limit_bytes=limit)
-                        for name, arr in d.items():
-                            if arr.ndim == 1:
-                                groups[s.label][name][:] = arr
-                    writers[s.label].add(j, {n: a for n, a in d.items() if a.ndim > 1})
-                    del d
+                    writers[s.label].add(j, fields.pop(s.label))
         for w in writers.values():
             w.flush()
         for lab, tmp in tmps.items():

@@ -298,13 +298,11 @@ def w_jit_warm() -> dict[str, Any]:
 
 def _warm_ingest_kernels(np: Any) -> None:
     """Compile (or load) the kernels ingest uses, for float32 raw data."""
-    from lesprep.checks import value_extent
     from lesprep.derived import cell_diagnostics
     from lesprep.grid import destagger_vertical
     from lesprep.units import Conversion
 
     a = np.ones((4, 8, 8), dtype=np.float32)
-    value_extent(a)
     conv = Conversion(
         variable="T", raw_variable="t", from_units="degC", to_units="K", factor=1.0, offset=1.0
     )

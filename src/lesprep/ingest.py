@@ -225,15 +225,13 @@ def canonical_step(
         # Rounding is monotonic, so the converted extremes are the converted raw extremes
         # (same kernel, same rounding); an overflow shows as an infinite extreme.
         ends = conv.convert(np.array(raw_extent[1:], dtype=raw_dtype), dtype)
-        extent = (float(ends.min()), float(ends.max()))
+        extent: tuple[float, float] | None = (float(ends.min()), float(ends.max()))
         if not np.all(np.isfinite(ends)):
             check_finite(values, variable=f"{spec.raw} (converted)", dims=raw_dims, **where)
         values, cax = _to_canonical_axes(values, axes)
-        reshaped = any(a in ("z_face", "y_face", "x_face") for a in cax) or spec.quantity in (
-            "specific_humidity",
-            "potential_temperature",
-        )
         for i, a in enumerate(cax):
+            if a in ("z_face", "y_face", "x_face"):
+                extent = None  # interpolated values: their extremes are measured below
             if a == "z_face":
                 values = destagger_vertical(
                     np.ascontiguousarray(values) if i == 0 else values,
@@ -244,13 +242,15 @@ def canonical_step(
                 )
             elif a in ("y_face", "x_face"):
                 values = destagger_periodic(values, axis=i).astype(dtype)
+        if spec.quantity in ("specific_humidity", "potential_temperature"):
+            extent = None
         if spec.quantity == "specific_humidity":
             values = thermo.mixing_ratio_from_specific_humidity(values).astype(dtype)
         elif spec.quantity == "potential_temperature":
             p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
             values = thermo.temperature_from_potential_temperature(values, p).astype(dtype)
         out[name] = np.ascontiguousarray(values)
-        extents[name] = value_extent(out[name])[1:] if reshaped else extent
+        extents[name] = value_extent(out[name])[1:] if extent is None else extent
     for name in ("p", "qc", "qv", "T", "w"):
         spec = vm.variables[name]
         check_range(

@@ -17,14 +17,16 @@ import numpy as np
 import pint
 import pytest
 import scipy.stats
+import xarray as xr
 
 from lesprep import thermo
 from lesprep._jit import HAVE_NUMBA
 from lesprep.archive import RawFile
+from lesprep.baseline import sundqvist_cloud_fraction
 from lesprep.checks import value_extent
 from lesprep.derived import cell_diagnostics, relative_humidity
 from lesprep.grid import destagger_vertical
-from lesprep.moments import block_moments, hierarchical_moments
+from lesprep.moments import block_mean, block_moments, hierarchical_fractions, hierarchical_moments
 from lesprep.patches import extract_patches
 from lesprep.provenance import FileRecords, file_record
 from lesprep.units import conversion
@@ -86,6 +88,76 @@ def test_relative_humidity_fast_matches_thermo() -> None:
     got32 = relative_humidity(p[:, 0, 0], t, r, dtype=np.float32)
     ref = thermo.relative_humidity(p[:, :1, :1], t, r).astype(np.float32)
     np.testing.assert_allclose(got32, ref, rtol=F32_ULP, atol=0)
+
+
+def test_relative_humidity_into_out_equals_the_returned_array() -> None:
+    f = atmosphere((4, 8, 8), seed=4)
+    p, t, r = (f[k].astype(np.float64) for k in ("p", "T", "qv"))
+    for engine in ("numba", "numpy"):
+        out = np.empty(t.shape)
+        got = relative_humidity(p, t, r, out=out, engine=engine)
+        assert got is out
+        np.testing.assert_allclose(out, thermo.relative_humidity(p, t, r), rtol=4e-16, atol=0)
+
+
+def test_sundqvist_compiled_pass_equals_numpy_reference() -> None:
+    # The reference is the closed form of Sundqvist et al. (1989) in baseline.py, checked
+    # against values worked by hand in test_baseline.py; here the compiled pass must
+    # give its numbers bit for bit, NaN, clipping at RHc and at saturation included.
+    rng = np.random.default_rng(23)
+    rh = rng.uniform(0.5, 1.1, size=(3, 16, 16))
+    rh[0, 0, :5] = [np.nan, 0.8, 1.0, 0.7999999999, 1.0000001]
+    ref = sundqvist_cloud_fraction(rh, 0.8)
+    out = np.empty_like(rh)
+    assert sundqvist_cloud_fraction(rh, 0.8, out=out) is out
+    np.testing.assert_array_equal(out, ref)  # NaN where rh is NaN, in both
+    out32 = np.empty(rh.shape, np.float32)
+    sundqvist_cloud_fraction(rh, 0.8, out=out32)
+    np.testing.assert_array_equal(out32, ref.astype(np.float32))
+    ref_np = np.empty_like(rh)
+    sundqvist_cloud_fraction(rh, 0.8, out=ref_np, engine="numpy")
+    np.testing.assert_array_equal(ref_np, ref)
+    # the formula written out: C = 1 - sqrt((1 - RH) / (1 - RHc)) inside (RHc, 1)
+    inside = (rh > 0.8) & (rh < 1.0)
+    np.testing.assert_allclose(out[inside], 1 - np.sqrt((1 - rh[inside]) / (1 - 0.8)), rtol=1e-15)
+
+
+@pytest.mark.parametrize("dtype", [np.int8, bool])
+def test_mask_fractions_from_counts_match_xarray_coarsen(dtype) -> None:
+    # xarray's own coarsen(...).mean() of the 0/1 mask is the reference
+    rng = np.random.default_rng(29)
+    mask = (rng.random((3, 24, 48)) > 0.75).astype(dtype)
+    factors = [2, 3, 4, 6, 12, 24]  # 2 and k = 2: constant-stride loops; 3, 6: general
+    fast = hierarchical_fractions(mask, factors)
+    ref = hierarchical_fractions(mask, factors, engine="numpy")
+    da = xr.DataArray(mask.astype(np.float64), dims=("z", "y", "x"))
+    for f in factors:
+        np.testing.assert_array_equal(fast[f], ref[f])
+        coarse = da.coarsen(y=f, x=f).mean().values
+        np.testing.assert_allclose(fast[f], coarse, rtol=1e-15, atol=0)
+        np.testing.assert_allclose(fast[f], block_mean(mask, f), rtol=1e-15, atol=0)
+
+
+def test_mean_rounded_in_the_variance_pass() -> None:
+    x = np.random.default_rng(31).normal(1.0, 0.1, size=(2, 16, 16))
+    bm = block_moments(x, 4)
+    for engine in ("numba", "numpy"):
+        v, g, m = (np.empty(bm.shape, np.float32) for _ in range(3))
+        bm.variance_and_skewness(out=(v, g), mean_out=m, engine=engine)
+        np.testing.assert_array_equal(m, bm.mean.astype(np.float32))
+        np.testing.assert_array_equal(v, bm.variance().astype(np.float32))
+
+
+@pytest.mark.parametrize("factor, size, halo", [(8, 4, 0), (8, 4, 2), (16, 4, 4)])
+def test_patches_from_known_block_means(factor, size, halo) -> None:
+    x = np.random.default_rng(37).normal(size=(2, 32, 32)).astype(np.float32)
+    d = factor // size
+    ref = extract_patches(x, factor, size, halo, dtype=np.float32)
+    means = hierarchical_moments(x, [2, d])[d].mean
+    out = np.full(ref.shape, np.nan, np.float32)
+    got = extract_patches(x[:0], factor, size, halo, means=means, out=out)  # x is not read
+    assert got is out
+    np.testing.assert_array_equal(out, ref)
 
 
 def test_value_extent_matches_masked_numpy() -> None:

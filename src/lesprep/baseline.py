@@ -25,6 +25,7 @@ import numpy as np
 import xarray as xr
 from numpy.typing import ArrayLike, NDArray
 
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from lesprep.errors import ConfigError, GridError, NonFiniteError
 
 __all__ = ["baseline_errors", "sundqvist_cloud_fraction"]
@@ -54,13 +55,40 @@ def _check_rh_critical(rh_critical: float) -> float:
     return value
 
 
-@overload
-def sundqvist_cloud_fraction(rh: xr.DataArray, rh_critical: float = ...) -> xr.DataArray: ...
-@overload
-def sundqvist_cloud_fraction(rh: ArrayLike, rh_critical: float = ...) -> NDArray[np.float64]: ...
+if HAVE_NUMBA:
+
+    @njit(inline="always")
+    def _nb_clip(x, lo, hi):  # pragma: no cover - compiled
+        """np.minimum(np.maximum(x, lo), hi): NaN stays NaN."""
+        if x != x:
+            return x
+        return hi if x > hi else (lo if x < lo else x)
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def _nb_sundqvist(rh, rhc, out):  # pragma: no cover - compiled
+        """The numpy path's operations, in the same order, per element."""
+        for i in prange(rh.size):
+            c = _nb_clip(np.float64(rh[i]), rhc, 1.0)
+            out[i] = _nb_clip(1.0 - np.sqrt((1.0 - c) / (1.0 - rhc)), 0.0, 1.0)
 
 
-def sundqvist_cloud_fraction(rh: ArrayLike | xr.DataArray, rh_critical: float = 0.8) -> Any:
+@overload
+def sundqvist_cloud_fraction(
+    rh: xr.DataArray, rh_critical: float = ..., *, out: None = ..., engine: Engine = ...
+) -> xr.DataArray: ...
+@overload
+def sundqvist_cloud_fraction(
+    rh: ArrayLike, rh_critical: float = ..., *, out: np.ndarray | None = ..., engine: Engine = ...
+) -> NDArray[np.floating]: ...
+
+
+def sundqvist_cloud_fraction(
+    rh: ArrayLike | xr.DataArray,
+    rh_critical: float = 0.8,
+    *,
+    out: np.ndarray | None = None,
+    engine: Engine = "auto",
+) -> Any:
     """Cloud fraction from relative humidity after Sundqvist et al. (1989).
 
     Parameters
@@ -72,6 +100,12 @@ def sundqvist_cloud_fraction(rh: ArrayLike | xr.DataArray, rh_critical: float = 
     rh_critical
         Critical relative humidity ``RHc`` in [0, 1) below which no cloud forms;
         0.8 by default (common practice).
+    out
+        For a NumPy ``rh``: an array of its shape to write the result into (rounded once
+        to the dtype of ``out``).
+    engine
+        With ``out``: ``"numba"`` (one compiled pass), ``"numpy"`` (the reference) or
+        ``"auto"``; both give the same numbers.
 
     Returns
     -------
@@ -92,6 +126,16 @@ def sundqvist_cloud_fraction(rh: ArrayLike | xr.DataArray, rh_critical: float = 
     [0.0, 0.0, 0.292893, 1.0]
     """
     rhc = _check_rh_critical(rh_critical)
+    if out is not None:
+        values = np.asarray(rh)
+        if values.shape != out.shape:
+            raise GridError(f"out has shape {out.shape}; rh has shape {values.shape}")
+        compiled = resolve_engine(engine) == "numba" and out.flags.c_contiguous
+        if compiled and values.dtype.char in "fd" and out.dtype.char in "fd":
+            _nb_sundqvist(np.ascontiguousarray(values).reshape(-1), rhc, out.reshape(-1))
+        else:
+            out[...] = sundqvist_cloud_fraction(values, rhc)
+        return out
     if isinstance(rh, xr.DataArray) or hasattr(rh, "__dask_graph__"):
         values = rh.astype(np.float64)  # type: ignore[union-attr]
     else:

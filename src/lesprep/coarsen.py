@@ -49,7 +49,7 @@ from . import derived, provenance
 from ._memory import retain_freed_memory
 from .baseline import sundqvist_cloud_fraction
 from .errors import ConfigError, ScaleError
-from .moments import block_mean, hierarchical_moments, plan_hierarchy
+from .moments import block_mean, hierarchical_fractions, hierarchical_moments, plan_hierarchy
 from .patches import extract_patches, patch_geometry
 from .scales import Scale, ScaleSpec, parse_scales
 from .store import (
@@ -245,18 +245,20 @@ class StepCoarsener:
         sl = slice(z0, z0 + k)
         moments = {v: hierarchical_moments(fine[v], factors) for v in self.need}
         mask = np.asarray(fine["cloud_mask"])
-        self.column |= np.any(mask > 0, axis=0)
-        maskf = mask.astype(np.float32)  # 0/1: exact in float32
-        cf = hierarchical_means(maskf, factors)
+        self.column |= np.any(mask, axis=0)
+        cf = hierarchical_fractions(mask, factors)
         p_means = None if self.p_profile is not None else hierarchical_means(fine["p"], factors)
         for s in self.scales:
             f = s.factor
             d = self.out[s.label]
             for v in self.need:
                 m = moments[v][f]
-                d[f"{v}_mean"][sl] = m.mean
                 if v in st.moments:
-                    m.variance_and_skewness(out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]))
+                    m.variance_and_skewness(
+                        out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]), mean_out=d[f"{v}_mean"][sl]
+                    )
+                else:
+                    d[f"{v}_mean"][sl] = m.mean
             t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
             if p_means is not None:
                 p3 = p_means[f]
@@ -265,22 +267,26 @@ class StepCoarsener:
                 p3 = np.broadcast_to(self.p_profile[sl, None, None], t_mean.shape)
             d["p_mean"][sl] = p3
             d["cloud_fraction"][sl] = cf[f]
-            rh = derived.relative_humidity(p3, t_mean, qv_mean)
-            self.rh64[f][sl] = rh
+            rh = derived.relative_humidity(p3, t_mean, qv_mean, out=self.rh64[f][sl])
             d["rh_of_means"][sl] = rh
-            d["cf_sundqvist"][sl] = sundqvist_cloud_fraction(rh, st.rh_critical)
-            del rh
+            sundqvist_cloud_fraction(rh, st.rh_critical, out=d["cf_sundqvist"][sl])
             if s.label in st.patch_scales:
+                ds, _ = patch_geometry(f, st.patch_size, st.patch_halo)
                 for v in st.patch_variables:
-                    src = maskf if v == "cloud_mask" else fine[v]
-                    d[f"{v}_patch"][sl] = extract_patches(
-                        src, f, st.patch_size, st.patch_halo, dtype=self.dtype
+                    means = None  # the downsampled patch is a block mean computed above
+                    if ds > 1 and ds in factors and v in moments:
+                        means = moments[v][ds].mean
+                    elif ds > 1 and ds in factors and v == "cloud_mask":
+                        means = cf[ds]
+                    src = mask if v == "cloud_mask" else fine[v]
+                    extract_patches(
+                        src, f, st.patch_size, st.patch_halo, means=means, out=d[f"{v}_patch"][sl]
                     )
 
     def finish(self, lwp: np.ndarray) -> dict[str, dict[str, np.ndarray]]:
         """Column quantities and ``drh_dz``; returns the step's outputs per scale label."""
         factors = self.factors
-        cover = hierarchical_means(self.column.astype(np.float32), factors)
+        cover = hierarchical_fractions(self.column, factors)
         lwp_m = hierarchical_moments(lwp, factors)
         for s in self.scales:
             f = s.factor

@@ -118,15 +118,25 @@ def relative_humidity(
     mixing_ratio: npt.ArrayLike,
     *,
     dtype: npt.DTypeLike = np.float64,
+    out: np.ndarray | None = None,
     engine: Engine = "auto",
 ) -> np.ndarray:
     """:func:`lesprep.thermo.relative_humidity` of 3-D fields in one compiled pass.
 
-    ``p`` may be a ``(z,)`` profile. The numpy engine calls the thermo function.
+    ``p`` may be a ``(z,)`` profile. The numpy engine calls the thermo function. ``out``
+    (the shape of ``temperature``; its dtype wins over ``dtype``) receives the result.
     """
     t = np.asarray(temperature)
     r = np.asarray(mixing_ratio)
     pp = _broadcast_p(np.asarray(p), t.shape)
+    if out is not None:
+        if out.shape != t.shape:
+            raise ValueError(f"out has shape {out.shape}, expected {t.shape}")
+        if resolve_engine(engine) == "numpy" or t.ndim != 3 or out.dtype.char not in "fd":
+            out[...] = thermo.relative_humidity(pp, t, r)
+        else:
+            _nb_rh(pp, t, r, out)
+        return out
     dt = np.dtype(dtype)
     if resolve_engine(engine) == "numpy" or t.ndim != 3 or dt.char not in "fd":
         return thermo.relative_humidity(pp, t, r).astype(dt)
@@ -143,7 +153,7 @@ if HAVE_NUMBA:
         tc = t - _T0
         return e / (611.2 * np.exp(17.67 * tc / (tc + 243.5)))
 
-    @njit(parallel=True, cache=True, fastmath=False)
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_cells(p, t, r, q, dz, threshold, rh, mask, lwp):  # pragma: no cover - compiled
         nz, ny, nx = t.shape
         for j in prange(ny):
@@ -161,7 +171,7 @@ if HAVE_NUMBA:
                     lwp[j, i] += dzk * (qk * (pk / (_RD * tv)))
                     mask[k, j, i] = 1 if qk > threshold else 0
 
-    @njit(parallel=True, cache=True, fastmath=False)
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_rh(p, t, r, out):  # pragma: no cover - compiled
         nz, ny, nx = t.shape
         for kj in prange(nz * ny):

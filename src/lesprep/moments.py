@@ -91,6 +91,7 @@ __all__ = [
     "block_moments",
     "check_factor",
     "divisors",
+    "hierarchical_fractions",
     "hierarchical_moments",
     "merge_blocks",
     "plan_hierarchy",
@@ -334,6 +335,7 @@ class BlockMoments:
         dtype: npt.DTypeLike = np.float64,
         *,
         out: tuple[np.ndarray, np.ndarray] | None = None,
+        mean_out: np.ndarray | None = None,
         engine: Engine = "auto",
     ) -> tuple[np.ndarray, np.ndarray]:
         """:meth:`variance` and :meth:`skewness` in one pass, stored as ``dtype``.
@@ -343,7 +345,8 @@ class BlockMoments:
         numpy engine (the reference) calls :meth:`variance` and :meth:`skewness`.
 
         ``out`` may give two C-contiguous arrays of the shape of :attr:`mean` to write into
-        (their dtype then wins over ``dtype``).
+        (their dtype then wins over ``dtype``). ``mean_out``, an array of that shape, also
+        receives :attr:`mean` rounded to its dtype in the same pass.
 
         Returns
         -------
@@ -360,10 +363,15 @@ class BlockMoments:
             var, skew = out
             if var.shape != shape or skew.shape != shape:
                 raise InputError(f"out arrays must have shape {shape}")
-        fast = all(a.flags.c_contiguous and a.dtype.char in "fd" for a in (var, skew))
-        if eng == "numpy" or not fast:
+        if mean_out is not None and mean_out.shape != shape:
+            raise InputError(f"mean_out must have shape {shape}, found {mean_out.shape}")
+        targets = (var, skew) if mean_out is None else (var, skew, mean_out)
+        fast = all(a.flags.c_contiguous and a.dtype.char in "fd" for a in targets)
+        if eng == "numpy" or not fast or (mean_out is not None and mean_out.dtype != var.dtype):
             var[...] = self.variance()
             skew[...] = self.skewness()
+            if mean_out is not None:
+                mean_out[...] = self.mean
             return var, skew
         flat = [np.ascontiguousarray(a, dtype=np.float64).reshape(-1) for a in self._arrays()]
         _nb_var_skew(
@@ -373,6 +381,8 @@ class BlockMoments:
             ZERO_VARIANCE_SKEWNESS,
             var.reshape(-1),
             skew.reshape(-1),
+            (var if mean_out is None else mean_out).reshape(-1),
+            mean_out is not None,
         )
         return var, skew
 
@@ -584,7 +594,27 @@ if HAVE_NUMBA:
         m3 = s3 - 3.0 * delta * s2 + 2.0 * n * delta * delta * delta
         return m0 + delta, (v if v > 0.0 else 0.0), m3
 
-    @njit(parallel=True, cache=True, fastmath=False)
+    @njit(inline="always")
+    def _nb_dev4(x0, x1, x2, x3, m0):  # pragma: no cover - compiled
+        """Second-pass sums of four cells, in the order of the row-wise loops."""
+        s1 = 0.0
+        s2 = 0.0
+        s3 = 0.0
+        for x in (x0, x1, x2, x3):
+            d = x - m0
+            d2 = d * d
+            s1 += d
+            s2 += d2
+            s3 += d2 * d
+        return s1, s2, s3
+
+    @njit(inline="always")
+    def _nb_merge1(cm, c2, c3, m0, nc, s1, a2, a3):  # pragma: no cover - compiled
+        """Add one child (mean, M2, M3) to the merge sums, as the row-wise loop does."""
+        d = cm - m0
+        return s1 + d, a2 + (c2 + nc * d * d), a3 + (c3 + 3.0 * d * c2 + nc * d * d * d)
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_moments(a, f, mean, m2, m3):  # pragma: no cover - compiled
         planes, ny, nx = a.shape
         nby = ny // f
@@ -597,7 +627,21 @@ if HAVE_NUMBA:
             o1 = mean[p, bi]
             o2 = m2[p, bi]
             o3 = m3[p, bi]
-            if f <= _ROWWISE_MAX:
+            if f == 2:  # the same sums with a constant stride, which LLVM vectorises
+                ra = a[p, r0]
+                rb = a[p, r0 + 1]
+                for bj in range(nbx):
+                    x0, x1 = ra[2 * bj], ra[2 * bj + 1]
+                    x2, x3 = rb[2 * bj], rb[2 * bj + 1]
+                    s = 0.0
+                    s += x0
+                    s += x1
+                    s += x2
+                    s += x3
+                    m0 = s / n
+                    s1b, s2b, s3b = _nb_dev4(x0, x1, x2, x3, m0)
+                    o1[bj], o2[bj], o3[bj] = _nb_finish(m0, s1b, s2b, s3b, n)
+            elif f <= _ROWWISE_MAX:
                 s1 = np.zeros(nbx)
                 o1[:] = 0.0
                 o2[:] = 0.0
@@ -640,7 +684,7 @@ if HAVE_NUMBA:
                             s3b += d2 * d
                     o1[bj], o2[bj], o3[bj] = _nb_finish(m0, s1b, s2b, s3b, n)
 
-    @njit(parallel=True, cache=True, fastmath=False)
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_mean(a, f, mean):  # pragma: no cover - compiled
         """The mean of _nb_moments (same sums in the same order), without M2 and M3."""
         planes, ny, nx = a.shape
@@ -652,7 +696,25 @@ if HAVE_NUMBA:
             bi = t - p * nby
             r0 = bi * f
             o1 = mean[p, bi]
-            if f <= _ROWWISE_MAX:
+            if f == 2:
+                ra = a[p, r0]
+                rb = a[p, r0 + 1]
+                for bj in range(nbx):
+                    x0, x1 = ra[2 * bj], ra[2 * bj + 1]
+                    x2, x3 = rb[2 * bj], rb[2 * bj + 1]
+                    s = 0.0
+                    s += x0
+                    s += x1
+                    s += x2
+                    s += x3
+                    m0 = s / n
+                    s1b = 0.0
+                    s1b += x0 - m0
+                    s1b += x1 - m0
+                    s1b += x2 - m0
+                    s1b += x3 - m0
+                    o1[bj] = m0 + s1b / n
+            elif f <= _ROWWISE_MAX:
                 s1 = np.zeros(nbx)
                 o1[:] = 0.0
                 for r in range(r0, r0 + f):
@@ -683,7 +745,7 @@ if HAVE_NUMBA:
                             s1b += a[p, r, c] - m0
                     o1[bj] = m0 + s1b / n
 
-    @njit(parallel=True, cache=True, fastmath=False)
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_merge(cmean, cm2, cm3, nc, k, mean, m2, m3):  # pragma: no cover - compiled
         planes, nyc, nxc = cmean.shape
         nyp = nyc // k
@@ -697,7 +759,28 @@ if HAVE_NUMBA:
             o1 = mean[p, bi]
             o2 = m2[p, bi]
             o3 = m3[p, bi]
-            if k <= _ROWWISE_MAX:
+            if k == 2:  # constant stride, as in _nb_moments
+                ma, mb = cmean[p, r0], cmean[p, r0 + 1]
+                va, vb = cm2[p, r0], cm2[p, r0 + 1]
+                wa, wb = cm3[p, r0], cm3[p, r0 + 1]
+                for bj in range(nxp):
+                    i0 = 2 * bj
+                    i1 = i0 + 1
+                    s = 0.0
+                    s += ma[i0]
+                    s += ma[i1]
+                    s += mb[i0]
+                    s += mb[i1]
+                    m0 = s / kk
+                    s1b = 0.0
+                    a2 = 0.0
+                    a3 = 0.0
+                    s1b, a2, a3 = _nb_merge1(ma[i0], va[i0], wa[i0], m0, nc, s1b, a2, a3)
+                    s1b, a2, a3 = _nb_merge1(ma[i1], va[i1], wa[i1], m0, nc, s1b, a2, a3)
+                    s1b, a2, a3 = _nb_merge1(mb[i0], vb[i0], wb[i0], m0, nc, s1b, a2, a3)
+                    s1b, a2, a3 = _nb_merge1(mb[i1], vb[i1], wb[i1], m0, nc, s1b, a2, a3)
+                    o1[bj], o2[bj], o3[bj] = _nb_finish(m0, nc * s1b, a2, a3, n)
+            elif k <= _ROWWISE_MAX:
                 s1 = np.zeros(nxp)
                 o1[:] = 0.0
                 o2[:] = 0.0
@@ -744,19 +827,58 @@ if HAVE_NUMBA:
                             a3 += cm3[p, r, c] + 3.0 * d * c2 + nc * d * d * d
                     o1[bj], o2[bj], o3[bj] = _nb_finish(m0, nc * s1b, a2, a3, n)
 
-    @njit(parallel=True, cache=True, fastmath=False)
-    def _nb_var_skew(mean, m2, m3, n, tiny_rel, zero, var, skew):  # pragma: no cover
-        """Same operations as BlockMoments.variance/skewness, per element."""
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def _nb_count(a, f, nonzero, out):  # pragma: no cover - compiled
+        """Per f x f block of the integer planes ``a``: the number of nonzero cells
+        (``nonzero``) or the sum of the values (counts of finer blocks)."""
+        planes, ny, nx = a.shape
+        nby = ny // f
+        nbx = nx // f
+        for t in prange(planes * nby):
+            p = t // nby
+            bi = t - p * nby
+            o = out[p, bi]
+            if f == 2:  # constant stride, which LLVM vectorises
+                ra = a[p, 2 * bi]
+                rb = a[p, 2 * bi + 1]
+                if nonzero:
+                    for bj in range(nbx):
+                        o[bj] = (
+                            np.int64(ra[2 * bj] != 0)
+                            + np.int64(ra[2 * bj + 1] != 0)
+                            + np.int64(rb[2 * bj] != 0)
+                            + np.int64(rb[2 * bj + 1] != 0)
+                        )
+                else:
+                    for bj in range(nbx):
+                        o[bj] = ra[2 * bj] + ra[2 * bj + 1] + rb[2 * bj] + rb[2 * bj + 1]
+                continue
+            o[:] = 0
+            for r in range(bi * f, bi * f + f):
+                row = a[p, r]
+                for c in range(f):
+                    if nonzero:
+                        for bj in range(nbx):
+                            o[bj] += row[bj * f + c] != 0
+                    else:
+                        for bj in range(nbx):
+                            o[bj] += row[bj * f + c]
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def _nb_var_skew(mean, m2, m3, n, tiny_rel, zero, var, skew, mean_out, with_mean):
+        """Same operations as BlockMoments.variance/skewness, per element (and the mean
+        rounded into ``mean_out`` when ``with_mean``)."""  # pragma: no cover - compiled
         for i in prange(mean.size):
+            m = mean[i]
             v = m2[i] / n
             var[i] = v
-            tiny = mean[i] * tiny_rel
+            tiny = m * tiny_rel
             tiny = tiny * tiny
             denom = np.sqrt(v) * v
-            if v <= tiny or denom == 0.0:
-                skew[i] = zero
-            else:
-                skew[i] = (m3[i] / n) / denom
+            g = (m3[i] / n) / denom
+            skew[i] = zero if (v <= tiny or denom == 0.0) else g
+            if with_mean:
+                mean_out[i] = m
 
 
 # --------------------------------------------------------------------------------------
@@ -874,6 +996,63 @@ def block_mean(a: np.ndarray, factor: int, *, engine: Engine = "auto") -> np.nda
 
     _run(_work_items(arr, eng), work, eng)
     return out.reshape((*lead, ny // f, nx // f))
+
+
+def hierarchical_fractions(
+    mask: np.ndarray, factors: Iterable[int], *, engine: Engine = "auto"
+) -> dict[int, np.ndarray]:
+    """Fraction of nonzero cells in each block, for several factors, from exact counts.
+
+    The cells of a mask (boolean or integer, e.g. the canonical 0/1 ``int8`` cloud mask)
+    are counted per block as integers, coarser factors by adding the counts of the
+    factor :func:`plan_hierarchy` picks; each fraction is ``count / f**2`` rounded once.
+    It equals ``block_mean(mask != 0, f)`` to float64 round-off.
+
+    Parameters
+    ----------
+    mask
+        Boolean or integer array ``(..., ny, nx)``, horizontal dimensions last.
+    factors
+        Block factors dividing ``ny`` and ``nx``.
+    engine
+        ``"auto"``, ``"numba"`` or ``"numpy"``.
+
+    Returns
+    -------
+    dict
+        ``{factor: float64 fractions of shape (..., ny/f, nx/f)}`` in increasing order.
+
+    Examples
+    --------
+    >>> m = np.array([[1, 0, 0, 0], [1, 1, 0, 0]], dtype=np.int8)
+    >>> {f: v.tolist() for f, v in hierarchical_fractions(m, [1, 2]).items()}
+    {1: [[1.0, 0.0, 0.0, 0.0], [1.0, 1.0, 0.0, 0.0]], 2: [[0.75, 0.0]]}
+    """
+    arr = np.asarray(mask)
+    if arr.dtype.kind not in "biu":
+        raise InputError(f"a mask must be boolean or integer, found dtype {arr.dtype}")
+    factor_list = list(factors)
+    for factor in factor_list:
+        _check_horizontal(arr.shape, factor)
+    plan = plan_hierarchy(factor_list)
+    eng = _resolve_engine(engine)
+    lead = arr.shape[:-2]
+    ny, nx = arr.shape[-2:]
+    cells = np.ascontiguousarray(arr.view(np.uint8) if arr.dtype == bool else arr)
+    cells = cells.reshape(-1, ny, nx)
+    counts: dict[int, np.ndarray] = {}
+    for f, parent in plan.items():
+        src, k = (cells, f) if parent is None else (counts[parent], f // parent)
+        if eng == "numba":
+            c = np.empty((src.shape[0], src.shape[1] // k, src.shape[2] // k), np.int64)
+            _nb_count(src, k, parent is None, c)
+        else:
+            nz = src if parent is not None else (src != 0)
+            c = nz.reshape(src.shape[0], src.shape[1] // k, k, src.shape[2] // k, k).sum(
+                axis=(2, 4), dtype=np.int64
+            )
+        counts[f] = c
+    return {f: (c / float(f * f)).reshape((*lead, ny // f, nx // f)) for f, c in counts.items()}
 
 
 def merge_blocks(child: BlockMoments, k: int, *, engine: Engine = "auto") -> BlockMoments:

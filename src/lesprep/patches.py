@@ -54,37 +54,70 @@ def extract_patches(
     halo: int = 0,
     *,
     dtype: npt.DTypeLike = np.float64,
+    means: NDArray[np.floating] | None = None,
+    out: NDArray[np.floating] | None = None,
 ) -> NDArray[np.floating]:
     """Patches of a ``(..., ny, nx)`` field: ``(..., ny/f, nx/f, p, p)`` of ``dtype``.
 
     Native patches copy the fine values (exact in any dtype that holds them); downsampled
     patches are float64 block means rounded to ``dtype``.
+
+    Parameters
+    ----------
+    field
+        The fine field, horizontal dimensions last.
+    factor, size, halo
+        Block factor, patch size and halo in fine cells (:func:`patch_geometry`).
+    dtype
+        dtype of the result (ignored when ``out`` is given).
+    means
+        For downsampled patches, the block means of ``field`` for the downsampling
+        factor ``d`` if already computed (``block_mean(field, d)``: the same numbers);
+        then ``field`` itself is not read.
+    out
+        An array of the result's shape to write into (its dtype wins).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``out`` if given, else a new array.
     """
-    dt = np.dtype(dtype)
-    a = np.asarray(field)
-    if a.dtype.kind != "f":
-        a = a.astype(np.float64)
+    dt = np.dtype(dtype) if out is None else out.dtype
     d, _ = patch_geometry(factor, size, halo)
-    ny, nx = a.shape[-2:]
-    if halo:
-        pad = [(0, 0)] * (a.ndim - 2) + [(halo, halo), (halo, halo)]
-        a = np.pad(a, pad, mode="wrap")
-    if d > 1:
-        a = block_mean(a, d)
+    if d > 1 and means is not None:
+        a = np.asarray(means)
+        ny, nx = (n * d for n in a.shape[-2:])
         f, h = factor // d, halo // d
+        if h:
+            pad = [(0, 0)] * (a.ndim - 2) + [(h, h), (h, h)]
+            a = np.pad(a, pad, mode="wrap")  # d divides the halo: wrap the means
     else:
-        f, h = factor, halo
+        a = np.asarray(field)
+        if a.dtype.kind != "f":
+            a = a.astype(np.float64)
+        ny, nx = a.shape[-2:]
+        if halo:
+            pad = [(0, 0)] * (a.ndim - 2) + [(halo, halo), (halo, halo)]
+            a = np.pad(a, pad, mode="wrap")
+        if d > 1:
+            a = block_mean(a, d)
+            f, h = factor // d, halo // d
+        else:
+            f, h = factor, halo
     cy, cx = ny // factor, nx // factor
     lead = a.shape[:-2]
     if h == 0:
-        out = np.moveaxis(a.reshape(*lead, cy, f, cx, f), -3, -2)
+        view = np.moveaxis(a.reshape(*lead, cy, f, cx, f), -3, -2)
     else:
         win = 2 * h + f
-        view = np.lib.stride_tricks.sliding_window_view(a, (win, win), axis=(-2, -1))
-        out = view[..., ::f, ::f, :, :][..., :cy, :cx, :, :]
-    res = np.empty(out.shape, dtype=dt)
-    res[...] = out
-    return res
+        windows = np.lib.stride_tricks.sliding_window_view(a, (win, win), axis=(-2, -1))
+        view = windows[..., ::f, ::f, :, :][..., :cy, :cx, :, :]
+    if out is None:
+        out = np.empty(view.shape, dtype=dt)
+    elif out.shape != view.shape:
+        raise ScaleError(f"out has shape {out.shape}; the patches have shape {view.shape}")
+    out[...] = view
+    return out
 
 
 def reassemble(patches: NDArray[np.floating], halo: int = 0) -> NDArray[np.float64]:

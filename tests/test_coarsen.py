@@ -295,3 +295,43 @@ def test_slabs_and_output_dtype_do_not_change_the_numbers(profile: bool) -> None
         for name, a in d.items():
             assert f32[lab][name].dtype == np.float32
             np.testing.assert_array_equal(f32[lab][name], a.astype(np.float32), err_msg=name)
+
+
+def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
+    # A canonical store with several z-chunks, coarsened once with whole-column output
+    # chunks and once with chunks of a few levels, which coarsening writes row by row
+    # while it computes: the stored numbers are the same, only the chunking differs.
+    canon = ingest_case(
+        case="sc-ostra-02",
+        raw=str(demo_root / "sc-ostra-02" / "*.nc"),
+        varmap=REPO / "config/varmaps/flavour-beta.yaml",
+        settings=IngestSettings(spinup="1 h", cloud_threshold="1e-5 kg/kg", chunk_mib=0.02),
+        out=tmp_path / "canonical.zarr",
+    )
+    fine = open_store(canon)
+    nz, slab = fine.sizes["z"], fine["qc"].encoding["chunks"][1]
+    assert slab < nz
+    labels = ["100m", "400m"]
+    stores = {}
+    for mib in (1000.0, 0.001):
+        settings = CoarsenSettings(
+            scales=tuple(parse_scales(["100 m", "400 m"])),
+            patch_scales=("400m",),
+            patch_size=4,
+            chunk_mib=mib,
+        )
+        outs = {lab: tmp_path / f"{mib}-{lab}.zarr" for lab in labels}
+        coarsen_case(canon, outs, settings)
+        stores[mib] = {lab: open_store(p) for lab, p in outs.items()}
+    for lab in labels:
+        whole, rows = stores[1000.0][lab], stores[0.001][lab]
+        assert set(whole.data_vars) == set(rows.data_vars)
+        for name in whole.data_vars:
+            np.testing.assert_array_equal(rows[name].values, whole[name].values, err_msg=name)
+            if whole[name].ndim >= 4:
+                assert whole[name].encoding["chunks"][1] == nz
+        for name in rows.data_vars:
+            if rows[name].ndim >= 4:  # whole multiples of the canonical chunk height
+                zc = rows[name].encoding["chunks"][1]
+                assert zc == nz or zc % slab == 0, name
+    assert stores[0.001]["100m"]["qc_mean"].encoding["chunks"][1] < nz  # rows were streamed

@@ -101,7 +101,7 @@ class CoarsenSettings:
     on_misfit: str = "error"
     rh_critical: float = 0.8
     dtype: str = "float32"
-    chunk_mib: float = 32.0
+    chunk_mib: float = 8.0
     store: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
@@ -140,7 +140,7 @@ def settings_from_config(cfg: Mapping[str, Any], labels: Sequence[str]) -> Coars
         on_misfit=c.get("on_misfit", "error"),
         rh_critical=float(c.get("baseline_rh_critical", 0.8)),
         dtype=cfg["ingest"].get("dtype", "float32"),
-        chunk_mib=float(cfg["ingest"].get("chunk_mib", 32)),
+        chunk_mib=float(c.get("chunk_mib", 8)),
         store=dict(cfg.get("store", {})),
     )
 
@@ -168,6 +168,53 @@ def slab_bounds(nz: int, levels: int) -> list[tuple[int, int]]:
     return [(z0, min(nz, z0 + step)) for z0 in range(0, nz, step)]
 
 
+def z_chunk_levels(shape: Sequence[int], itemsize: int, chunk_mib: float, slab: int) -> int:
+    """Levels per z-chunk of a coarse ``(nz, ...)`` output array.
+
+    About ``chunk_mib`` MiB, as a whole multiple of the slab height ``slab`` (the
+    canonical chunk height coarsening reads at a time) or, for levels so large that a
+    slab exceeds the budget, one slab: every chunk row is then finished by one slab and
+    can be written while the next is computed. A column that fits is one chunk.
+    """
+    nz = int(shape[0])
+    per_level = max(1, int(np.prod(shape[1:])) * int(itemsize))
+    budget = int(chunk_mib * 2**20 // per_level)
+    if budget >= nz:
+        return nz
+    return max(1, min(nz, int(slab) * max(1, budget // int(slab))))
+
+
+class ZPieces:
+    """A ``(nz, ...)`` output kept as one array per z-chunk row, each allocated when a
+    slab first writes into it and handed on (:meth:`take_complete`) once it is full."""
+
+    def __init__(self, shape: tuple[int, ...], dtype: npt.DTypeLike, rows: int) -> None:
+        self.shape = tuple(shape)
+        self.ndim = len(self.shape)
+        self.dtype = np.dtype(dtype)
+        self.rows = int(rows)
+        self.pieces: dict[int, np.ndarray] = {}
+
+    def __getitem__(self, sl: slice) -> np.ndarray:
+        z0, z1 = int(sl.start), int(sl.stop)
+        start = (z0 // self.rows) * self.rows
+        end = min(self.shape[0], start + self.rows)
+        if z1 > end:
+            raise ValueError(f"levels {z0}:{z1} cross the z-chunk boundary at {end}")
+        piece = self.pieces.get(start)
+        if piece is None:
+            piece = self.pieces[start] = np.empty((end - start, *self.shape[1:]), self.dtype)
+        return piece[z0 - start : z1 - start]
+
+    def __setitem__(self, sl: slice, value: Any) -> None:
+        self[sl][...] = value
+
+    def take_complete(self, upto: int) -> list[tuple[int, np.ndarray]]:
+        """Pop the pieces that end at or below level ``upto``: ``(first level, array)``."""
+        done = [z for z, a in self.pieces.items() if z + a.shape[0] <= upto]
+        return [(z, self.pieces.pop(z)) for z in sorted(done)]
+
+
 class StepCoarsener:
     """Coarse fields of one output time, built from z-slabs of the fine fields.
 
@@ -189,6 +236,12 @@ class StepCoarsener:
     p_profile
         The ``(nz,)`` pressure profile when pressure is 1-D, else None (then every slab
         carries ``p``).
+    stream
+        None: every output is a whole column, returned by :meth:`finish`. Else
+        ``(chunk_mib, slab)``: 3-D and patch outputs whose column needs more than one
+        z-chunk (:func:`z_chunk_levels`) are kept as :class:`ZPieces` and each finished
+        chunk row is handed out by :meth:`take_rows` as soon as a slab completes it
+        (``drh_dz``, which needs the whole column, is always returned by :meth:`finish`).
     """
 
     def __init__(
@@ -200,7 +253,10 @@ class StepCoarsener:
         *,
         dtype: npt.DTypeLike = np.float64,
         p_profile: np.ndarray | None = None,
+        stream: tuple[float, int] | None = None,
     ) -> None:
+        self.stream = stream
+        self.rows: list[tuple[str, int, dict[str, np.ndarray]]] = []
         self.z = np.asarray(z, dtype=np.float64)
         self.shape = tuple(int(n) for n in shape)
         self.scales = list(scales)
@@ -227,14 +283,27 @@ class StepCoarsener:
                 if v in st.moments:
                     names += [f"{v}_var", f"{v}_skew"]
             names += ["p_mean", "cloud_fraction", "rh_of_means", "drh_dz", "cf_sundqvist"]
-            d = {n: np.empty(c3, dtype=dt) for n in names}
+            d: dict[str, Any] = {n: self._column(n, c3) for n in names}
             for n in ("lwp_mean", "lwp_var", "cloud_cover"):
                 d[n] = np.empty(c3[1:], dtype=dt)
             if s.label in st.patch_scales:
                 _, edge = patch_geometry(f, st.patch_size, st.patch_halo)
                 for v in st.patch_variables:
-                    d[f"{v}_patch"] = np.empty((*c3, edge, edge), dtype=dt)
+                    d[f"{v}_patch"] = self._column(f"{v}_patch", (*c3, edge, edge))
             self.out[s.label] = d
+
+    def _column(self, name: str, shape: tuple[int, ...]) -> Any:
+        if self.stream is not None and name != "drh_dz":
+            rows = z_chunk_levels(shape, self.dtype.itemsize, *self.stream)
+            if rows < shape[0]:
+                return ZPieces(shape, self.dtype, rows)
+        return np.empty(shape, dtype=self.dtype)
+
+    def take_rows(self) -> list[tuple[str, int, dict[str, np.ndarray]]]:
+        """Finished z-chunk rows of streamed outputs: ``(scale label, first level,
+        {name: array})``, each given out once."""
+        rows, self.rows = self.rows, []
+        return rows
 
     def add_slab(self, z0: int, fine: Mapping[str, np.ndarray]) -> None:
         """Coarsen the levels ``z0 : z0 + k`` (``fine`` holds ``SLAB_INPUTS`` and, for 3-D
@@ -282,6 +351,13 @@ class StepCoarsener:
                     extract_patches(
                         src, f, st.patch_size, st.patch_halo, means=means, out=d[f"{v}_patch"][sl]
                     )
+        for s in self.scales:
+            ready: dict[int, dict[str, np.ndarray]] = {}
+            for name, arr in self.out[s.label].items():
+                if isinstance(arr, ZPieces):
+                    for zs, piece in arr.take_complete(z0 + k):
+                        ready.setdefault(zs, {})[name] = piece
+            self.rows.extend((s.label, zs, part) for zs, part in sorted(ready.items()))
 
     def finish(self, lwp: np.ndarray) -> dict[str, dict[str, np.ndarray]]:
         """Column quantities and ``drh_dz``; returns the step's outputs per scale label."""
@@ -295,7 +371,11 @@ class StepCoarsener:
             d["lwp_mean"][...] = lwp_m[f].mean
             d["lwp_var"][...] = lwp_m[f].variance()
             d["cloud_cover"][...] = cover[f]
-        out, self.out = self.out, {}
+        out = {
+            lab: {n: a for n, a in d.items() if not isinstance(a, ZPieces)}
+            for lab, d in self.out.items()
+        }
+        self.out = {}
         self.rh64 = {}
         return out
 
@@ -417,33 +497,31 @@ def _attrs(name: str, s: Scale, threshold: float) -> dict[str, str]:
     return table[name]
 
 
-def _dims(name: str, arr: np.ndarray) -> tuple[str, ...]:
+def _dims(name: str, arr: Any) -> tuple[str, ...]:
     if name.endswith("_patch"):
         return ("time", "z", "y", "x", "py", "px")
-    return {3: ("time", "z", "y", "x"), 2: ("time", "y", "x"), 1: ("z",)}[arr.ndim]
+    return {3: ("time", "z", "y", "x"), 2: ("time", "y", "x")}[arr.ndim]
 
 
 def _layout(
     canon: xr.Dataset,
     s: Scale,
-    sample: Mapping[str, np.ndarray],
+    sample: Mapping[str, Any],
     settings: CoarsenSettings,
     threshold: float,
+    slab: int,
 ) -> dict[str, ArraySpec]:
     nt = canon.sizes["time"]
     dtype = np.dtype(settings.dtype)
     out: dict[str, ArraySpec] = {}
     for name, arr in sample.items():
         dims = _dims(name, arr)
-        if dims == ("z",):
-            shape, chunks = arr.shape, arr.shape
+        shape = (nt, *arr.shape)
+        if arr.ndim >= 3:
+            zc = z_chunk_levels(arr.shape, dtype.itemsize, settings.chunk_mib, slab)
+            chunks = (1, zc, *arr.shape[1:])
         else:
-            shape = (nt, *arr.shape)
-            per_level = int(np.prod(arr.shape[1:])) * dtype.itemsize if arr.ndim >= 3 else 0
-            zc = arr.shape[0]
-            if per_level:
-                zc = int(max(1, min(arr.shape[0], settings.chunk_mib * 2**20 // per_level)))
-            chunks = (1, zc, *arr.shape[1:]) if arr.ndim >= 3 else (1, *arr.shape)
+            chunks = (1, *arr.shape)
         zero_fill = name.startswith("qc_") or name in ("cloud_fraction", "lwp_mean", "lwp_var")
         out[name] = ArraySpec(
             dims=dims,
@@ -609,11 +687,11 @@ def coarsen_case(
     written: dict[str, Path] = {}
     codecs = compressors(settings.store)
 
-    def create_all(shapes: Mapping[str, Mapping[str, np.ndarray]]) -> dict[str, zarr.Group]:
+    def create_all(shapes: Mapping[str, Mapping[str, Any]], slab: int) -> dict[str, zarr.Group]:
         return {
             s.label: create_store(
                 tmps[s.label],
-                _layout(canon, s, shapes[s.label], settings, threshold),
+                _layout(canon, s, shapes[s.label], settings, threshold, slab),
                 codecs=codecs,
             )
             for s in scales
@@ -638,22 +716,30 @@ def coarsen_case(
                 settings,
                 dtype=settings.dtype,
                 p_profile=reader.p_profile,
+                stream=(settings.chunk_mib, reader.levels),
             )
             last = reader.bounds[-1][0]
+            rows: list[tuple[int, str, int, dict[str, np.ndarray]]] = []
             for j, z0, slab in reader.slabs():
                 if z0 == 0:
                     step.begin()
                     if j == 0:  # create the stores (shapes known) while the first step runs
-                        creating = creator.submit(create_all, step.out)
+                        creating = creator.submit(create_all, step.out, reader.levels)
                 step.add_slab(z0, slab)
                 del slab
-                if z0 != last:
-                    continue
-                fields = step.finish(reader.lwp(j))
-                if creating is not None:
+                # finished z-chunk rows are written now (held until the stores exist)
+                rows.extend((j, lab, zs, part) for lab, zs, part in step.take_rows())
+                if creating is not None and (z0 == last or creating.done()):
                     groups = creating.result()
                     creating = None
                     writers = {lab: TimeWriter(g, limit_bytes=limit) for lab, g in groups.items()}
+                if writers:
+                    for jr, lab, zs, part in rows:
+                        writers[lab].write_rows(jr, zs, part)
+                    rows.clear()
+                if z0 != last:
+                    continue
+                fields = step.finish(reader.lwp(j))
                 for s in scales:
                     writers[s.label].add(j, fields.pop(s.label))
         for w in writers.values():

@@ -202,6 +202,8 @@ class TimeWriter:
         self.nbytes = 0
         self._pool: ThreadPoolExecutor | None = None
         self._pending: Future[None] | None = None
+        self._row_pool: ThreadPoolExecutor | None = None
+        self._row_pending: Future[None] | None = None
 
     def add(self, index: int, fields: Mapping[str, np.ndarray]) -> None:
         """Queue the arrays of time ``index`` (consecutive indices from 0)."""
@@ -238,10 +240,38 @@ class TimeWriter:
         with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
             list(pool.map(write, buf.items()))
 
+    def write_rows(self, index: int, z0: int, fields: Mapping[str, np.ndarray]) -> None:
+        """Write levels ``z0 : z0 + k`` of time ``index`` of each array in the background.
+
+        For outputs finished one z-chunk row at a time (``z0`` on a chunk boundary, ``k``
+        whole chunks or up to the end): the row is written while the caller computes the
+        next one. At most one row write is in flight; a failed one is re-raised by the
+        next call or by :meth:`flush`.
+        """
+        self._wait_rows()
+        if self._row_pool is None:
+            self._row_pool = ThreadPoolExecutor(max_workers=1)
+        self._row_pending = self._row_pool.submit(self._write_rows, index, z0, dict(fields))
+
+    def _write_rows(self, index: int, z0: int, fields: dict[str, np.ndarray]) -> None:
+        def write(item: tuple[str, np.ndarray]) -> None:
+            name, arr = item
+            self.group[name][index, z0 : z0 + arr.shape[0]] = arr
+
+        with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
+            list(pool.map(write, fields.items()))
+
+    def _wait_rows(self) -> None:
+        if self._row_pending is not None:
+            pending, self._row_pending = self._row_pending, None
+            pending.result()
+
     def flush(self) -> None:
         """Write what is buffered and wait until every write is done."""
         self._submit()
         self._wait()
-        if self._pool is not None:
-            self._pool.shutdown(wait=True)
-            self._pool = None
+        self._wait_rows()
+        for pool in (self._pool, self._row_pool):
+            if pool is not None:
+                pool.shutdown(wait=True)
+        self._pool = self._row_pool = None

@@ -20,9 +20,10 @@ from .store import dir_size_bytes
 MiB = 2**20
 # float64-sized copies of one fine time step held by a job, by stage. Measured peaks at
 # 512 x 512 x 160 (one step of one variable = 320 MiB in float64): ingest 4.9 GB; coarsening
-# with 9 scales and 2 patch scales 6.2 GB (its outputs of one step, written while the next
-# is computed, dominate; its float64 work arrays are sized by a z-slab).
-_WORKING_COPIES = {"demo": 12, "ingest": 14, "coarsen": 20, "sets": 4}
+# with 9 scales and 2 patch scales 2.8 GB (finished chunk rows are written while the next
+# slab is computed, so only the coarse scales hold a whole step; its float64 work arrays
+# are sized by a z-slab). The coarsening figure keeps a margin for taller slabs.
+_WORKING_COPIES = {"demo": 12, "ingest": 14, "coarsen": 10, "sets": 4}
 _BASE_MB = {"demo": 600, "ingest": 700, "coarsen": 800, "sets": 700}
 # throughput floor used for the runtime request, MB/s of input content
 _MB_PER_S = {"demo": 20, "ingest": 40, "coarsen": 40, "sets": 40}

@@ -335,3 +335,24 @@ def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
                 zc = rows[name].encoding["chunks"][1]
                 assert zc == nz or zc % slab == 0, name
     assert stores[0.001]["100m"]["qc_mean"].encoding["chunks"][1] < nz  # rows were streamed
+
+
+def test_z_chunks_are_whole_slabs_near_the_budget():
+    from lesprep.coarsen import ZPieces, z_chunk_levels
+
+    # 256 x 256 float32 levels are 256 KiB: 8 MiB is 32 levels, one 32-level slab
+    assert z_chunk_levels((160, 256, 256), 4, 8.0, 32) == 32
+    assert z_chunk_levels((160, 128, 128), 4, 8.0, 32) == 128  # 4 slabs
+    assert z_chunk_levels((160, 64, 64), 4, 8.0, 32) == 160  # the column fits
+    assert z_chunk_levels((160, 1024, 1024), 4, 1.0, 32) == 32  # never below one slab
+    assert z_chunk_levels((100, 256, 256), 4, 24.0, 32) == 96  # 3 slabs; last row is short
+    pieces = ZPieces((10, 2, 2), np.float32, 4)
+    pieces[0:4] = 1.0
+    pieces[4:6] = 2.0
+    with pytest.raises(ValueError, match="cross the z-chunk boundary"):
+        pieces[6:9]
+    done = pieces.take_complete(6)
+    assert [z for z, _ in done] == [0] and np.all(done[0][1] == 1.0)
+    pieces[6:8] = 3.0
+    pieces[8:10] = 4.0
+    assert [(z, a.shape[0]) for z, a in pieces.take_complete(10)] == [(4, 4), (8, 2)]

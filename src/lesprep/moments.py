@@ -595,6 +595,16 @@ if HAVE_NUMBA:
         return m0 + delta, (v if v > 0.0 else 0.0), m3
 
     @njit(inline="always")
+    def _nb_mean4(x0, x1, x2, x3, n):  # pragma: no cover - compiled
+        """First-pass mean of four cells, summed in the order of the row-wise loops."""
+        s = 0.0
+        s += x0
+        s += x1
+        s += x2
+        s += x3
+        return s / n
+
+    @njit(inline="always")
     def _nb_dev4(x0, x1, x2, x3, m0):  # pragma: no cover - compiled
         """Second-pass sums of four cells, in the order of the row-wise loops."""
         s1 = 0.0
@@ -633,12 +643,7 @@ if HAVE_NUMBA:
                 for bj in range(nbx):
                     x0, x1 = ra[2 * bj], ra[2 * bj + 1]
                     x2, x3 = rb[2 * bj], rb[2 * bj + 1]
-                    s = 0.0
-                    s += x0
-                    s += x1
-                    s += x2
-                    s += x3
-                    m0 = s / n
+                    m0 = _nb_mean4(x0, x1, x2, x3, n)
                     s1b, s2b, s3b = _nb_dev4(x0, x1, x2, x3, m0)
                     o1[bj], o2[bj], o3[bj] = _nb_finish(m0, s1b, s2b, s3b, n)
             elif f <= _ROWWISE_MAX:
@@ -702,17 +707,8 @@ if HAVE_NUMBA:
                 for bj in range(nbx):
                     x0, x1 = ra[2 * bj], ra[2 * bj + 1]
                     x2, x3 = rb[2 * bj], rb[2 * bj + 1]
-                    s = 0.0
-                    s += x0
-                    s += x1
-                    s += x2
-                    s += x3
-                    m0 = s / n
-                    s1b = 0.0
-                    s1b += x0 - m0
-                    s1b += x1 - m0
-                    s1b += x2 - m0
-                    s1b += x3 - m0
+                    m0 = _nb_mean4(x0, x1, x2, x3, n)
+                    s1b = _nb_dev4(x0, x1, x2, x3, m0)[0]  # (the unused sums compile away)
                     o1[bj] = m0 + s1b / n
             elif f <= _ROWWISE_MAX:
                 s1 = np.zeros(nbx)

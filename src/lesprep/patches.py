@@ -86,24 +86,18 @@ def extract_patches(
     d, _ = patch_geometry(factor, size, halo)
     if d > 1 and means is not None:
         a = np.asarray(means)
-        ny, nx = (n * d for n in a.shape[-2:])
-        f, h = factor // d, halo // d
-        if h:
-            pad = [(0, 0)] * (a.ndim - 2) + [(h, h), (h, h)]
-            a = np.pad(a, pad, mode="wrap")  # d divides the halo: wrap the means
     else:
         a = np.asarray(field)
         if a.dtype.kind != "f":
             a = a.astype(np.float64)
-        ny, nx = a.shape[-2:]
-        if halo:
-            pad = [(0, 0)] * (a.ndim - 2) + [(halo, halo), (halo, halo)]
-            a = np.pad(a, pad, mode="wrap")
         if d > 1:
             a = block_mean(a, d)
-            f, h = factor // d, halo // d
-        else:
-            f, h = factor, halo
+    # d divides the halo, so wrapping the block means by halo / d gives the means of the
+    # wrapped fine field's blocks
+    f, h = factor // d, halo // d
+    ny, nx = (n * d for n in a.shape[-2:])
+    if h:
+        a = np.pad(a, [(0, 0)] * (a.ndim - 2) + [(h, h), (h, h)], mode="wrap")
     cy, cx = ny // factor, nx // factor
     lead = a.shape[:-2]
     if h == 0:

@@ -13,7 +13,7 @@ import os
 import shutil
 import uuid
 import warnings
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -179,9 +179,34 @@ def create_store(
         if spec.data is not None:
             arr[...] = np.asarray(spec.data, dtype=dt)
 
-    with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
-        list(pool.map(create, arrays.items()))
+    _each_array(create, arrays.items())
     return root
+
+
+class _InFlight:
+    """One background write at a time: :meth:`submit` first waits for the previous one
+    (re-raising its failure), so memory holds at most one write's arrays in flight."""
+
+    def __init__(self) -> None:
+        self._pool: ThreadPoolExecutor | None = None
+        self._pending: Future[None] | None = None
+
+    def submit(self, fn: Callable[..., None], *args: Any) -> None:
+        self.wait()
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=1)
+        self._pending = self._pool.submit(fn, *args)
+
+    def wait(self) -> None:
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            pending.result()  # re-raises a failed write here
+
+    def close(self) -> None:
+        self.wait()
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+            self._pool = None
 
 
 class TimeWriter:
@@ -200,10 +225,8 @@ class TimeWriter:
         self.start = 0
         self.buf: dict[str, list[np.ndarray]] = {}
         self.nbytes = 0
-        self._pool: ThreadPoolExecutor | None = None
-        self._pending: Future[None] | None = None
-        self._row_pool: ThreadPoolExecutor | None = None
-        self._row_pending: Future[None] | None = None
+        self._steps = _InFlight()
+        self._rows = _InFlight()
 
     def add(self, index: int, fields: Mapping[str, np.ndarray]) -> None:
         """Queue the arrays of time ``index`` (consecutive indices from 0)."""
@@ -216,18 +239,10 @@ class TimeWriter:
             self._submit()
 
     def _submit(self) -> None:
-        self._wait()
         if self.buf:
-            if self._pool is None:
-                self._pool = ThreadPoolExecutor(max_workers=1)
-            self._pending = self._pool.submit(self._write, self.start, self.buf)
+            self._steps.submit(self._write, self.start, self.buf)
         self.buf = {}
         self.nbytes = 0
-
-    def _wait(self) -> None:
-        if self._pending is not None:
-            pending, self._pending = self._pending, None
-            pending.result()  # re-raises a failed write here
 
     def _write(self, start: int, buf: dict[str, list[np.ndarray]]) -> None:
         def write(item: tuple[str, list[np.ndarray]]) -> None:
@@ -237,8 +252,7 @@ class TimeWriter:
             else:
                 self.group[name][start : start + len(steps)] = np.stack(steps)
 
-        with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
-            list(pool.map(write, buf.items()))
+        _each_array(write, buf.items())
 
     def write_rows(self, index: int, z0: int, fields: Mapping[str, np.ndarray]) -> None:
         """Write levels ``z0 : z0 + k`` of time ``index`` of each array in the background.
@@ -248,30 +262,23 @@ class TimeWriter:
         next one. At most one row write is in flight; a failed one is re-raised by the
         next call or by :meth:`flush`.
         """
-        self._wait_rows()
-        if self._row_pool is None:
-            self._row_pool = ThreadPoolExecutor(max_workers=1)
-        self._row_pending = self._row_pool.submit(self._write_rows, index, z0, dict(fields))
+        self._rows.submit(self._write_rows, index, z0, dict(fields))
 
     def _write_rows(self, index: int, z0: int, fields: dict[str, np.ndarray]) -> None:
         def write(item: tuple[str, np.ndarray]) -> None:
             name, arr = item
             self.group[name][index, z0 : z0 + arr.shape[0]] = arr
 
-        with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
-            list(pool.map(write, fields.items()))
-
-    def _wait_rows(self) -> None:
-        if self._row_pending is not None:
-            pending, self._row_pending = self._row_pending, None
-            pending.result()
+        _each_array(write, fields.items())
 
     def flush(self) -> None:
         """Write what is buffered and wait until every write is done."""
         self._submit()
-        self._wait()
-        self._wait_rows()
-        for pool in (self._pool, self._row_pool):
-            if pool is not None:
-                pool.shutdown(wait=True)
-        self._pool = self._row_pool = None
+        self._steps.close()
+        self._rows.close()
+
+
+def _each_array(write: Callable[[Any], None], items: Iterable[Any]) -> None:
+    """``write`` every item, several arrays at a time (storage latency, not CPU)."""
+    with ThreadPoolExecutor(max_workers=_IO_THREADS) as pool:
+        list(pool.map(write, items))

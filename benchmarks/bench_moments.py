@@ -26,10 +26,10 @@ from pathlib import Path
 import numpy as np
 
 try:
-    from lesprep import moments
+    from lesprep.scales import moments
 except ImportError:  # running from a checkout without an installed package
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
-    from lesprep import moments
+    from lesprep.scales import moments
 
 METHODS = ("hierarchical", "direct")
 

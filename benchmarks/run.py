@@ -176,7 +176,7 @@ def w_touch(*, gib: float = 1.0) -> dict[str, Any]:
 def w_generate(*, nx: int, ny: int, nz: int, ntimes: int, root: str, skip: bool) -> dict:
     """Write the demo archive unless ``root/<case>/manifest.json`` has the same spec."""
     _import_lesprep()
-    from lesprep.demo import GENERATOR_VERSION, demo_case, write_demo_case
+    from lesprep.demo.physics import GENERATOR_VERSION, demo_case, write_demo_case
 
     spec = demo_case(CASE).with_size(nx=nx, ny=ny, nz=nz, ntimes=ntimes)
     folder = Path(root) / CASE
@@ -250,8 +250,8 @@ def w_extend(*, files: list[str], out: str, copies: int) -> dict[str, Any]:
 
 
 def _ingest_settings() -> Any:
-    from lesprep.checks import resolve_ranges
-    from lesprep.ingest import IngestSettings
+    from lesprep.canonical.ingest import IngestSettings
+    from lesprep.raw.checks import resolve_ranges
 
     return IngestSettings(
         spinup=SPINUP, cloud_threshold=THRESHOLD, ranges=resolve_ranges(None), store=dict(STORE)
@@ -259,8 +259,8 @@ def _ingest_settings() -> Any:
 
 
 def _coarsen_settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
-    from lesprep.coarsen import CoarsenSettings
-    from lesprep.scales import parse_scale, parse_scales
+    from lesprep.scales.coarsen import CoarsenSettings
+    from lesprep.scales.spec import parse_scale, parse_scales
 
     return CoarsenSettings(
         scales=tuple(parse_scales(list(scales))),
@@ -276,8 +276,8 @@ def w_jit_warm() -> dict[str, Any]:
     _import_lesprep()
     import numpy as np
 
-    from lesprep.coarsen import coarse_fields
-    from lesprep.scales import parse_scales
+    from lesprep.scales.coarsen import coarse_fields
+    from lesprep.scales.spec import parse_scales
 
     t0 = time.perf_counter()
     rng = np.random.default_rng(0)
@@ -298,8 +298,8 @@ def w_jit_warm() -> dict[str, Any]:
 
 def _warm_ingest_kernels(np: Any) -> None:
     """Compile (or load) the kernels ingest uses, for float32 raw data."""
-    from lesprep.derived import cell_diagnostics
-    from lesprep.grid import destagger_vertical
+    from lesprep.canonical.derived import cell_diagnostics
+    from lesprep.raw.grid import destagger_vertical
     from lesprep.units import Conversion
 
     a = np.ones((4, 8, 8), dtype=np.float32)
@@ -312,9 +312,9 @@ def _warm_ingest_kernels(np: Any) -> None:
 
 
 def w_ingest(*, files: list[str], out: str) -> dict[str, Any]:
-    """lesprep.ingest.ingest_case on the archive."""
+    """lesprep.canonical.ingest.ingest_case on the archive."""
     _import_lesprep()
-    from lesprep.ingest import ingest_case
+    from lesprep.canonical.ingest import ingest_case
 
     settings = _ingest_settings()
     t0 = time.perf_counter()
@@ -437,10 +437,10 @@ def w_ingest_floor(*, files: list[str], canonical: str, out: str) -> dict[str, A
 def w_coarsen(
     *, canonical: str, outdir: str, scales: list[str], patch_scales: list[str]
 ) -> dict[str, Any]:
-    """lesprep.coarsen.coarsen_case for every scale of the case in one call."""
+    """lesprep.scales.coarsen.coarsen_case for every scale of the case in one call."""
     _import_lesprep()
-    from lesprep.coarsen import coarsen_case
-    from lesprep.scales import parse_scale
+    from lesprep.scales.coarsen import coarsen_case
+    from lesprep.scales.spec import parse_scale
 
     settings = _coarsen_settings(scales, patch_scales)
     outputs = {
@@ -1193,7 +1193,7 @@ class Suite:
         self.lesprep_dir = self.data / "lesprep"
         env = dict(kv.split("=", 1) for kv in args.worker_env)
         self.r = Runner(Path(args.out), Path(args.json), args.step_timeout, env)
-        self.dx = 50.0  # the demo cases' spacing (lesprep.demo.DemoCase.dx)
+        self.dx = 50.0  # the demo cases' spacing (lesprep.demo.physics.DemoCase.dx)
         self.scales = scale_texts(args.nx, args.ny, self.dx)
         self.labels = [label_of(float(s.split()[0])) for s in self.scales]
         factors = power_factors(args.nx, args.ny)

@@ -15,9 +15,9 @@ import netCDF4
 import pytest
 import yaml
 
+from lesprep.canonical.ingest import IngestSettings, ingest_case
 from lesprep.config import prepare_config, read_case_sheet
 from lesprep.errors import ConfigError, GridError, TimeAxisError
-from lesprep.ingest import IngestSettings, ingest_case
 from lesprep.provenance import load
 from lesprep.store import open_store, stale_temporaries
 
@@ -126,7 +126,7 @@ def test_workflow_step_exits_non_zero_with_one_line(tmp_path, case_copy):
     code = (
         "import sys\n"
         "from lesprep.errors import LesprepError\n"
-        "from lesprep.ingest import IngestSettings, ingest_case\n"
+        "from lesprep.canonical.ingest import IngestSettings, ingest_case\n"
         "try:\n"
         f"    ingest_case(case='c1', raw={str(raw / '*.nc')!r}, varmap={str(VARMAP['alpha'])!r},"
         " settings=IngestSettings(spinup='1 h', cloud_threshold='1e-5 kg/kg', ranges={'qc': "

@@ -1,4 +1,4 @@
-"""Tests of lesprep.baseline against hand-computed values of the Sundqvist et al. (1989)
+"""Tests of lesprep.schemes against hand-computed values of the Sundqvist et al. (1989)
 formula C = 1 - sqrt((1 - RH) / (1 - RHc)) and numpy hand computations."""
 
 from __future__ import annotations
@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from lesprep.baseline import baseline_errors, sundqvist_cloud_fraction
 from lesprep.errors import ConfigError, GridError, NonFiniteError
+from lesprep.schemes import baseline_errors, sundqvist_cloud_fraction
 
 
 @pytest.mark.parametrize(

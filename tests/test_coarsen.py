@@ -10,17 +10,17 @@ import scipy.stats
 import xarray as xr
 
 from lesprep import thermo
-from lesprep.coarsen import (
+from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.errors import ScaleError
+from lesprep.provenance import load
+from lesprep.scales.coarsen import (
     CoarsenSettings,
     coarse_fields,
     coarsen_case,
     vertical_derivative,
 )
-from lesprep.errors import ScaleError
-from lesprep.ingest import IngestSettings, ingest_case
-from lesprep.patches import extract_patches, reassemble
-from lesprep.provenance import load
-from lesprep.scales import Scale, parse_scale, parse_scales
+from lesprep.scales.patches import extract_patches, reassemble
+from lesprep.scales.spec import Scale, parse_scale, parse_scales
 from lesprep.store import open_store
 
 REPO = Path(__file__).resolve().parents[1]
@@ -338,7 +338,7 @@ def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
 
 
 def test_z_chunks_are_whole_slabs_near_the_budget():
-    from lesprep.coarsen import ZPieces, z_chunk_levels
+    from lesprep.scales.coarsen import ZPieces, z_chunk_levels
 
     # 256 x 256 float32 levels are 256 KiB: 8 MiB is 32 levels, one 32-level slab
     assert z_chunk_levels((160, 256, 256), 4, 8.0, 32) == 32

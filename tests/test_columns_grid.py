@@ -7,7 +7,7 @@ import pytest
 
 from lesprep.columns import liquid_water_path
 from lesprep.errors import GridError
-from lesprep.grid import (
+from lesprep.raw.grid import (
     destagger_vertical,
     horizontal_spacing,
     layer_thickness,

@@ -20,7 +20,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from lesprep import demo, thermo
+from lesprep import thermo
+from lesprep.demo import physics as demo
 from lesprep.errors import ConfigError, InputError
 
 mpcalc = pytest.importorskip("metpy.calc")

@@ -21,14 +21,19 @@ import xarray as xr
 
 from lesprep import thermo
 from lesprep._jit import HAVE_NUMBA
-from lesprep.archive import RawFile
-from lesprep.baseline import sundqvist_cloud_fraction
-from lesprep.checks import value_extent
-from lesprep.derived import cell_diagnostics, relative_humidity
-from lesprep.grid import destagger_vertical
-from lesprep.moments import block_mean, block_moments, hierarchical_fractions, hierarchical_moments
-from lesprep.patches import extract_patches
+from lesprep.canonical.derived import cell_diagnostics, relative_humidity
 from lesprep.provenance import FileRecords, file_record
+from lesprep.raw.archive import RawFile
+from lesprep.raw.checks import value_extent
+from lesprep.raw.grid import destagger_vertical
+from lesprep.scales.moments import (
+    block_mean,
+    block_moments,
+    hierarchical_fractions,
+    hierarchical_moments,
+)
+from lesprep.scales.patches import extract_patches
+from lesprep.schemes import sundqvist_cloud_fraction
 from lesprep.units import conversion
 
 pytestmark = pytest.mark.skipif(not HAVE_NUMBA, reason="numba not importable")

@@ -23,13 +23,13 @@ from matplotlib.collections import QuadMesh
 from matplotlib.figure import Figure
 from matplotlib.patches import Rectangle, StepPatch
 
-from lesprep import figures
-from lesprep.coarsen import CoarsenSettings, coarsen_case
+from lesprep.canonical.ingest import IngestSettings, ingest_case
 from lesprep.errors import InputError
-from lesprep.ingest import IngestSettings, ingest_case
-from lesprep.scales import parse_scales
-from lesprep.sets import SetSettings, build_set
-from lesprep.splits import Assignment, write_assignment_tsv
+from lesprep.report import figures
+from lesprep.scales.coarsen import CoarsenSettings, coarsen_case
+from lesprep.scales.spec import parse_scales
+from lesprep.sets.assemble import SetSettings, build_set
+from lesprep.sets.splits import Assignment, write_assignment_tsv
 from lesprep.store import open_store
 
 REPO = Path(__file__).resolve().parents[1]

@@ -10,7 +10,8 @@ import numpy as np
 import pytest
 
 from lesprep import thermo
-from lesprep.demo import demo_fields
+from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.demo.physics import demo_fields
 from lesprep.errors import (
     ConfigError,
     GridError,
@@ -20,7 +21,6 @@ from lesprep.errors import (
     TimeAxisError,
     UnitError,
 )
-from lesprep.ingest import IngestSettings, ingest_case
 from lesprep.provenance import load
 from lesprep.store import open_store, stale_temporaries
 

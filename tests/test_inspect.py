@@ -15,13 +15,13 @@ import numpy as np
 import pytest
 import yaml
 
-from lesprep.checks import DEFAULT_RANGES
-from lesprep.demo import demo_case, write_demo_case
+from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.demo.physics import demo_case, write_demo_case
 from lesprep.errors import ConfigError, InputError
-from lesprep.ingest import IngestSettings, ingest_case
-from lesprep.inspect import draft_varmap, inspect_files
+from lesprep.raw.checks import DEFAULT_RANGES
+from lesprep.raw.survey import draft_varmap, inspect_files
+from lesprep.raw.varmap import parse_varmap
 from lesprep.store import open_store
-from lesprep.varmap import parse_varmap
 
 REPO = Path(__file__).resolve().parents[1]
 SIZE = {"nx": 16, "ny": 16, "nz": 16, "ntimes": 4}

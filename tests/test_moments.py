@@ -1,4 +1,4 @@
-"""Tests of lesprep.moments against outside references.
+"""Tests of lesprep.scales.moments against outside references.
 
 References used (named beside each check): numpy (``mean``, ``var`` with ``ddof=0``),
 ``scipy.stats.skew(bias=True)`` (the Fisher--Pearson g1), xarray's own
@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lesprep.errors import ConfigError, InputError, ScaleError
-from lesprep.moments import (
+from lesprep.scales.moments import (
     HAVE_NUMBA,
     TINY_RELATIVE_STD,
     ZERO_VARIANCE_SKEWNESS,

@@ -1,4 +1,4 @@
-"""Tests of lesprep.scenes against closed-form results, numpy and scipy.stats."""
+"""Tests of lesprep.report.scenes against closed-form results, numpy and scipy.stats."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import scipy.stats
 import xarray as xr
 
 from lesprep.errors import GridError, InputError, NonFiniteError
-from lesprep.scenes import (
+from lesprep.report.scenes import (
     SceneDescriptors,
     describe_case,
     describe_scene,

@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 import zarr
 
-from lesprep.coarsen import CoarsenSettings, coarsen_case
-from lesprep.ingest import IngestSettings, ingest_case
-from lesprep.scales import parse_scales
-from lesprep.sets import (
+from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.scales.coarsen import CoarsenSettings, coarsen_case
+from lesprep.scales.spec import parse_scales
+from lesprep.sets.assemble import (
     SetSettings,
     build_set,
     decode_category,

@@ -1,4 +1,4 @@
-"""Tests of lesprep.splits: case-level splits by a seeded hash, stratified by regime.
+"""Tests of lesprep.sets.splits: case-level splits by a seeded hash, stratified by regime.
 
 Outside references: the SHA-256 digest of Python's ``hashlib`` (FIPS 180-4) for ``u``;
 ``scipy.stats.binom`` (binomial count of hash assignments per split) and
@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from lesprep.errors import ConfigError, InputError
-from lesprep.splits import (
+from lesprep.sets.splits import (
     SPLITS,
     Assignment,
     CaseInfo,

@@ -41,5 +41,5 @@ def test_rule_scripts_are_thin() -> None:
     """Each workflow script calls one package function."""
     for script in (REPO / "workflow/scripts").glob("*.py"):
         code = [ln for ln in script.read_text().splitlines() if ln.strip()]
-        assert code[0] == "from lesprep.steps import run", script
+        assert code[0] == "from lesprep.jobs.steps import run", script
         assert len(code) == 2 and code[1].startswith("run("), script

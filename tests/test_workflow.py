@@ -8,8 +8,8 @@ import netCDF4
 import numpy as np
 import pytest
 
-from lesprep.sets import decode_category, open_set
-from lesprep.splits import read_assignment_tsv
+from lesprep.sets.assemble import decode_category, open_set
+from lesprep.sets.splits import read_assignment_tsv
 from lesprep.store import open_store
 from workflow_project import Project
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import os
 from typing import Literal
 
-from .errors import ConfigError
+from lesprep.errors import ConfigError
 
 # numba's OpenMP threading layer lets idle workers spin after every parallel kernel by
 # default. lesprep launches hundreds of short kernels per slab while its I/O threads

@@ -12,12 +12,12 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-from . import __version__
-from .errors import LesprepError
+from lesprep import __version__
+from lesprep.errors import LesprepError
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import DEMO_CASES, demo_case, write_demo_case
+    from lesprep.demo.physics import DEMO_CASES, demo_case, write_demo_case
 
     ids = args.case or [c.case for c in DEMO_CASES]
     size = {k: getattr(args, k) for k in ("nx", "ny", "nz", "ntimes") if getattr(args, k)}
@@ -31,8 +31,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_provenance(args: argparse.Namespace) -> int:
-    from .provenance import load, summarize
-    from .store import open_store
+    from lesprep.provenance import load, summarize
+    from lesprep.store import open_store
 
     ds = open_store(args.store)
     prov = load(ds.attrs)
@@ -44,7 +44,7 @@ def _cmd_provenance(args: argparse.Namespace) -> int:
 
 
 def _cmd_verify(args: argparse.Namespace) -> int:
-    from .verify import verify_results
+    from lesprep.verify.run import verify_results
 
     report = verify_results(args.results, sample_checks=args.samples, workdir=args.workdir)
     print(report.summary())
@@ -52,7 +52,7 @@ def _cmd_verify(args: argparse.Namespace) -> int:
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
-    from .inspect import draft_varmap, inspect_files
+    from lesprep.raw.survey import draft_varmap, inspect_files
 
     report = inspect_files(args.paths)
     print(report.summary())

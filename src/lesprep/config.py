@@ -1,9 +1,9 @@
 """Configuration and case sheet: loading, schema validation, defaults and hashing.
 
-The workflow validates with ``snakemake.utils.validate`` against the same schema files
-(``workflow/schemas``); this module does the same for the command line and the tests,
-filling defaults the way Snakemake does (a nested default fills only when its parent
-has ``default: {}``).
+The JSON schemas ship with the package (``lesprep/schemas``); the workflow, the command
+line and the tests all validate through this module, which fills defaults the way
+Snakemake's own validator does (a nested default fills only when its parent has
+``default: {}``).
 """
 
 from __future__ import annotations
@@ -20,11 +20,11 @@ from typing import Any
 import jsonschema
 import yaml
 
-from .errors import ConfigError
-from .units import parse_quantity
+from lesprep.errors import ConfigError
+from lesprep.units import parse_quantity
 
-SCHEMA_DIR = Path(__file__).resolve().parents[2] / "workflow" / "schemas"
-"""Folder of the JSON schemas (the workflow's own)."""
+SCHEMA_DIR = Path(__file__).resolve().parent / "schemas"
+"""Folder of the JSON schemas (installed with the package)."""
 
 CASE_COLUMNS = ("case", "regime", "varmap", "raw", "split", "spinup", "demo")
 
@@ -65,7 +65,7 @@ def validate(instance: Any, schema: Mapping[str, Any], *, what: str) -> None:
         path = ".".join(str(p) for p in err.absolute_path) or "(top level)"
         raise ConfigError(
             f"{what}: at {path}: {err.message}",
-            hint="see the schema in workflow/schemas/ for the allowed keys and values",
+            hint="see the schema in lesprep/schemas/ (installed with the package) for the allowed keys and values",
         )
 
 
@@ -77,7 +77,7 @@ def load_config(path: str | Path, *, schema_dir: Path | None = None) -> dict[str
     path
         YAML file (safe-loaded).
     schema_dir
-        Folder of the schemas; defaults to the workflow's.
+        Folder of the schemas; defaults to the package's own.
 
     Returns
     -------

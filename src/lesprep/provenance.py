@@ -25,7 +25,7 @@ from functools import cache
 from pathlib import Path
 from typing import Any
 
-from . import __version__
+from lesprep import __version__
 
 ATTR = "lesprep_provenance"
 PACKAGES = (

@@ -18,8 +18,8 @@ import numpy as np
 import pint
 from cf_xarray.units import units as _registry
 
-from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
-from .errors import ConfigError, UnitError
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
+from lesprep.errors import ConfigError, UnitError
 
 _BARE_NUMBER = re.compile(r"\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*")
 

@@ -2,14 +2,11 @@
 # small functions named for what they return.
 from pathlib import Path
 
-from snakemake.utils import validate
-
 from lesprep.config import prepare_config, read_case_sheet
 from lesprep.provenance import code_version
-from lesprep.resources import job_resources, job_threads
+from lesprep.jobs.resources import job_resources, job_threads
 
 
-validate(config, "../schemas/config.schema.yaml")
 config.update(prepare_config(config, what="config"))
 
 RESULTS = config["results"]
@@ -94,7 +91,7 @@ def canonical_stores():
 
 
 # --- coarsening -----------------------------------------------------------------------
-from lesprep.scales import parse_scales, scale_groups as _scale_groups
+from lesprep.scales.spec import parse_scales, scale_groups as _scale_groups
 
 SCALE_LABELS = [s.label for s in parse_scales(config["coarsen"]["scales"])]
 SCALE_GROUPS = _scale_groups(config["coarsen"])
@@ -134,7 +131,7 @@ def scale_stores():
 
 
 # --- splits and sets ------------------------------------------------------------------
-from lesprep.splits import CaseInfo, SplitRule, assign_splits
+from lesprep.sets.splits import CaseInfo, SplitRule, assign_splits
 
 SPLIT_RULE = SplitRule(fractions=config["splits"]["fractions"], seed=config["splits"]["seed"])
 ASSIGNMENT, SPLIT_MESSAGES = assign_splits(

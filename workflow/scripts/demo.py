@@ -1,3 +1,3 @@
-from lesprep.steps import run
+from lesprep.jobs.steps import run
 
 run("demo", snakemake)  # noqa: F821 (injected by Snakemake)

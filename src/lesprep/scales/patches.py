@@ -15,8 +15,8 @@ import numpy as np
 import numpy.typing as npt
 from numpy.typing import NDArray
 
-from .errors import ScaleError
-from .moments import block_mean, divisors
+from lesprep.errors import ScaleError
+from lesprep.scales.moments import block_mean, divisors
 
 
 def patch_geometry(factor: int, size: int, halo: int, *, scale: str = "") -> tuple[int, int]:

@@ -40,12 +40,12 @@ from matplotlib.colors import LogNorm
 from matplotlib.figure import Figure
 from numpy.typing import ArrayLike, NDArray
 
-from . import __version__, provenance
-from .baseline import baseline_errors, sundqvist_cloud_fraction
-from .errors import InputError
-from .scenes import SceneDescriptors, describe_case
-from .splits import read_assignment_tsv
-from .store import open_store
+from lesprep import __version__, provenance
+from lesprep.errors import InputError
+from lesprep.report.scenes import SceneDescriptors, describe_case
+from lesprep.schemes import baseline_errors, sundqvist_cloud_fraction
+from lesprep.sets.splits import read_assignment_tsv
+from lesprep.store import open_store
 
 __all__ = [
     "DEFAULT_RH_CRITICAL",
@@ -621,14 +621,14 @@ def baseline_skill(set_store: str | Path, *, chunk: int = _CHUNK) -> dict[str, f
         A training store (any split, one scale).
     chunk
         Samples read at a time; the per-slice results of
-        :func:`lesprep.baseline.baseline_errors` are combined exactly (weighted by their
+        :func:`lesprep.schemes.baseline_errors` are combined exactly (weighted by their
         pair counts: mean squared error, bias and mean absolute error are means).
 
     Returns
     -------
     dict
         ``rmse``, ``bias`` (positive when the baseline predicts too much cloud), ``mae``
-        and ``n`` (pairs without NaN), as :func:`lesprep.baseline.baseline_errors`;
+        and ``n`` (pairs without NaN), as :func:`lesprep.schemes.baseline_errors`;
         NaN metrics and ``n = 0`` for a store without samples.
 
     Examples
@@ -673,14 +673,14 @@ def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
     ----------
     canonical_path
         A case's canonical store; ``lwp`` and the column-cloudy field (any
-        ``cloud_mask`` over z) are passed to :func:`lesprep.scenes.describe_case` with
+        ``cloud_mask`` over z) are passed to :func:`lesprep.report.scenes.describe_case` with
         the store's ``dx`` (read one time at a time).
 
     Returns
     -------
     pandas.DataFrame
         Columns ``time`` (s since the time origin) and the fields of
-        :class:`lesprep.scenes.SceneDescriptors`, one row per kept time.
+        :class:`lesprep.report.scenes.SceneDescriptors`, one row per kept time.
 
     Examples
     --------

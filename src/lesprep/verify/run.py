@@ -26,7 +26,7 @@ finds as a :class:`Finding` (it never stops at the first one). The checks, by na
     per scale, the train store's ``normalization`` attribute and
     ``sets/normalization-<L>.json`` are identical, name split ``train`` and the scale,
     their ``cases`` equal the train store's cases, and recomputing the statistics with
-    :func:`lesprep.sets.normalization_stats` on the train store gives the same means and
+    :func:`lesprep.sets.assemble.normalization_stats` on the train store gives the same means and
     standard deviations (relative tolerance 1e-9) and counts (exactly).
 ``nan``
     no NaN or infinity where the conventions forbid one: the canonical ``qc, qv, T, w,
@@ -61,11 +61,11 @@ from typing import Any
 import numpy as np
 import zarr
 
-from . import provenance
-from .errors import InputError
-from .sets import COORDS, normalization_stats
-from .splits import SPLITS, read_assignment_tsv
-from .store import open_store
+from lesprep import provenance
+from lesprep.errors import InputError
+from lesprep.sets.assemble import COORDS, normalization_stats
+from lesprep.sets.splits import SPLITS, read_assignment_tsv
+from lesprep.store import open_store
 
 CHECKS: tuple[str, ...] = (
     "open",

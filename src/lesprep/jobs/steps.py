@@ -14,13 +14,13 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from .errors import LesprepError
+from lesprep.errors import LesprepError
 
 log = logging.getLogger("lesprep")
 
 
 def _demo(smk: Any) -> None:
-    from .demo import demo_case, write_demo_case
+    from lesprep.demo.physics import demo_case, write_demo_case
 
     out = Path(smk.output[0])
     spec = demo_case(smk.wildcards.case)
@@ -31,7 +31,7 @@ def _demo(smk: Any) -> None:
 
 
 def _ingest(smk: Any) -> None:
-    from .ingest import ingest_case, settings_from_config
+    from lesprep.canonical.ingest import ingest_case, settings_from_config
 
     p = smk.params.settings
     ingest_case(
@@ -46,7 +46,7 @@ def _ingest(smk: Any) -> None:
 
 
 def _coarsen(smk: Any) -> None:
-    from .coarsen import coarsen_case, settings_from_config
+    from lesprep.scales.coarsen import coarsen_case, settings_from_config
 
     p = smk.params.settings
     cfg = {
@@ -60,7 +60,7 @@ def _coarsen(smk: Any) -> None:
 
 
 def _splits(smk: Any) -> None:
-    from .splits import CaseInfo, SplitRule, assign_splits, write_assignment_tsv
+    from lesprep.sets.splits import CaseInfo, SplitRule, assign_splits, write_assignment_tsv
 
     p = smk.params.settings
     rule = SplitRule.from_dict(p["rule"])
@@ -72,7 +72,7 @@ def _splits(smk: Any) -> None:
 
 
 def _assemble(smk: Any) -> None:
-    from .sets import build_set, settings_from_config, write_normalization
+    from lesprep.sets.assemble import build_set, settings_from_config, write_normalization
 
     p = smk.params.settings
     cfg = {"sets": p["sets"], "ingest": {"dtype": p["dtype"]}, "store": p["store"]}
@@ -92,7 +92,7 @@ def _assemble(smk: Any) -> None:
 
 
 def _figures(smk: Any) -> None:
-    from . import figures
+    from lesprep.report import figures
 
     results = Path(smk.params.results)
     for case in smk.params.cases:
@@ -112,7 +112,7 @@ def _figures(smk: Any) -> None:
 def _tables(smk: Any) -> None:
     import shutil
 
-    from . import figures
+    from lesprep.report import figures
 
     cases = {c: p for c, p in zip(smk.params.cases, smk.input.canonical, strict=True)}
     figures.write_scenes_tsv(cases, smk.output.scenes)

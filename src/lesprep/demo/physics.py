@@ -9,7 +9,7 @@ invented "model flavours" so that the ingest stage of lesprep has real work to d
   a reference pressure from hydrostatic balance ``dp/dz = -g rho`` with
   :func:`lesprep.thermo.air_density` (steady-state profile, vapour-only density);
 * turbulence: doubly periodic Gaussian fields with a von Karman / Kolmogorov
-  ``k**(-5/3)`` horizontal spectrum (:mod:`lesprep._spectral`) times vertical sine modes
+  ``k**(-5/3)`` horizontal spectrum (:mod:`lesprep.demo.spectral`) times vertical sine modes
   of each layer, so ``w`` vanishes at the surface, the top and every layer boundary;
   moisture and ``theta_l`` anomalies are correlated with ``w`` (moist, warm updrafts);
 * organised structures: inversion undulations above updrafts (all regimes), a cellular
@@ -66,9 +66,9 @@ import netCDF4
 import numpy as np
 from numpy.typing import NDArray
 
-from . import thermo
-from ._spectral import evolving_field
-from .errors import ConfigError, InputError
+from lesprep import thermo
+from lesprep.demo.spectral import evolving_field
+from lesprep.errors import ConfigError, InputError
 
 GENERATOR_VERSION = "1"
 """Version of the generated data; bump when the fields change."""
@@ -1176,7 +1176,7 @@ def _sha256(path: Path) -> str:
 
 def _manifest(spec: DemoCase, folder: Path, names: list[str], compress: bool) -> dict[str, Any]:
     return {
-        "generator": "lesprep.demo",
+        "generator": "lesprep.demo.physics",
         "generator_version": GENERATOR_VERSION,
         "source": SOURCE,
         "case": spec.case,

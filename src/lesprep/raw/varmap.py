@@ -31,8 +31,8 @@ from typing import Any
 
 import yaml
 
-from .config import _schema, validate
-from .errors import ConfigError
+from lesprep.config import _schema, validate
+from lesprep.errors import ConfigError
 
 CANONICAL_UNITS: dict[str, str] = {
     "qc": "kg kg-1",

@@ -22,7 +22,7 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from .errors import NonFiniteError, RangeError
+from lesprep.errors import NonFiniteError, RangeError
 
 DEFAULT_RANGES: dict[str, tuple[float, float]] = {
     "qc": (0.0, 0.02),

@@ -15,7 +15,7 @@ from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
-from .store import dir_size_bytes
+from lesprep.store import dir_size_bytes
 
 MiB = 2**20
 # float64-sized copies of one fine time step held by a job, by stage. Measured peaks at

@@ -3,13 +3,13 @@
 For every kept output time the canonical fine fields are read once, one z-slab (one chunk
 height) at a time, and every scale of the job's group is computed from each slab in one
 pass: the finest factor from the fine field, each coarser factor from the moments of the
-finest computed factor dividing it (:func:`lesprep.moments.hierarchical_moments`). Only
+finest computed factor dividing it (:func:`lesprep.scales.moments.hierarchical_moments`). Only
 ``drh_dz`` and the column quantities need the whole column; they are added when a time
 step's last slab is done (:class:`StepCoarsener`). Per coarse cell ``(time, z, y, x)``:
 
 ``<v>_mean``, ``<v>_var``, ``<v>_skew``
     block mean, population variance (``M2 / n``) and skewness ``g1 = (M3/n) / var**1.5``
-    (0 where the block is constant, see :mod:`lesprep.moments`) of each moment variable.
+    (0 where the block is constant, see :mod:`lesprep.scales.moments`) of each moment variable.
 ``cloud_fraction``
     block mean of the fine cloud mask (the training target).
 ``rh_of_means``
@@ -25,7 +25,7 @@ step's last slab is done (:class:`StepCoarsener`). Per coarse cell ``(time, z, y
     column quantities: block mean and population variance of the liquid water path, and
     the fraction of fine columns with any cloudy cell.
 ``<v>_patch``
-    the fine field under each coarse cell (:mod:`lesprep.patches`).
+    the fine field under each coarse cell (:mod:`lesprep.scales.patches`).
 
 Arithmetic is float64; stored values are float32 unless the config says otherwise.
 """
@@ -45,14 +45,20 @@ import numpy.typing as npt
 import xarray as xr
 import zarr
 
-from . import derived, provenance
-from ._memory import retain_freed_memory
-from .baseline import sundqvist_cloud_fraction
-from .errors import ConfigError, ScaleError
-from .moments import block_mean, hierarchical_fractions, hierarchical_moments, plan_hierarchy
-from .patches import extract_patches, patch_geometry
-from .scales import Scale, ScaleSpec, parse_scales
-from .store import (
+from lesprep import provenance
+from lesprep._memory import retain_freed_memory
+from lesprep.canonical import derived
+from lesprep.errors import ConfigError, ScaleError
+from lesprep.scales.moments import (
+    block_mean,
+    hierarchical_fractions,
+    hierarchical_moments,
+    plan_hierarchy,
+)
+from lesprep.scales.patches import extract_patches, patch_geometry
+from lesprep.scales.spec import Scale, ScaleSpec, parse_scales
+from lesprep.schemes import sundqvist_cloud_fraction
+from lesprep.store import (
     ArraySpec,
     TimeWriter,
     atomic_path,
@@ -796,7 +802,7 @@ def coarsen_case(
 
 
 def _label(text: str) -> str:
-    from .scales import parse_scale
+    from lesprep.scales.spec import parse_scale
 
     return parse_scale(int(text) if text.isdigit() else text).label
 

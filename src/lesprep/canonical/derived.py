@@ -5,7 +5,7 @@ liquid water path from pressure, temperature, vapour and cloud water. Written as
 numpy expressions this makes a dozen full-size float64 temporaries per time step; the
 numba engine computes all three in one loop over the cells, with float64 arithmetic and
 results stored in the requested dtype. The numpy engine is the reference: it calls the
-functions of :mod:`lesprep.thermo` and :mod:`lesprep.mask` and is tested against the
+functions of :mod:`lesprep.thermo` and :mod:`lesprep.canonical.mask` and is tested against the
 compiled one.
 
 Conventions (those of :mod:`lesprep.thermo`):
@@ -24,9 +24,9 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from . import thermo
-from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
-from .mask import cloud_mask
+from lesprep import thermo
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
+from lesprep.canonical.mask import cloud_mask
 
 __all__ = ["CellDiagnostics", "cell_diagnostics", "relative_humidity"]
 

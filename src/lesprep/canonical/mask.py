@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import NDArray
 
-from .units import parse_quantity
+from lesprep.units import parse_quantity
 
 DEFAULT_THRESHOLD = "1e-5 kg/kg"
 

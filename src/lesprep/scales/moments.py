@@ -77,9 +77,9 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from ._jit import HAVE_NUMBA, Engine, njit, prange
-from ._jit import resolve_engine as _resolve_engine
-from .errors import InputError, ScaleError
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange
+from lesprep._jit import resolve_engine as _resolve_engine
+from lesprep.errors import InputError, ScaleError
 
 __all__ = [
     "HAVE_NUMBA",

@@ -21,10 +21,10 @@ import netCDF4
 import numpy as np
 import pandas as pd
 
-from .checks import value_extent
-from .errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
-from .units import ureg
-from .varmap import VariableMap
+from lesprep.errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
+from lesprep.raw.checks import value_extent
+from lesprep.raw.varmap import VariableMap
+from lesprep.units import ureg
 
 _SINCE = re.compile(r"^\s*(?P<unit>\S+)\s+since\s+(?P<ref>.+?)\s*$", re.IGNORECASE)
 
@@ -81,7 +81,7 @@ class RawVariable:
     def read_with_extent(
         self, index: dict[str, int] | None = None
     ) -> tuple[np.ndarray, tuple[int, float, float]]:
-        """:meth:`read` with ``native=True``, and :func:`~lesprep.checks.value_extent` of
+        """:meth:`read` with ``native=True``, and :func:`~lesprep.raw.checks.value_extent` of
         the result (computed on the way, no extra pass over the values)."""
         if self._packed():
             values = self.read(index)
@@ -269,7 +269,7 @@ def _coord_values(
     values = np.asarray(var.values, dtype=np.float64)
     if axis == "time":
         return values
-    from .units import conversion
+    from lesprep.units import conversion
 
     conv = conversion(
         variable=axis,
@@ -524,7 +524,7 @@ def read_field(
         The raw array (its own float dtype, float64 if packed or integer; raw dim order
         without the time dim; invalid values as NaN), the file it came from, its
         ``units`` attribute (None if missing) and ``(nonfinite, min, max)`` of the values
-        (:func:`lesprep.checks.value_extent`).
+        (:func:`lesprep.raw.checks.value_extent`).
     """
     spec = cat.varmap.variables[name]
     locs = cat.where[name]

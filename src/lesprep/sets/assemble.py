@@ -31,11 +31,11 @@ import numpy as np
 import xarray as xr
 import zarr
 
-from . import provenance
-from ._memory import retain_freed_memory
-from .errors import ConfigError
-from .store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
-from .units import parse_quantity
+from lesprep import provenance
+from lesprep._memory import retain_freed_memory
+from lesprep.errors import ConfigError
+from lesprep.store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
+from lesprep.units import parse_quantity
 
 log = logging.getLogger(__name__)
 

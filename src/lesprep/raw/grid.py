@@ -19,8 +19,8 @@ import numpy as np
 import numpy.typing as npt
 from numpy.typing import NDArray
 
-from ._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
-from .errors import GridError
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
+from lesprep.errors import GridError
 
 
 def horizontal_spacing(

@@ -102,7 +102,7 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Literal, get_args
 
-from .errors import ConfigError, InputError
+from lesprep.errors import ConfigError, InputError
 
 SPLITS: tuple[str, ...] = ("train", "validation", "test")
 """Split names in the fixed order of the cumulative hash intervals."""

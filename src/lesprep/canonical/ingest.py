@@ -16,22 +16,28 @@ from typing import Any
 
 import numpy as np
 
-from . import provenance, thermo
-from ._memory import retain_freed_memory
-from .archive import Catalogue, catalogue, read_field, resolve_files
-from .checks import DEFAULT_RANGES, check_finite, check_range, resolve_ranges, value_extent
-from .derived import cell_diagnostics
-from .errors import TimeAxisError
-from .grid import (
+from lesprep import provenance, thermo
+from lesprep._memory import retain_freed_memory
+from lesprep.canonical.derived import cell_diagnostics
+from lesprep.errors import TimeAxisError
+from lesprep.raw.archive import Catalogue, catalogue, read_field, resolve_files
+from lesprep.raw.checks import (
+    DEFAULT_RANGES,
+    check_finite,
+    check_range,
+    resolve_ranges,
+    value_extent,
+)
+from lesprep.raw.grid import (
     destagger_periodic,
     destagger_vertical,
     horizontal_spacing,
     layer_thickness,
     vertical_faces,
 )
-from .store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
-from .units import Conversion, conversion, parse_quantity
-from .varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
+from lesprep.raw.varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
+from lesprep.store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
+from lesprep.units import Conversion, conversion, parse_quantity
 
 log = logging.getLogger(__name__)
 
@@ -190,7 +196,7 @@ def canonical_step(
     float64 from the raw value and rounded once per operation to ``settings.dtype``
     (unit conversion, then destaggering or a quantity change); the derived fields are
     computed from the rounded (stored) values, so they agree with what a reader of the
-    store recomputes (:mod:`lesprep.derived`).
+    store recomputes (:mod:`lesprep.canonical.derived`).
     """
     vm: VariableMap = cat.varmap
     t = float(cat.times[time_index])

@@ -14,7 +14,7 @@ axis. It then guesses
   the units' dimensionality.
 
 :func:`draft_varmap` turns the report into a variable map in the format of
-``config/varmaps/*.yaml``, validated with :func:`lesprep.varmap.parse_varmap`.
+``config/varmaps/*.yaml``, validated with :func:`lesprep.raw.varmap.parse_varmap`.
 
 Conventions
 -----------
@@ -48,10 +48,10 @@ import netCDF4
 import numpy as np
 import pandas as pd
 
-from .archive import parse_time_units
-from .errors import ConfigError, InputError
-from .units import ureg
-from .varmap import CANONICAL_UNITS, parse_varmap
+from lesprep.errors import ConfigError, InputError
+from lesprep.raw.archive import parse_time_units
+from lesprep.raw.varmap import CANONICAL_UNITS, parse_varmap
+from lesprep.units import ureg
 
 __all__ = [
     "CANONICAL",
@@ -1008,7 +1008,7 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
         ``variables`` (qc, qv, T, p, w). Assumptions are flagged with ``# CHECK``
         comments; a canonical variable with no candidate gets ``raw: "<not found>"`` so
         ingest names it. The text is validated with
-        :func:`lesprep.varmap.parse_varmap`.
+        :func:`lesprep.raw.varmap.parse_varmap`.
 
     Raises
     ------

@@ -14,8 +14,8 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import ConfigError, ScaleError
-from .units import parse_quantity
+from lesprep.errors import ConfigError, ScaleError
+from lesprep.units import parse_quantity
 
 
 @dataclass(frozen=True, kw_only=True)

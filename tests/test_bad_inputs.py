@@ -15,15 +15,17 @@ import netCDF4
 import pytest
 import yaml
 
-from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.canonical.ingest import ingest_case
 from lesprep.config import prepare_config, read_case_sheet
 from lesprep.errors import ConfigError, GridError, TimeAxisError
+from lesprep.jobs.settings import WorkflowSettings
 from lesprep.provenance import load
 from lesprep.store import open_store, stale_temporaries
+from settings_helpers import ingest_settings
 
 REPO = Path(__file__).resolve().parents[1]
 VARMAP = {f: REPO / f"config/varmaps/flavour-{f}.yaml" for f in ("alpha", "beta")}
-SETTINGS = IngestSettings(
+SETTINGS = ingest_settings(
     spinup="1 h",
     cloud_threshold="1e-5 kg/kg",
 )
@@ -87,7 +89,7 @@ def test_quantities_without_units(key, value):
     cfg = yaml.safe_load((REPO / "config/config.yaml").read_text())
     cfg["ingest"][key] = value
     with pytest.raises(ConfigError, match=key):
-        prepare_config(cfg)
+        WorkflowSettings.from_config(cfg)
 
 
 def test_unknown_config_key():
@@ -126,11 +128,11 @@ def test_workflow_step_exits_non_zero_with_one_line(tmp_path, case_copy):
     code = (
         "import sys\n"
         "from lesprep.errors import LesprepError\n"
-        "from lesprep.canonical.ingest import IngestSettings, ingest_case\n"
+        "from lesprep.canonical.ingest import ingest_case\n"
+        "from lesprep.canonical.settings import IngestSettings\n"
         "try:\n"
         f"    ingest_case(case='c1', raw={str(raw / '*.nc')!r}, varmap={str(VARMAP['alpha'])!r},"
-        " settings=IngestSettings(spinup='1 h', cloud_threshold='1e-5 kg/kg', ranges={'qc': "
-        "(0, .02), 'qv': (0, .05), 'T': (150, 340), 'p': (1e4, 1.1e5), 'w': (-60, 60)}),"
+        f" settings=IngestSettings.from_dict({SETTINGS.to_dict()!r}),"
         f" out={str(tmp_path / 'o.zarr')!r})\n"
         "except LesprepError as e:\n"
         "    print(e, file=sys.stderr); sys.exit(1)\n"

@@ -10,18 +10,15 @@ import scipy.stats
 import xarray as xr
 
 from lesprep import thermo
-from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import ScaleError
 from lesprep.provenance import load
-from lesprep.scales.coarsen import (
-    CoarsenSettings,
-    coarse_fields,
-    coarsen_case,
-    vertical_derivative,
-)
+from lesprep.scales.coarsen import coarsen_case
+from lesprep.scales.step import coarse_fields, vertical_derivative
 from lesprep.scales.patches import extract_patches, reassemble
 from lesprep.scales.spec import Scale, parse_scale, parse_scales
 from lesprep.store import open_store
+from settings_helpers import coarsen_settings, ingest_settings
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -52,7 +49,7 @@ def random_fine(rng, nz=4, n=24):
     }
 
 
-SETTINGS = CoarsenSettings(scales=(), moments=("qc", "w", "qv", "T", "rh"))
+SETTINGS = coarsen_settings(scales=(), moments=("qc", "w", "qv", "T", "rh"))
 
 
 @pytest.fixture(scope="module")
@@ -211,13 +208,13 @@ def scale_stores(tmp_path_factory, demo_root):
         case="sc-ostra-02",
         raw=str(demo_root / "sc-ostra-02" / "*.nc"),
         varmap=REPO / "config/varmaps/flavour-beta.yaml",
-        settings=IngestSettings(
+        settings=ingest_settings(
             spinup="1 h",
             cloud_threshold="1e-5 kg/kg",
         ),
         out=out / "canonical.zarr",
     )
-    settings = CoarsenSettings(
+    settings = coarsen_settings(
         scales=tuple(parse_scales(["100 m", "400 m", "1200 m", "7 km"])),
         patch_scales=("400m",),
         patch_size=4,
@@ -275,7 +272,7 @@ def test_slabs_and_output_dtype_do_not_change_the_numbers(profile: bool) -> None
     fine = random_fine(np.random.default_rng(7), nz=7)
     if not profile:
         fine["p"] = np.broadcast_to(fine["p"][:, None, None], fine["qc"].shape).copy()
-    settings = CoarsenSettings(
+    settings = coarsen_settings(
         scales=(),
         moments=("qc", "w", "qv", "T", "rh"),
         patch_variables=("qc", "w"),
@@ -305,7 +302,7 @@ def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
         case="sc-ostra-02",
         raw=str(demo_root / "sc-ostra-02" / "*.nc"),
         varmap=REPO / "config/varmaps/flavour-beta.yaml",
-        settings=IngestSettings(spinup="1 h", cloud_threshold="1e-5 kg/kg", chunk_mib=0.02),
+        settings=ingest_settings(spinup="1 h", cloud_threshold="1e-5 kg/kg", chunk_mib=0.02),
         out=tmp_path / "canonical.zarr",
     )
     fine = open_store(canon)
@@ -314,7 +311,7 @@ def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
     labels = ["100m", "400m"]
     stores = {}
     for mib in (1000.0, 0.001):
-        settings = CoarsenSettings(
+        settings = coarsen_settings(
             scales=tuple(parse_scales(["100 m", "400 m"])),
             patch_scales=("400m",),
             patch_size=4,
@@ -338,7 +335,7 @@ def test_streamed_chunk_rows_equal_whole_columns(tmp_path, demo_root):
 
 
 def test_z_chunks_are_whole_slabs_near_the_budget():
-    from lesprep.scales.coarsen import ZPieces, z_chunk_levels
+    from lesprep.scales.step import ZPieces, z_chunk_levels
 
     # 256 x 256 float32 levels are 256 KiB: 8 MiB is 32 levels, one 32-level slab
     assert z_chunk_levels((160, 256, 256), 4, 8.0, 32) == 32

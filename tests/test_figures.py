@@ -23,14 +23,15 @@ from matplotlib.collections import QuadMesh
 from matplotlib.figure import Figure
 from matplotlib.patches import Rectangle, StepPatch
 
-from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import InputError
 from lesprep.report import figures
-from lesprep.scales.coarsen import CoarsenSettings, coarsen_case
+from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
-from lesprep.sets.assemble import SetSettings, build_set
+from lesprep.sets.assemble import build_set
 from lesprep.sets.splits import Assignment, write_assignment_tsv
 from lesprep.store import open_store
+from settings_helpers import coarsen_settings, ingest_settings, set_settings
 
 REPO = Path(__file__).resolve().parents[1]
 FLAVOUR = {
@@ -51,11 +52,11 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), secti
 def tree(tmp_path_factory, demo_root):
     """Canonical, scale and set stores plus splits.tsv of four demo cases."""
     out = tmp_path_factory.mktemp("tree")
-    ingest = IngestSettings(
+    ingest = ingest_settings(
         spinup="1 h",
         cloud_threshold="1e-5 kg/kg",
     )
-    coarsen = CoarsenSettings(
+    coarsen = coarsen_settings(
         scales=tuple(parse_scales(["300 m"])), patch_scales=(), rh_critical=RH_CRITICAL
     )
     canon, scale = {}, {}
@@ -78,7 +79,7 @@ def tree(tmp_path_factory, demo_root):
             {c: scale[c] for c in members},
             REGIME,
             out / "sets" / split / "scale-300m.zarr",
-            SetSettings(shuffle=True, shuffle_seed=3, chunk_mib=0.05),
+            set_settings(shuffle=True, shuffle_seed=3, chunk_mib=0.05),
             split=split,
             scale="300m",
         )
@@ -312,10 +313,15 @@ def test_empty_split(tree, tmp_path):
     skipped = coarsen_case(
         tree["canon"][case],
         {"7000m": tmp_path / "scale-7000m.zarr"},
-        CoarsenSettings(scales=tuple(parse_scales(["7 km"])), on_misfit="skip"),
+        coarsen_settings(scales=tuple(parse_scales(["7 km"])), on_misfit="skip"),
     )["7000m"]
     empty = build_set(
-        {case: skipped}, REGIME, tmp_path / "empty.zarr", SetSettings(), split="test", scale="7000m"
+        {case: skipped},
+        REGIME,
+        tmp_path / "empty.zarr",
+        set_settings(),
+        split="test",
+        scale="7000m",
     )
     fig = figures.scale_target_distribution(tree["sets"]["train"], empty, tmp_path / "e.png")
     texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from lesprep import thermo
-from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.canonical.ingest import ingest_case
 from lesprep.demo.physics import demo_fields
 from lesprep.errors import (
     ConfigError,
@@ -23,11 +23,12 @@ from lesprep.errors import (
 )
 from lesprep.provenance import load
 from lesprep.store import open_store, stale_temporaries
+from settings_helpers import ingest_settings
 
 REPO = Path(__file__).resolve().parents[1]
 VARMAPS = {f: REPO / f"config/varmaps/flavour-{f}.yaml" for f in ("alpha", "beta")}
 
-SETTINGS = IngestSettings(
+SETTINGS = ingest_settings(
     spinup="1 h",
     cloud_threshold="1e-5 kg/kg",
 )
@@ -187,7 +188,7 @@ def test_nan_reports_count_and_location(tmp_path, case_copy):
 
 
 def test_spinup_longer_than_run(tmp_path, demo_root):
-    long = IngestSettings(spinup="30 h", cloud_threshold="1e-5 kg/kg", ranges=SETTINGS.ranges)
+    long = ingest_settings(spinup="30 h", cloud_threshold="1e-5 kg/kg", ranges=SETTINGS.ranges)
     _expect_failure(
         tmp_path,
         "sc-pelle-01",

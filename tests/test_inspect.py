@@ -15,18 +15,18 @@ import numpy as np
 import pytest
 import yaml
 
-from lesprep.canonical.ingest import IngestSettings, ingest_case
+from lesprep.canonical.ingest import ingest_case
 from lesprep.demo.physics import demo_case, write_demo_case
 from lesprep.errors import ConfigError, InputError
-from lesprep.raw.checks import DEFAULT_RANGES
 from lesprep.raw.survey import draft_varmap, inspect_files
 from lesprep.raw.varmap import parse_varmap
 from lesprep.store import open_store
+from settings_helpers import ingest_settings
 
 REPO = Path(__file__).resolve().parents[1]
 SIZE = {"nx": 16, "ny": 16, "nz": 16, "ntimes": 4}
 CASES = {"alpha": "sc-ostra-01", "beta": "sc-ostra-02"}
-SETTINGS = IngestSettings(spinup="1 h", cloud_threshold="1e-5 kg/kg", ranges=dict(DEFAULT_RANGES))
+SETTINGS = ingest_settings(spinup="1 h", cloud_threshold="1e-5 kg/kg", )
 
 
 @pytest.fixture(scope="module")
@@ -251,8 +251,8 @@ def test_unseen_layout_by_cf_attributes(tmp_path):
     hand.write_text(HAND_MAP)
     draft = tmp_path / "draft.yaml"
     draft.write_text(draft_varmap(report))
-    settings = IngestSettings(
-        spinup="0 s", cloud_threshold="1e-5 kg/kg", ranges=dict(DEFAULT_RANGES)
+    settings = ingest_settings(
+        spinup="0 s", cloud_threshold="1e-5 kg/kg",
     )
     kw = {"case": "invented-1", "raw": [f], "settings": settings}
     a = ingest_case(varmap=draft, out=tmp_path / "a.zarr", **kw)

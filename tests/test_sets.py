@@ -12,11 +12,10 @@ import numpy as np
 import pytest
 import zarr
 
-from lesprep.canonical.ingest import IngestSettings, ingest_case
-from lesprep.scales.coarsen import CoarsenSettings, coarsen_case
+from lesprep.canonical.ingest import ingest_case
+from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import (
-    SetSettings,
     build_set,
     decode_category,
     normalization_stats,
@@ -24,6 +23,7 @@ from lesprep.sets.assemble import (
     write_normalization,
 )
 from lesprep.store import open_store
+from settings_helpers import coarsen_settings, ingest_settings, set_settings
 
 REPO = Path(__file__).resolve().parents[1]
 CASES = {"sc-ostra-01": "alpha", "sc-ostra-02": "beta", "cu-marro-01": "alpha"}
@@ -33,11 +33,11 @@ REGIMES = {"sc-ostra-01": "stratocumulus", "sc-ostra-02": "stratocumulus", "cu-m
 @pytest.fixture(scope="module")
 def case_stores(tmp_path_factory, demo_root):
     out = tmp_path_factory.mktemp("cases")
-    ing = IngestSettings(
+    ing = ingest_settings(
         spinup="1 h",
         cloud_threshold="1e-5 kg/kg",
     )
-    co = CoarsenSettings(
+    co = coarsen_settings(
         scales=tuple(parse_scales(["400 m"])), patch_scales=("400m",), patch_size=4
     )
     stores = {}
@@ -55,7 +55,7 @@ def case_stores(tmp_path_factory, demo_root):
 
 
 def build(case_stores, cases, out, **kw):
-    settings = SetSettings(**{"shuffle": False, "chunk_mib": 0.05, **kw})
+    settings = set_settings(**{"shuffle": False, "chunk_mib": 0.05, **kw})
     return build_set(
         {c: case_stores[c] for c in cases}, REGIMES, out, settings, split="train", scale="400m"
     )
@@ -130,7 +130,7 @@ def test_normalization_from_train_only(case_stores, tmp_path):
         {"sc-ostra-02": held},
         REGIMES,
         tmp_path / "test.zarr",
-        SetSettings(shuffle=False),
+        set_settings(shuffle=False),
         split="test",
         scale="400m",
     )

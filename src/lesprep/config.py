@@ -1,4 +1,4 @@
-"""Configuration and case sheet: loading, schema validation, defaults and hashing.
+"""Configuration and case sheet: loading, schema validation and defaults.
 
 The JSON schemas ship with the package (``lesprep/schemas``); the workflow, the command
 line and the tests all validate through this module, which fills defaults the way
@@ -10,8 +10,6 @@ from __future__ import annotations
 
 import copy
 import csv
-import hashlib
-import json
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -65,8 +63,14 @@ def validate(instance: Any, schema: Mapping[str, Any], *, what: str) -> None:
         path = ".".join(str(p) for p in err.absolute_path) or "(top level)"
         raise ConfigError(
             f"{what}: at {path}: {err.message}",
-            hint="see the schema in lesprep/schemas/ (installed with the package) for the allowed keys and values",
+            hint="see lesprep/schemas/ (shipped with the package) for the allowed keys",
         )
+
+
+def read_config(path: str | Path) -> dict[str, Any]:
+    """Read a config file (YAML, safe-loaded) without validating it."""
+    with open(path, encoding="utf-8") as fh:
+        return yaml.safe_load(fh) or {}
 
 
 def load_config(path: str | Path, *, schema_dir: Path | None = None) -> dict[str, Any]:
@@ -84,23 +88,21 @@ def load_config(path: str | Path, *, schema_dir: Path | None = None) -> dict[str
     dict
         The config with defaults filled.
     """
-    with open(path, encoding="utf-8") as fh:
-        cfg = yaml.safe_load(fh) or {}
-    return prepare_config(cfg, what=str(path), schema_dir=schema_dir)
+    return prepare_config(read_config(path), what=str(path), schema_dir=schema_dir)
 
 
 def prepare_config(
     cfg: dict[str, Any], *, what: str = "config", schema_dir: Path | None = None
 ) -> dict[str, Any]:
-    """Validate an already-loaded config dict and fill its defaults (returns a copy)."""
+    """Validate an already-loaded config dict and fill its defaults (returns a copy).
+
+    Quantities with units are parsed, once, when the settings objects are built from the
+    result (:class:`lesprep.jobs.settings.WorkflowSettings`).
+    """
     cfg = copy.deepcopy(cfg)
     schema = _schema("config.schema.yaml", schema_dir)
     validate(cfg, schema, what=what)
     _fill_defaults(cfg, schema)
-    # quantities are checked here so a bad one fails before any job starts
-    ing = cfg["ingest"]
-    parse_quantity(ing["spinup"], "s", name="ingest.spinup")
-    parse_quantity(ing["cloud_threshold"], "kg kg-1", name="ingest.cloud_threshold")
     return cfg
 
 
@@ -113,7 +115,7 @@ class CaseRow:
     varmap: str
     raw: str
     split: str = ""
-    spinup: str = ""
+    spinup_s: float | None = None
     demo: bool = False
 
 
@@ -151,8 +153,7 @@ def read_case_sheet(path: str | Path, *, schema_dir: Path | None = None) -> list
                 hint="case ids must be unique",
             )
         seen[cid] = lineno
-        if rec.get("spinup"):
-            parse_quantity(rec["spinup"], "s", name=f"spinup of case {cid!r}")
+        spinup = rec.get("spinup", "")
         rows.append(
             CaseRow(
                 case=cid,
@@ -160,20 +161,12 @@ def read_case_sheet(path: str | Path, *, schema_dir: Path | None = None) -> list
                 varmap=rec["varmap"],
                 raw=rec["raw"],
                 split=rec.get("split", ""),
-                spinup=rec.get("spinup", ""),
+                spinup_s=parse_quantity(spinup, "s", name=f"spinup of case {cid!r}")
+                if spinup
+                else None,
                 demo=rec.get("demo", "") == "yes",
             )
         )
     if not rows:
         raise ConfigError(f"case sheet {path} lists no case")
     return rows
-
-
-def canonical_json(obj: Any) -> str:
-    """Deterministic JSON (sorted keys, no spaces) used for hashing."""
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=str)
-
-
-def config_hash(obj: Any) -> str:
-    """sha256 of the canonical JSON form of a (resolved) config fragment."""
-    return hashlib.sha256(canonical_json(obj).encode()).hexdigest()

@@ -17,12 +17,14 @@ from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal, get_args
 
 import numpy as np
 import xarray as xr
 import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
+
+from lesprep.errors import ConfigError
 
 TMP_TAG = ".tmp-"
 CHUNK_KEYS = {"name": "v2", "separator": "."}
@@ -31,21 +33,46 @@ row, which makes replacing and deleting stores several times faster (Zarr v3 spe
 _IO_THREADS = 8  # concurrent array writes: storage latency, not CPU, is what they hide
 
 
-def compressors(store_cfg: Mapping[str, Any] | None = None) -> tuple[Any, ...]:
-    """zarr 3 compressor list from the config's ``store`` section.
+Codec = Literal["blosc-lz4", "blosc-zstd", "zstd", "none"]
 
-    ``blosc-lz4`` (default), ``blosc-zstd`` (both with byte shuffle), ``zstd`` or
-    ``none``; ``clevel`` sets the level.
+
+@dataclass(frozen=True, kw_only=True)
+class StoreSettings:
+    """Storage choices of every array: compressor and level (config section ``store``)."""
+
+    codec: Codec
+    clevel: int
+
+    def __post_init__(self) -> None:
+        if self.codec not in get_args(Codec):
+            raise ConfigError(
+                f"store.codec is {self.codec!r}; expected one of {list(get_args(Codec))}"
+            )
+        if not 0 <= int(self.clevel) <= 9:
+            raise ConfigError(f"store.clevel is {self.clevel!r}; expected 0 to 9")
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain form (job params, provenance)."""
+        return {"codec": self.codec, "clevel": self.clevel}
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> StoreSettings:
+        """Inverse of :meth:`to_dict` (both keys required)."""
+        return cls(codec=d["codec"], clevel=int(d["clevel"]))
+
+
+def compressors(store: StoreSettings) -> tuple[Any, ...]:
+    """zarr 3 compressor list of the storage settings.
+
+    ``blosc-lz4``, ``blosc-zstd`` (both with byte shuffle), ``zstd`` or ``none``;
+    ``clevel`` sets the level.
     """
-    cfg = dict(store_cfg or {})
-    codec = cfg.get("codec", "blosc-lz4")
-    level = int(cfg.get("clevel", 5))
-    if codec == "none":
+    if store.codec == "none":
         return ()
-    if codec == "zstd":
-        return (ZstdCodec(level=level),)
-    cname = {"blosc-lz4": "lz4", "blosc-zstd": "zstd"}[codec]
-    return (BloscCodec(cname=cname, clevel=level, shuffle="shuffle"),)
+    if store.codec == "zstd":
+        return (ZstdCodec(level=store.clevel),)
+    cname = {"blosc-lz4": "lz4", "blosc-zstd": "zstd"}[store.codec]
+    return (BloscCodec(cname=cname, clevel=store.clevel, shuffle="shuffle"),)
 
 
 def _tmp_sibling(final: Path) -> Path:

@@ -7,7 +7,7 @@ for _group, _labels in SCALE_GROUPS.items():
         name:
             f"coarsen_{_group}"
         input:
-            canonical=f"{RESULTS}/cases/{{case}}/canonical.zarr",
+            canonical=canonical_store("{case}"),
         output:
             stores=directory([scale_store("{case}", lab) for lab in _labels]),
         params:

@@ -1,20 +1,28 @@
-# Helpers only, no rules: config validation, the case sheet, wildcard constraints and
-# small functions named for what they return.
+# Helpers only, no rules: the settings parsed once, the case sheet, the split assignment,
+# wildcard constraints and small functions named for what they return.
+import glob as _glob
 from pathlib import Path
 
-from lesprep.config import prepare_config, read_case_sheet
-from lesprep.provenance import code_version
+from lesprep.config import read_case_sheet
 from lesprep.jobs.resources import job_resources, job_threads
+from lesprep.jobs.settings import WorkflowSettings
+from lesprep.jobs.steps import stage_code_versions
+from lesprep.layout import CASE_FIGURES, SCALE_FIGURES, SPLITS
+from lesprep.sets.splits import CaseInfo, assign_splits
 
+SETTINGS = WorkflowSettings.from_config(config)
+LAYOUT = SETTINGS.results
+CASES = {row.case: row for row in read_case_sheet(SETTINGS.cases)}
+CODE = stage_code_versions()
+SCALE_LABELS = list(SETTINGS.coarsen.labels)
+SCALE_GROUPS = dict(SETTINGS.coarsen.groups)
 
-config.update(prepare_config(config, what="config"))
-
-RESULTS = config["results"]
-DEMO_ROOT = config["demo"]["root"]
-CASES = {row.case: row for row in read_case_sheet(config["cases"])}
-CODE_VERSION = code_version()
-
-
+# The split is computed once, here; the splits job writes this assignment and its notes.
+ASSIGNMENT, SPLIT_MESSAGES = assign_splits(
+    [CaseInfo(case=r.case, regime=r.regime, pinned=r.split or None) for r in CASES.values()],
+    SETTINGS.split_rule,
+)
+ACTIVE_SPLITS = [s for s in SPLITS if any(a.split == s for a in ASSIGNMENT)]
 
 
 def case_ids():
@@ -22,19 +30,17 @@ def case_ids():
     return list(CASES)
 
 
+def demo_archive(case):
+    """Folder of a demo case's generated archive."""
+    return str(SETTINGS.demo.root / case)
+
+
 def raw_inputs(wildcards):
     """The raw files of a case (the generated archive folder for demo cases)."""
     row = CASES[wildcards.case]
     if row.demo:
-        return [f"{DEMO_ROOT}/{row.case}"]
-    return sorted(glob_wildcards_free(row.raw))
-
-
-def glob_wildcards_free(pattern):
-    """Files matching a plain shell glob, relative to the working directory."""
-    import glob as _glob
-
-    return [p for p in _glob.glob(pattern, recursive=True) if Path(p).is_file()]
+        return [demo_archive(row.case)]
+    return sorted(p for p in _glob.glob(row.raw, recursive=True) if Path(p).is_file())
 
 
 def varmap_of(wildcards):
@@ -49,10 +55,9 @@ def ingest_params(wildcards):
         "case": row.case,
         "regime": row.regime,
         "raw": row.raw,
-        "spinup": row.spinup or config["ingest"]["spinup"],
-        "ingest": config["ingest"],
-        "store": config["store"],
-        "code": CODE_VERSION,
+        "results": str(LAYOUT.root),
+        "ingest": SETTINGS.ingest_for(row).to_dict(),
+        "code": CODE["ingest"],
     }
 
 
@@ -60,7 +65,7 @@ def mem_mb(step):
     """Resource function: memory (MB) of a job of `step`, from its real input size."""
 
     def _mem(wildcards, input, attempt):
-        return job_resources(step, list(input), attempt, config)["mem_mb"]
+        return job_resources(step, list(input), attempt, SETTINGS.resources)["mem_mb"]
 
     return _mem
 
@@ -69,7 +74,7 @@ def runtime(step):
     """Resource function: runtime (minutes) of a job of `step`."""
 
     def _runtime(wildcards, input, attempt):
-        return job_resources(step, list(input), attempt, config)["runtime"]
+        return job_resources(step, list(input), attempt, SETTINGS.resources)["runtime"]
 
     return _runtime
 
@@ -78,50 +83,33 @@ def threads_for(step):
     """Thread function: one thread for small inputs, `resources.threads` for big ones."""
 
     def _threads(wildcards, input):
-        return job_threads(step, list(input), config)
+        return job_threads(step, list(input), SETTINGS.resources)
 
     return _threads
 
 
+def canonical_store(case):
+    """Canonical store of one case."""
+    return str(LAYOUT.canonical(case))
+
+
 def canonical_stores():
     """Canonical store of every case."""
-    return [f"{RESULTS}/cases/{c}/canonical.zarr" for c in CASES]
-
-
-
-
-# --- coarsening -----------------------------------------------------------------------
-from lesprep.scales.spec import parse_scales, scale_groups as _scale_groups
-
-SCALE_LABELS = [s.label for s in parse_scales(config["coarsen"]["scales"])]
-SCALE_GROUPS = _scale_groups(config["coarsen"])
+    return [canonical_store(c) for c in CASES]
 
 
 def scale_store(case, label):
     """Path of one case's store at one scale."""
-    return f"{RESULTS}/cases/{case}/scale-{label}.zarr"
+    return str(LAYOUT.scale_store(case, label))
 
 
 def coarsen_params(group):
-    """Params of a coarsening group's jobs: what their results depend on besides input.
-
-    Only this group's scales (and the patches of those scales) enter, so changing
-    another group's scale does not re-run this group.
-    """
-    labels = SCALE_GROUPS[group]
-    patches = dict(config["coarsen"]["patches"])
-    patches["scales"] = [
-        s.label for s in parse_scales(patches.get("scales", [])) if s.label in labels
-    ]
-    coarsen = {k: v for k, v in config["coarsen"].items() if k not in ("scales", "groups")}
-    coarsen["patches"] = patches
+    """Params of a coarsening group's jobs: only this group's scales (and their patches)
+    enter, so changing another group's scale does not re-run this group."""
     return {
-        "labels": labels,
-        "scales": [s.text for s in parse_scales(config["coarsen"]["scales"]) if s.label in labels],
-        "coarsen": coarsen,
-        "ingest": {k: config["ingest"][k] for k in ("dtype", "chunk_mib")},
-        "store": config["store"],
-        "code": CODE_VERSION,
+        "results": str(LAYOUT.root),
+        "coarsen": SETTINGS.coarsen.for_group(group).to_dict(),
+        "code": CODE["coarsen"],
     }
 
 
@@ -130,97 +118,87 @@ def scale_stores():
     return [scale_store(c, lab) for c in CASES for lab in SCALE_LABELS]
 
 
-# --- splits and sets ------------------------------------------------------------------
-from lesprep.sets.splits import CaseInfo, SplitRule, assign_splits
-
-SPLIT_RULE = SplitRule(fractions=config["splits"]["fractions"], seed=config["splits"]["seed"])
-ASSIGNMENT, SPLIT_MESSAGES = assign_splits(
-    [CaseInfo(case=r.case, regime=r.regime, pinned=r.split or None) for r in CASES.values()],
-    SPLIT_RULE,
-)
-for _msg in SPLIT_MESSAGES:
-    logger.warning(f"lesprep splits: {_msg}")
-SPLITS = [s for s in ("train", "validation", "test") if any(a.split == s for a in ASSIGNMENT)]
-
-
 def cases_of(split):
     """Cases assigned to a split (sorted)."""
     return sorted(a.case for a in ASSIGNMENT if a.split == split)
 
 
-def set_inputs(wildcards):
-    """Per-case stores a training store is assembled from."""
-    return [scale_store(c, wildcards.scale) for c in cases_of(wildcards.split)]
+def set_store(split, label):
+    """Training store of a split at one scale."""
+    return str(LAYOUT.set_store(split, label))
 
 
-def train_set_inputs(wildcards):
-    """Per-case stores of the train split at one scale."""
-    return [scale_store(c, wildcards.scale) for c in cases_of("train")]
+def set_inputs_of(split):
+    """Input function: the per-case stores a split's training store is assembled from."""
+
+    def _inputs(wildcards):
+        return [scale_store(c, wildcards.scale) for c in cases_of(split or wildcards.split)]
+
+    return _inputs
 
 
-def train_set_params(wildcards):
-    """Params of the train store (the train split of :func:`set_params`)."""
-    return _set_params("train", wildcards.scale)
+def set_params_of(split):
+    """Params function: everything a split's training store depends on besides inputs.
 
+    Only this split's own cases enter, so a case joining another split changes nothing here.
+    """
 
-def set_params(wildcards):
-    """Everything a training store depends on besides its inputs."""
-    return _set_params(wildcards.split, wildcards.scale)
+    def _params(wildcards):
+        name = split or wildcards.split
+        cases = cases_of(name)
+        return {
+            "split": name,
+            "scale": wildcards.scale,
+            "cases": cases,
+            "regimes": {c: CASES[c].regime for c in cases},
+            "sets": SETTINGS.sets.to_dict(),
+            "rule": SETTINGS.split_rule.to_dict(),
+            "assignment": [a.to_dict() for a in ASSIGNMENT if a.split == name],
+            "code": CODE["assemble"],
+        }
 
-
-def _set_params(split, scale):
-    return {
-        "split": split,
-        "scale": scale,
-        "cases": cases_of(split),
-        "regimes": {c: CASES[c].regime for c in cases_of(split)},
-        "sets": config["sets"],
-        "dtype": config["ingest"]["dtype"],
-        "store": config["store"],
-        "rule": SPLIT_RULE.to_dict(),
-        # this split's own cases only, so a case joining another split changes nothing here
-        "assignment": [
-            {"case": a.case, "regime": a.regime, "split": a.split, "reason": a.reason}
-            for a in ASSIGNMENT
-            if a.split == split
-        ],
-        "code": CODE_VERSION,
-    }
+    return _params
 
 
 def split_params(wildcards):
-    """The split rule and the case list (the assignment depends on nothing else)."""
+    """The assignment computed when the workflow was planned, and its notes."""
     return {
-        "rule": SPLIT_RULE.to_dict(),
-        "cases": [[r.case, r.regime, r.split] for r in CASES.values()],
-        "code": CODE_VERSION,
+        "assignment": [a.to_dict() for a in ASSIGNMENT],
+        "messages": list(SPLIT_MESSAGES),
+        "code": CODE["splits"],
     }
 
 
 def set_stores_only():
     """Every training store (no statistics files)."""
-    return [f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS]
+    return [set_store(s, lab) for s in ACTIVE_SPLITS for lab in SCALE_LABELS]
 
 
 def report_scales():
     """Scales that get the train/test figures (both splits must exist)."""
-    return SCALE_LABELS if {"train", "test"} <= set(SPLITS) else []
+    return SCALE_LABELS if {"train", "test"} <= set(ACTIVE_SPLITS) else []
+
+
+def case_figures():
+    """Every per-case figure."""
+    return [str(LAYOUT.case_figure(c, k)) for c in CASES for k in CASE_FIGURES]
 
 
 def report_outputs():
     """Figures and tables of the report."""
-    return [f"{RESULTS}/scenes.tsv", f"{RESULTS}/baseline.tsv", f"{RESULTS}/report/splits.tsv"] + [
-        f"{RESULTS}/figures/cases/{c}/{k}.png"
-        for c in CASES
-        for k in ("timeseries", "profiles", "lwp_map")
+    return [
+        str(LAYOUT.scenes_tsv()),
+        str(LAYOUT.baseline_tsv()),
+        str(LAYOUT.report_splits_tsv()),
+        *case_figures(),
     ]
 
 
 def set_stores():
     """Every training store and the train normalization statistics."""
-    out = [f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS]
-    if "train" in SPLITS:
-        out += [f"{RESULTS}/sets/normalization-{lab}.json" for lab in SCALE_LABELS]
+    out = set_stores_only()
+    if "train" in ACTIVE_SPLITS:
+        out += [str(LAYOUT.normalization(lab)) for lab in SCALE_LABELS]
     return out
 
 
@@ -229,7 +207,7 @@ def final_outputs():
     return [
         *canonical_stores(),
         *scale_stores(),
-        f"{RESULTS}/splits.tsv",
+        str(LAYOUT.splits_tsv()),
         *set_stores(),
         *report_outputs(),
     ]
@@ -238,4 +216,4 @@ def final_outputs():
 wildcard_constraints:
     case="|".join(CASES),
     scale="|".join(SCALE_LABELS),
-    split="train|validation|test",
+    split="|".join(SPLITS),

@@ -3,10 +3,10 @@
 
 rule demo_archive:
     output:
-        directory(f"{DEMO_ROOT}/{{case}}"),
+        directory(demo_archive("{case}")),
     params:
-        size=config["demo"]["size"],
-        code=CODE_VERSION,
+        size=dict(SETTINGS.demo.size),
+        code=CODE["demo"],
     benchmark:
         "logs/benchmarks/demo/{case}.tsv"
     log:

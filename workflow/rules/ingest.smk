@@ -6,7 +6,7 @@ rule ingest:
         raw=raw_inputs,
         varmap=varmap_of,
     output:
-        store=directory(f"{RESULTS}/cases/{{case}}/canonical.zarr"),
+        store=directory(canonical_store("{case}")),
     params:
         settings=ingest_params,
     benchmark:

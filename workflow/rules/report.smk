@@ -8,29 +8,31 @@ rule figures:
     output:
         case_figures=[
             report(
-                f"{RESULTS}/figures/cases/{case}/{kind}.png",
+                str(LAYOUT.case_figure(case, kind)),
                 caption=f"../report/case_{kind}.rst",
                 category="Cases",
                 subcategory=case,
             )
             for case in case_ids()
-            for kind in ("timeseries", "profiles", "lwp_map")
+            for kind in CASE_FIGURES
         ],
         scale_figures=[
             report(
-                f"{RESULTS}/figures/scales/{label}/{kind}.png",
+                str(LAYOUT.scale_figure(label, kind)),
                 caption=f"../report/scale_{kind}.rst",
                 category="Scales",
                 subcategory=label,
             )
             for label in report_scales()
-            for kind in ("target_distribution", "cf_vs_rh")
+            for kind in SCALE_FIGURES
         ],
     params:
-        cases=case_ids(),
-        scales=report_scales(),
-        results=RESULTS,
-        code=CODE_VERSION,
+        settings={
+            "results": str(LAYOUT.root),
+            "cases": case_ids(),
+            "scales": report_scales(),
+            "code": CODE["report"],
+        },
     log:
         "logs/report/figures.log",
     resources:
@@ -44,21 +46,27 @@ rule tables:
     input:
         canonical=canonical_stores(),
         sets=set_stores_only(),
-        splits=f"{RESULTS}/splits.tsv",
+        splits=str(LAYOUT.splits_tsv()),
     output:
         scenes=report(
-            f"{RESULTS}/scenes.tsv", caption="../report/scene_table.rst", category="Tables"
+            str(LAYOUT.scenes_tsv()), caption="../report/scene_table.rst", category="Tables"
         ),
         baseline=report(
-            f"{RESULTS}/baseline.tsv", caption="../report/baseline_table.rst", category="Tables"
+            str(LAYOUT.baseline_tsv()), caption="../report/baseline_table.rst", category="Tables"
         ),
         splits=report(
-            f"{RESULTS}/report/splits.tsv", caption="../report/splits_table.rst", category="Tables"
+            str(LAYOUT.report_splits_tsv()),
+            caption="../report/splits_table.rst",
+            category="Tables",
         ),
     params:
-        cases=case_ids(),
-        sets={f"{s}/{lab}": f"{RESULTS}/sets/{s}/scale-{lab}.zarr" for s in SPLITS for lab in SCALE_LABELS},
-        code=CODE_VERSION,
+        settings={
+            "cases": case_ids(),
+            "sets": {
+                f"{s}/{lab}": set_store(s, lab) for s in ACTIVE_SPLITS for lab in SCALE_LABELS
+            },
+            "code": CODE["report"],
+        },
     log:
         "logs/report/tables.log",
     resources:

@@ -3,7 +3,7 @@
 
 rule assign_splits:
     output:
-        f"{RESULTS}/splits.tsv",
+        str(LAYOUT.splits_tsv()),
     params:
         settings=split_params,
     log:
@@ -17,12 +17,12 @@ rule assign_splits:
 
 rule assemble_train:
     input:
-        stores=train_set_inputs,
+        stores=set_inputs_of("train"),
     output:
-        store=directory(f"{RESULTS}/sets/train/scale-{{scale}}.zarr"),
-        stats=f"{RESULTS}/sets/normalization-{{scale}}.json",
+        store=directory(set_store("train", "{scale}")),
+        stats=str(LAYOUT.normalization("{scale}")),
     params:
-        settings=train_set_params,
+        settings=set_params_of("train"),
     benchmark:
         "logs/benchmarks/sets/train-{scale}.tsv"
     log:
@@ -36,13 +36,13 @@ rule assemble_train:
 
 rule assemble_heldout:
     input:
-        stores=set_inputs,
+        stores=set_inputs_of(None),
     output:
-        store=directory(f"{RESULTS}/sets/{{split}}/scale-{{scale}}.zarr"),
+        store=directory(set_store("{split}", "{scale}")),
     wildcard_constraints:
         split="validation|test",
     params:
-        settings=set_params,
+        settings=set_params_of(None),
     benchmark:
         "logs/benchmarks/sets/{split}-{scale}.tsv"
     log:

@@ -10,22 +10,21 @@ renamed into place when complete.
 from __future__ import annotations
 
 import logging
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from lesprep import provenance, thermo
+from lesprep import catalogue, provenance, thermo
 from lesprep._memory import retain_freed_memory
 from lesprep.canonical.derived import cell_diagnostics
+from lesprep.canonical.settings import IngestSettings
 from lesprep.errors import TimeAxisError
-from lesprep.raw.archive import Catalogue, catalogue, read_field, resolve_files
+from lesprep.raw.archive import ArchiveIndex, index_archive, read_field, resolve_files
 from lesprep.raw.checks import (
-    DEFAULT_RANGES,
     check_finite,
     check_range,
-    resolve_ranges,
     value_extent,
 )
 from lesprep.raw.grid import (
@@ -35,90 +34,24 @@ from lesprep.raw.grid import (
     layer_thickness,
     vertical_faces,
 )
-from lesprep.raw.varmap import CANONICAL_UNITS, QUANTITY_UNITS, VariableMap, load_varmap
+from lesprep.raw.varmap import VariableMap, load_varmap
 from lesprep.store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
-from lesprep.units import Conversion, conversion, parse_quantity
+from lesprep.units import Conversion, conversion
 
 log = logging.getLogger(__name__)
 
-CF_ATTRS: dict[str, dict[str, str]] = {
-    "qc": {
-        "standard_name": "cloud_liquid_water_mixing_ratio",
-        "long_name": "cloud liquid water mixing ratio",
-        "units": "kg kg-1",
-    },
-    "qv": {
-        "standard_name": "humidity_mixing_ratio",
-        "long_name": "water vapour mixing ratio",
-        "units": "kg kg-1",
-    },
-    "T": {"standard_name": "air_temperature", "long_name": "air temperature", "units": "K"},
-    "p": {"standard_name": "air_pressure", "long_name": "air pressure", "units": "Pa"},
-    "w": {
-        "standard_name": "upward_air_velocity",
-        "long_name": "vertical velocity at cell centres",
-        "units": "m s-1",
-    },
-    "rh": {
-        "standard_name": "relative_humidity",
-        "long_name": "relative humidity over liquid water (e/e_s, Bolton 1980)",
-        "units": "1",
-    },
-    "cloud_mask": {
-        "long_name": "cloudy cell (qc > threshold)",
-        "flag_values": "0 1",
-        "flag_meanings": "clear cloudy",
-        "units": "1",
-    },
-    "lwp": {
-        "standard_name": "atmosphere_mass_content_of_cloud_liquid_water",
-        "long_name": "liquid water path",
-        "units": "kg m-2",
-    },
-}
-FIELDS_3D = ("qc", "qv", "T", "w", "rh", "cloud_mask")
+DERIVED_3D = ("rh", "cloud_mask")
+"""Fine-grid derived fields of the fused per-cell pass stored with dims (time, z, y, x)."""
 
 
-@dataclass(frozen=True, kw_only=True)
-class IngestSettings:
-    """Resolved ingest settings of one case."""
-
-    spinup: str
-    cloud_threshold: str
-    ranges: dict[str, tuple[float, float]] = field(default_factory=lambda: dict(DEFAULT_RANGES))
-    dtype: str = "float32"
-    chunk_mib: float = 32.0
-    store: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def spinup_s(self) -> float:
-        """Spin-up in seconds."""
-        return parse_quantity(self.spinup, "s", name="spinup")
-
-    @property
-    def threshold(self) -> float:
-        """Cloud threshold in kg kg-1."""
-        return parse_quantity(self.cloud_threshold, "kg kg-1", name="cloud_threshold")
-
-    def to_dict(self) -> dict[str, Any]:
-        """Record for provenance."""
-        d = asdict(self)
-        d["spinup_s"] = self.spinup_s
-        d["cloud_threshold_kg_per_kg"] = self.threshold
-        return d
+def mapped_names(vm: VariableMap) -> tuple[str, ...]:
+    """The variable map's variables in catalogue order (``p`` first: others may need it)."""
+    return tuple(v.name for v in catalogue.variables(kind="mapped") if v.name in vm.variables)
 
 
-def settings_from_config(cfg: dict[str, Any], case_spinup: str = "") -> IngestSettings:
-    """Ingest settings from a validated config and the case sheet's optional spin-up."""
-    ing = cfg["ingest"]
-    return IngestSettings(
-        spinup=case_spinup or ing["spinup"],
-        cloud_threshold=ing["cloud_threshold"],
-        ranges=resolve_ranges(ing.get("plausible_ranges")),
-        dtype=ing.get("dtype", "float32"),
-        chunk_mib=float(ing.get("chunk_mib", 32)),
-        store=dict(cfg.get("store", {})),
-    )
+def fields_3d(vm: VariableMap) -> tuple[str, ...]:
+    """Stored (time, z, y, x) fields of a case: mapped ones except ``p``, then derived."""
+    return (*(n for n in mapped_names(vm) if n != "p"), *DERIVED_3D)
 
 
 def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
@@ -182,7 +115,7 @@ def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.nd
 
 
 def canonical_step(
-    cat: Catalogue,
+    cat: ArchiveIndex,
     time_index: int,
     *,
     faces: np.ndarray,
@@ -205,19 +138,20 @@ def canonical_step(
     out: dict[str, np.ndarray] = {}
     files: dict[str, str] = {}
     extents: dict[str, tuple[float, float]] = {}
-    for name in ("p", "qc", "qv", "T", "w"):
+    names = mapped_names(vm)
+    for name in names:
         spec = vm.variables[name]
+        quantity = catalogue.get(name).quantities[spec.quantity]
         raw, file, units, raw_extent = read_field(cat, name, time_index)
         files[name] = file
         axes = tuple(a for a in spec.axes(vm.dims) if a != "time")
         raw_dims = [d for d in spec.dims if vm.dims[d] != "time"]
-        target = QUANTITY_UNITS.get(spec.quantity, CANONICAL_UNITS[name])
         conv = conversions.get(
             name=name,
             raw=spec.raw,
             found=units,
             spec_units=spec.units,
-            expected=target,
+            expected=quantity.units,
             case=cat.case,
             file=file,
         )
@@ -248,22 +182,20 @@ def canonical_step(
                 )
             elif a in ("y_face", "x_face"):
                 values = destagger_periodic(values, axis=i).astype(dtype)
-        if spec.quantity in ("specific_humidity", "potential_temperature"):
+        if quantity.convert is not None:
             extent = None
-        if spec.quantity == "specific_humidity":
-            values = thermo.mixing_ratio_from_specific_humidity(values).astype(dtype)
-        elif spec.quantity == "potential_temperature":
-            p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
-            values = thermo.temperature_from_potential_temperature(values, p).astype(dtype)
+            values = quantity.convert(values, out).astype(dtype)
         out[name] = np.ascontiguousarray(values)
         extents[name] = value_extent(out[name])[1:] if extent is None else extent
-    for name in ("p", "qc", "qv", "T", "w"):
+    for name in names:
         spec = vm.variables[name]
+        if name not in settings.ranges:
+            continue  # no plausible range is known for this variable
         check_range(
             out[name],
             name=name,
             bounds=settings.ranges[name],
-            units=CANONICAL_UNITS[name],
+            units=catalogue.get(name).units,
             case=cat.case,
             file=files[name],
             raw_variable=spec.raw,
@@ -295,7 +227,7 @@ def _z_chunk(nz: int, ny: int, nx: int, itemsize: int, chunk_mib: float) -> int:
 
 
 def _layout(
-    cat: Catalogue,
+    cat: ArchiveIndex,
     keep: np.ndarray,
     faces: np.ndarray,
     settings: IngestSettings,
@@ -306,14 +238,14 @@ def _layout(
     zc = _z_chunk(nz, ny, nx, dtype.itemsize, settings.chunk_mib)
     dims4 = ("time", "z", "y", "x")
     out: dict[str, ArraySpec] = {}
-    for name in FIELDS_3D:
+    for name in fields_3d(cat.varmap):
         is_mask = name == "cloud_mask"
         out[name] = ArraySpec(
             dims=dims4,
             shape=(nt, nz, ny, nx),
             chunks=(1, zc, ny, nx),
             dtype="int8" if is_mask else dtype,
-            attrs=CF_ATTRS[name],
+            attrs=catalogue.get(name).cf_attrs(),
             fill_value=0 if is_mask else (0.0 if name == "qc" else None),
         )
     if p_profile:
@@ -323,7 +255,7 @@ def _layout(
             chunks=(nz,),
             dtype=dtype,
             attrs={
-                **CF_ATTRS["p"],
+                **catalogue.get("p").cf_attrs(),
                 "comment": "1-D reference profile p(z); broadcast over (time, y, x) when used",
             },
         )
@@ -333,14 +265,14 @@ def _layout(
             shape=(nt, nz, ny, nx),
             chunks=(1, zc, ny, nx),
             dtype=dtype,
-            attrs=CF_ATTRS["p"],
+            attrs=catalogue.get("p").cf_attrs(),
         )
     out["lwp"] = ArraySpec(
         dims=("time", "y", "x"),
         shape=(nt, ny, nx),
         chunks=(1, ny, nx),
         dtype=dtype,
-        attrs=CF_ATTRS["lwp"],
+        attrs=catalogue.get("lwp").cf_attrs(),
         fill_value=0.0,
     )
     out["time"] = ArraySpec(
@@ -419,7 +351,7 @@ def ingest_case(
     regime
         Regime tag (recorded in attrs).
     config_record
-        The resolved config to hash into provenance.
+        What the job was given (its params), recorded and hashed into provenance.
 
     Returns
     -------
@@ -434,7 +366,7 @@ def ingest_case(
     retain_freed_memory()
     vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
     files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
-    cat = catalogue(files, vm, case=case)
+    cat = index_archive(files, vm, case=case)
     for note in cat.warnings:
         log.warning("%s", note)
     dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
@@ -457,7 +389,7 @@ def ingest_case(
             )
             step = {
                 n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
-                for n in (*FIELDS_3D, "lwp")
+                for n in (*fields_3d(vm), "lwp")
             }
             if not p_profile:
                 step["p"] = fields["p"].astype(dtype, copy=False)
@@ -470,22 +402,10 @@ def ingest_case(
         raw_records = hashes.result()
         conv_records = conversions.records()
         for name, spec in vm.variables.items():
-            if spec.quantity == "specific_humidity":
+            operation = catalogue.get(name).quantities[spec.quantity].description
+            if operation:
                 conv_records.append(
-                    {
-                        "variable": name,
-                        "raw_variable": spec.raw,
-                        "operation": "mixing ratio r = q / (1 - q) from specific humidity q",
-                    }
-                )
-            elif spec.quantity == "potential_temperature":
-                conv_records.append(
-                    {
-                        "variable": name,
-                        "raw_variable": spec.raw,
-                        "operation": "T = theta * (p / 1000 hPa) ** (Rd/cp), "
-                        f"Rd/cp = {thermo.KAPPA:.6f}",
-                    }
+                    {"variable": name, "raw_variable": spec.raw, "operation": operation}
                 )
             if spec.staggered(vm.dims):
                 conv_records.append(

@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -80,8 +81,21 @@ def netcdf_step_bytes(path: Path) -> int:
         return 0
 
 
+@dataclass(frozen=True, kw_only=True)
+class ResourceSettings:
+    """Job sizing (config section ``resources``)."""
+
+    max_mem_mb: int
+    threads: int
+
+    @classmethod
+    def from_config(cls, resources: Mapping[str, Any]) -> ResourceSettings:
+        """Parse the validated ``resources`` section."""
+        return cls(max_mem_mb=int(resources["max_mem_mb"]), threads=int(resources["threads"]))
+
+
 def job_resources(
-    step: str, inputs: Any, attempt: int, config: Mapping[str, Any]
+    step: str, inputs: Any, attempt: int, resources: ResourceSettings
 ) -> dict[str, int]:
     """``mem_mb`` and ``runtime`` (minutes) for one job.
 
@@ -93,8 +107,8 @@ def job_resources(
         The job's input paths (files or store directories).
     attempt
         Snakemake's attempt counter (1 for the first try).
-    config
-        The workflow config (``resources.max_mem_mb`` caps the request).
+    resources
+        Job sizing (``max_mem_mb`` caps the request).
     """
     paths = [p for p in _paths(inputs) if p.exists()]
     total = sum(dir_size_bytes(p) for p in paths)
@@ -107,16 +121,16 @@ def job_resources(
                 step_bytes = max(step_bytes, netcdf_step_bytes(f))
         elif p.suffix == ".nc":
             step_bytes = max(step_bytes, netcdf_step_bytes(p))
-    cap = int(config.get("resources", {}).get("max_mem_mb", 16000))
+    cap = resources.max_mem_mb
     mem = _BASE_MB.get(step, 700) + _WORKING_COPIES.get(step, 8) * step_bytes / MiB
     mem_mb = int(min(cap, math.ceil(mem * (1.5 ** (attempt - 1)))))
     runtime = int(max(5, math.ceil(total / MiB / _MB_PER_S.get(step, 40) / 60 * 3 + 2)))
     return {"mem_mb": mem_mb, "runtime": runtime * attempt}
 
 
-def job_threads(step: str, inputs: Any, config: Mapping[str, Any]) -> int:
+def job_threads(step: str, inputs: Any, resources: ResourceSettings) -> int:
     """Threads of a job: one for small inputs (start-up dominates), else the config's."""
-    configured = int(config.get("resources", {}).get("threads", 2))
+    configured = resources.threads
     stores = [p for p in _paths(inputs) if (p / "zarr.json").exists()]
     if not stores:  # not written yet (sized when the DAG is built): assume big
         return configured

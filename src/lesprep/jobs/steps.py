@@ -2,8 +2,9 @@
 
 Each ``workflow/scripts/<step>.py`` calls :func:`run` with the Snakemake object; ``run``
 sends logging to the rule's log file, calls the step function with plain arguments
-taken from the job, and turns a :class:`lesprep.errors.LesprepError` into a one-line
-message on stderr and in the log, with a non-zero exit.
+taken from the job (its params, ``smk.input`` and ``smk.output``; never the config),
+and turns a :class:`lesprep.errors.LesprepError` into a one-line message on stderr and
+in the log, with a non-zero exit.
 """
 
 from __future__ import annotations
@@ -14,110 +15,115 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from lesprep.codeversion import code_version
 from lesprep.errors import LesprepError
+from lesprep.layout import ResultsLayout
 
 log = logging.getLogger("lesprep")
 
 
+STAGE_MODULES: dict[str, tuple[str, ...]] = {
+    "demo": ("lesprep.demo",),
+    "ingest": ("lesprep.canonical.ingest",),
+    "coarsen": ("lesprep.scales.coarsen",),
+    "splits": ("lesprep.sets.splits",),
+    "assemble": ("lesprep.sets.assemble",),
+    "report": ("lesprep.report.figures", "lesprep.report.tables"),
+}
+"""Entry modules of each stage; a stage's code version covers them and what they import
+(:mod:`lesprep.codeversion`)."""
+
+
+def stage_code_versions() -> dict[str, str]:
+    """Code version of every stage (see :data:`STAGE_MODULES`)."""
+    return {stage: code_version(mods) for stage, mods in STAGE_MODULES.items()}
+
+
 def _demo(smk: Any) -> None:
-    from lesprep.demo.physics import demo_case, write_demo_case
+    from lesprep.demo import demo_case, write_demo_case
 
     out = Path(smk.output[0])
     spec = demo_case(smk.wildcards.case)
-    size = dict(smk.params.size or {})
+    size = dict(smk.params.size)
     if size:
         spec = spec.with_size(**size)
     write_demo_case(spec, out.parent)
 
 
 def _ingest(smk: Any) -> None:
-    from lesprep.canonical.ingest import ingest_case, settings_from_config
+    from lesprep.canonical.ingest import ingest_case
+    from lesprep.canonical.settings import IngestSettings
 
     p = smk.params.settings
     ingest_case(
         case=p["case"],
         raw=p["raw"],  # the case sheet's glob; for demo cases the rule's input is its folder
         varmap=smk.input.varmap,
-        settings=settings_from_config(smk.config, p["spinup"]),
+        settings=IngestSettings.from_dict(p["ingest"]),
         out=smk.output.store,
         regime=p["regime"],
-        config_record=smk.config,
+        config_record=p,
     )
 
 
 def _coarsen(smk: Any) -> None:
-    from lesprep.scales.coarsen import coarsen_case, settings_from_config
+    from lesprep.scales.coarsen import coarsen_case
+    from lesprep.scales.settings import CoarsenSettings
 
     p = smk.params.settings
-    cfg = {
-        "coarsen": {**p["coarsen"], "scales": p["scales"]},
-        "ingest": p["ingest"],
-        "store": p["store"],
-    }
-    settings = settings_from_config(cfg, p["labels"])
-    outputs = dict(zip(p["labels"], list(smk.output.stores), strict=True))
-    coarsen_case(smk.input.canonical, outputs, settings, config_record=smk.config)
+    settings = CoarsenSettings.from_dict(p["coarsen"])
+    outputs = dict(zip(settings.labels, list(smk.output.stores), strict=True))
+    coarsen_case(smk.input.canonical, outputs, settings, config_record=p)
 
 
 def _splits(smk: Any) -> None:
-    from lesprep.sets.splits import CaseInfo, SplitRule, assign_splits, write_assignment_tsv
+    from lesprep.sets.splits import Assignment, write_assignment_tsv
 
     p = smk.params.settings
-    rule = SplitRule.from_dict(p["rule"])
-    cases = [CaseInfo(case=c, regime=r, pinned=s or None) for c, r, s in p["cases"]]
-    assignments, messages = assign_splits(cases, rule)
-    for m in messages:
+    for m in p["messages"]:
         log.warning("%s", m)
-    write_assignment_tsv(assignments, smk.output[0])
+    write_assignment_tsv([Assignment.from_dict(a) for a in p["assignment"]], smk.output[0])
 
 
 def _assemble(smk: Any) -> None:
-    from lesprep.sets.assemble import build_set, settings_from_config, write_normalization
+    from lesprep.sets.assemble import build_set, write_normalization
+    from lesprep.sets.settings import SetSettings
 
     p = smk.params.settings
-    cfg = {"sets": p["sets"], "ingest": {"dtype": p["dtype"]}, "store": p["store"]}
     inputs = dict(zip(p["cases"], list(smk.input.stores), strict=True))
-    assignment = p["assignment"]
     build_set(
         inputs,
         p["regimes"],
         smk.output.store,
-        settings_from_config(cfg),
+        SetSettings.from_dict(p["sets"]),
         split=p["split"],
         scale=p["scale"],
-        extra_provenance={"split_rule": p["rule"], "assignment": assignment},
+        extra_provenance={"split_rule": p["rule"], "assignment": p["assignment"]},
     )
     if "stats" in smk.output.keys():  # the train split also yields the normalization
         write_normalization(smk.output.store, smk.output.stats, scale=p["scale"])
 
 
 def _figures(smk: Any) -> None:
-    from lesprep.report import figures
+    from lesprep.report.figures import draw_report_figures
 
-    results = Path(smk.params.results)
-    for case in smk.params.cases:
-        canon = results / "cases" / case / "canonical.zarr"
-        out = results / "figures" / "cases" / case
-        figures.case_timeseries(canon, None, None, out / "timeseries.png")
-        figures.case_profiles(canon, out / "profiles.png")
-        figures.case_lwp_map(canon, out / "lwp_map.png")
-    for label in smk.params.scales:
-        sets = results / "sets"
-        out = results / "figures" / "scales" / label
-        train, test = sets / "train" / f"scale-{label}.zarr", sets / "test" / f"scale-{label}.zarr"
-        figures.scale_target_distribution(train, test, out / "target_distribution.png")
-        figures.scale_cf_vs_rh(train, out / "cf_vs_rh.png")
+    p = smk.params.settings
+    draw_report_figures(ResultsLayout(p["results"]), p["cases"], p["scales"])
 
 
 def _tables(smk: Any) -> None:
-    import shutil
+    from lesprep.report.tables import write_report_tables
 
-    from lesprep.report import figures
-
-    cases = {c: p for c, p in zip(smk.params.cases, smk.input.canonical, strict=True)}
-    figures.write_scenes_tsv(cases, smk.output.scenes)
-    figures.write_baseline_table(smk.params.sets, smk.output.baseline)
-    shutil.copyfile(smk.input.splits, smk.output.splits)
+    p = smk.params.settings
+    canonical = dict(zip(p["cases"], smk.input.canonical, strict=True))
+    write_report_tables(
+        canonical,
+        p["sets"],
+        splits=smk.input.splits,
+        scenes_out=smk.output.scenes,
+        baseline_out=smk.output.baseline,
+        splits_out=smk.output.splits,
+    )
 
 
 STEPS: dict[str, Callable[[Any], None]] = {

@@ -1,7 +1,7 @@
 """The raw archive of one case: which file holds which variable at which time.
 
 LES codes lay their output out in many ways (one file per output time, one file per
-variable, a mix). :func:`catalogue` opens every file lazily, checks each mapped raw
+variable, a mix). :func:`index_archive` opens every file lazily, checks each mapped raw
 variable's dimensions against the variable map, decodes every file's time axis to
 seconds since a common origin and builds an index ``(variable, time) -> (file, index)``.
 It refuses duplicate or overlapping time steps, non-monotonic time, variables missing
@@ -223,7 +223,7 @@ class RawGrid:
 
 
 @dataclass
-class Catalogue:
+class ArchiveIndex:
     """Index of one case's raw archive.
 
     Attributes
@@ -283,7 +283,7 @@ def _coord_values(
     return np.asarray(conv.apply(values), dtype=np.float64)
 
 
-def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue:
+def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> ArchiveIndex:
     """Index a case's raw files against its variable map.
 
     Parameters
@@ -297,7 +297,7 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
 
     Returns
     -------
-    Catalogue
+    ArchiveIndex
 
     Raises
     ------
@@ -470,7 +470,7 @@ def catalogue(files: list[Path], varmap: VariableMap, *, case: str) -> Catalogue
     for name, fi in static.items():
         if name not in where:
             where[name] = [(fi, -1)]
-    return Catalogue(
+    return ArchiveIndex(
         case=case,
         files=list(files),
         varmap=varmap,
@@ -514,7 +514,7 @@ def _same_grid(a: RawGrid, b: RawGrid, *, case: str, file: str, ref_file: str) -
 
 
 def read_field(
-    cat: Catalogue, name: str, time_index: int
+    cat: ArchiveIndex, name: str, time_index: int
 ) -> tuple[np.ndarray, str, str | None, tuple[int, float, float]]:
     """Read one canonical variable's raw values at one output time.
 

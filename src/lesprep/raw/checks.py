@@ -1,8 +1,9 @@
 """Value checks after unit conversion: finiteness and plausibility ranges.
 
-The plausibility ranges are common practice for boundary-layer LES, not physical laws;
-they exist to catch mislabelled units (g/kg stored under a ``kg kg-1`` label gives cloud
-water of order 1) and garbage. The config may override any of them.
+The plausibility ranges (``plausible`` of each entry of :mod:`lesprep.catalogue`) are
+common practice for boundary-layer LES, not physical laws; they exist to catch mislabelled
+units (g/kg stored under a ``kg kg-1`` label gives cloud water of order 1) and garbage.
+The config may override any of them (``ingest.plausible_ranges``).
 
 ============  ===================  ==========================================
 variable      default range        why
@@ -17,30 +18,12 @@ w             [-60, 60] m s-1       strongest convective updrafts stay below
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 
 import numpy as np
 from numpy.typing import NDArray
 
 from lesprep.errors import NonFiniteError, RangeError
-
-DEFAULT_RANGES: dict[str, tuple[float, float]] = {
-    "qc": (0.0, 0.02),
-    "qv": (0.0, 0.05),
-    "T": (150.0, 340.0),
-    "p": (1.0e4, 1.1e5),
-    "w": (-60.0, 60.0),
-}
-
-
-def resolve_ranges(
-    overrides: Mapping[str, Sequence[float]] | None,
-) -> dict[str, tuple[float, float]]:
-    """Default ranges updated with the config's overrides."""
-    out = dict(DEFAULT_RANGES)
-    for k, v in (overrides or {}).items():
-        out[k] = (float(v[0]), float(v[1]))
-    return out
 
 
 def value_extent(values: NDArray[np.floating]) -> tuple[int, float, float]:

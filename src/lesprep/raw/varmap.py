@@ -31,32 +31,9 @@ from typing import Any
 
 import yaml
 
+from lesprep import catalogue
 from lesprep.config import _schema, validate
 from lesprep.errors import ConfigError
-
-CANONICAL_UNITS: dict[str, str] = {
-    "qc": "kg kg-1",
-    "qv": "kg kg-1",
-    "T": "K",
-    "p": "Pa",
-    "w": "m s-1",
-}
-"""Canonical units of the ingested variables (UDUNITS spelling)."""
-
-QUANTITY_UNITS: dict[str, str] = {
-    "mixing_ratio": "kg kg-1",
-    "specific_humidity": "kg kg-1",
-    "temperature": "K",
-    "potential_temperature": "K",
-}
-
-ALLOWED_QUANTITIES: dict[str, tuple[str, ...]] = {
-    "qc": ("direct", "mixing_ratio"),
-    "qv": ("direct", "mixing_ratio", "specific_humidity"),
-    "T": ("direct", "temperature", "potential_temperature"),
-    "p": ("direct",),
-    "w": ("direct",),
-}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -133,11 +110,19 @@ def parse_varmap(text: str, *, path: str = "<string>") -> VariableMap:
                     f"variable map {path}: variable {name!r} names dimension {d!r}, which is "
                     f"not declared under 'dims:' (declared: {sorted(roles)})",
                 )
+        if not catalogue.known(name) or catalogue.get(name).kind != "mapped":
+            mapped = sorted(v.name for v in catalogue.variables(kind="mapped"))
+            raise ConfigError(
+                f"variable map {path}: variable {name!r} is not a mapped variable of the "
+                f"variable catalogue; known: {mapped}",
+                hint="register it in lesprep.catalogue first, or fix the spelling",
+            )
         quantity = spec.get("quantity", "direct")
-        if quantity not in ALLOWED_QUANTITIES[name]:
+        allowed = list(catalogue.get(name).quantities)
+        if quantity not in allowed:
             raise ConfigError(
                 f"variable map {path}: quantity {quantity!r} does not fit {name!r}; "
-                f"allowed: {list(ALLOWED_QUANTITIES[name])}",
+                f"allowed: {allowed}",
             )
         variables[name] = VariableSpec(
             name=name,
@@ -160,6 +145,12 @@ def parse_varmap(text: str, *, path: str = "<string>") -> VariableMap:
             raise ConfigError(
                 f"variable map {path}: {name!r} must have axes time, z, y, x; found {axes}",
             )
+    missing = [n for n in catalogue.required_inputs() if n not in variables]
+    if missing:
+        raise ConfigError(
+            f"variable map {path}: required variable(s) {missing} are not mapped",
+            hint="every variable map must provide " + ", ".join(catalogue.required_inputs()),
+        )
     return VariableMap(
         flavour=data.get("flavour", ""),
         dims=roles,

@@ -34,6 +34,15 @@ class ScaleSpec:
         assert self.length_m is not None
         return f"{self.length_m:.6g}m".replace("+", "")
 
+    def to_dict(self) -> dict[str, Any]:
+        """Plain form; :meth:`from_dict` inverts it without parsing the text again."""
+        return {"text": self.text, "length_m": self.length_m, "factor": self.factor}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> ScaleSpec:
+        """Inverse of :meth:`to_dict`."""
+        return cls(text=d["text"], length_m=d["length_m"], factor=d["factor"])
+
     def resolve(self, dx: float, nx: int, ny: int, *, case: str) -> Scale | None:
         """Block factor for a grid, or raise ScaleError naming what would fit."""
         if self.factor is not None:
@@ -104,30 +113,3 @@ def parse_scales(values: list[Any]) -> list[ScaleSpec]:
     if dup:
         raise ConfigError(f"coarsen.scales lists the same scale twice: {sorted(dup)}")
     return specs
-
-
-def scale_groups(cfg_coarsen: dict[str, Any]) -> dict[str, list[str]]:
-    """Group name -> scale labels. Default: one group ``all`` with every scale.
-
-    Each group is one job per case that computes its scales in one pass.
-    """
-    specs = parse_scales(cfg_coarsen["scales"])
-    labels = [s.label for s in specs]
-    groups = cfg_coarsen.get("groups")
-    if not groups:
-        return {"all": labels}
-    out: dict[str, list[str]] = {}
-    seen: set[str] = set()
-    for g in groups:
-        glabels = [parse_scale(v).label for v in g]
-        for lab in glabels:
-            if lab not in labels:
-                raise ConfigError(f"coarsen.groups names scale {lab!r}, not in coarsen.scales")
-            if lab in seen:
-                raise ConfigError(f"coarsen.groups puts scale {lab!r} in two groups")
-            seen.add(lab)
-        out["g-" + "-".join(glabels)] = glabels
-    missing = [lab for lab in labels if lab not in seen]
-    if missing:
-        raise ConfigError(f"coarsen.groups leaves out scale(s) {missing}")
-    return out

@@ -34,60 +34,12 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
+from lesprep.sets.settings import SetSettings
 from lesprep.store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
-from lesprep.units import parse_quantity
 
 log = logging.getLogger(__name__)
 
 COORDS = ("case", "regime", "time", "z", "y", "x")
-
-
-@dataclass(frozen=True, kw_only=True)
-class SetSettings:
-    """Resolved settings of a training store."""
-
-    z_range: tuple[float, float] | None = None
-    time_stride: int = 1
-    shuffle: bool = True
-    shuffle_seed: int = 0
-    chunk_mib: float = 8.0
-    dtype: str = "float32"
-    store: Mapping[str, Any] | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        """Record for provenance."""
-        return {
-            "z_range_m": self.z_range,
-            "time_stride": self.time_stride,
-            "shuffle": self.shuffle,
-            "shuffle_seed": self.shuffle_seed,
-            "chunk_mib": self.chunk_mib,
-            "dtype": self.dtype,
-            "store": dict(self.store or {}),
-        }
-
-
-def settings_from_config(cfg: Mapping[str, Any]) -> SetSettings:
-    """Set settings from a validated config."""
-    s = cfg["sets"]
-    zr = s.get("z_range")
-    z_range = None
-    if zr:
-        z_range = (
-            parse_quantity(zr[0], "m", name="sets.z_range[0]"),
-            parse_quantity(zr[1], "m", name="sets.z_range[1]"),
-        )
-        if z_range[0] > z_range[1]:
-            raise ConfigError(f"sets.z_range {zr} is empty (min > max)")
-    return SetSettings(
-        z_range=z_range,
-        time_stride=int(s.get("time_stride", 1)),
-        shuffle=bool(s.get("shuffle", True)),
-        shuffle_seed=int(s.get("shuffle_seed", 0)),
-        chunk_mib=float(s.get("chunk_mib", 8)),
-        dtype=cfg["ingest"].get("dtype", "float32"),
-        store=dict(cfg.get("store", {})),
-    )
 
 
 @dataclass(frozen=True)

@@ -258,12 +258,12 @@ class SplitRule:
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> SplitRule:
-        """Inverse of :meth:`to_dict`; ``seed`` may be omitted (0).
+        """Inverse of :meth:`to_dict` (the config's ``splits`` section has the same form).
 
         Parameters
         ----------
         d
-            Mapping with key ``fractions`` and optional key ``seed``.
+            Mapping with keys ``fractions`` and ``seed``.
 
         Returns
         -------
@@ -272,12 +272,12 @@ class SplitRule:
         Raises
         ------
         ConfigError
-            Missing ``fractions``, unknown keys, or invalid values.
+            Missing ``fractions`` or ``seed``, unknown keys, or invalid values.
 
         Examples
         --------
-        >>> SplitRule.from_dict({"fractions": {"train": 0.5, "test": 0.5}}).seed
-        0
+        >>> SplitRule.from_dict({"fractions": {"train": 0.5, "test": 0.5}, "seed": 4}).seed
+        4
         """
         if not isinstance(d, Mapping):
             raise ConfigError(f"split rule is {d!r}; expected a mapping with key 'fractions'")
@@ -288,7 +288,9 @@ class SplitRule:
             )
         if "fractions" not in d:
             raise ConfigError("split rule has no 'fractions'; expected e.g. {'train': 0.8, ...}")
-        return cls(fractions=d["fractions"], seed=d.get("seed", 0))
+        if "seed" not in d:
+            raise ConfigError("split rule has no 'seed'; expected an integer or a string")
+        return cls(fractions=d["fractions"], seed=d["seed"])
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -330,6 +332,23 @@ class Assignment:
         if isinstance(u, bool) or not isinstance(u, Real) or not 0.0 <= float(u) <= 1.0:
             raise ConfigError(f"u is {u!r}; expected a number in [0, 1]", case=self.case)
         object.__setattr__(self, "u", float(u))
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain form (job params, provenance); :meth:`from_dict` inverts it."""
+        return {
+            "case": self.case,
+            "regime": self.regime,
+            "split": self.split,
+            "reason": self.reason,
+            "u": self.u,
+        }
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> Assignment:
+        """Inverse of :meth:`to_dict`."""
+        return cls(
+            case=d["case"], regime=d["regime"], split=d["split"], reason=d["reason"], u=d["u"]
+        )
 
 
 def _stable_u(seed: int | str, case: str) -> float:

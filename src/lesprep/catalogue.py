@@ -1,0 +1,380 @@
+"""The variable catalogue: one entry per variable lesprep knows, and every stage asks it.
+
+An entry (:class:`Variable`) says everything the stages need to know about a variable:
+
+* its canonical units (UDUNITS spelling), CF ``standard_name`` where CF has one, a
+  ``long_name`` for the canonical store and a short ``label`` for composite names
+  ("block mean of <label>");
+* how it arrives: ``mapped`` (read from the raw files through a variable map) or
+  ``derived`` (computed per fine cell from other variables);
+* for a mapped variable, the quantities a raw field may measure (``quantity:`` in a
+  variable map), each with the units the raw field is converted to first and, where
+  the quantity is not the canonical one, the conversion to it;
+* its plausible range in canonical units (common practice, see :mod:`lesprep.raw.checks`);
+* for a derived variable, the variables it is computed from and its formula;
+* whether it may get sub-grid moments and fine patches at coarse scales.
+
+The units of a variance are the square of the field's units, those of a covariance the
+product of both fields' units (:func:`variance_units`, :func:`product_units`).
+
+Adding a variable is one :func:`register` call (or one entry in :data:`BUILTIN`), plus
+its line in a variable map and its place in the config. A variable the catalogue does
+not know cannot be mapped yet: :func:`get` names the known ones.
+
+Examples
+--------
+>>> get("qc").units
+'kg kg-1'
+>>> variance_units("m s-1")
+'m2 s-2'
+>>> product_units("m s-1", "K")
+'m s-1 K'
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from types import MappingProxyType
+from typing import Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+from lesprep import thermo
+from lesprep.errors import ConfigError
+
+Kind = Literal["mapped", "derived"]
+
+Convert = Callable[[NDArray[np.floating], Mapping[str, NDArray[np.floating]]], NDArray]
+"""Quantity conversion: ``(values, fields already converted) -> canonical values``."""
+
+Formula = Callable[[Mapping[str, NDArray[np.floating]]], NDArray]
+"""Formula of a derived variable: ``(fields of one time) -> values``."""
+
+
+@dataclass(frozen=True, kw_only=True)
+class Quantity:
+    """What a raw field may measure for a mapped variable.
+
+    Parameters
+    ----------
+    units
+        Units the raw field is converted to before ``convert`` (UDUNITS).
+    convert
+        Conversion to the canonical quantity, or None when the quantity is the canonical
+        one. It may use fields converted before it (``needs``).
+    needs
+        Variables ``convert`` reads, converted before this one.
+    description
+        The conversion as recorded in provenance.
+    """
+
+    units: str
+    convert: Convert | None = None
+    needs: tuple[str, ...] = ()
+    description: str = ""
+
+
+@dataclass(frozen=True, kw_only=True)
+class Variable:
+    """One catalogue entry (see the module docstring)."""
+
+    name: str
+    units: str
+    long_name: str
+    label: str
+    kind: Kind = "mapped"
+    standard_name: str | None = None
+    quantities: Mapping[str, Quantity] = field(default_factory=dict)
+    plausible: tuple[float, float] | None = None
+    derived_from: tuple[str, ...] = ()
+    formula: Formula | None = None
+    moments: bool = True
+    patches: bool = True
+    required: bool = False
+    extra_attrs: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", self.name):
+            raise ConfigError(
+                f"variable name {self.name!r} is not a plain identifier",
+                hint="use letters, digits and '_' (starting with a letter)",
+            )
+        if self.kind == "mapped" and "direct" not in self.quantities:
+            quantities = {"direct": Quantity(units=self.units), **self.quantities}
+            object.__setattr__(self, "quantities", MappingProxyType(quantities))
+        if self.kind == "derived" and not self.derived_from:
+            raise ConfigError(f"derived variable {self.name!r} names no inputs (derived_from)")
+
+    @property
+    def variance_units(self) -> str:
+        """Units of the variance (the square of :attr:`units`)."""
+        return variance_units(self.units)
+
+    def cf_attrs(self) -> dict[str, str]:
+        """CF attributes of the canonical (fine-grid) field."""
+        attrs = {"standard_name": self.standard_name} if self.standard_name else {}
+        attrs.update(long_name=self.long_name, units=self.units)
+        attrs.update(self.extra_attrs)
+        return attrs
+
+    def target_units(self, quantity: str) -> str:
+        """Units a raw field of ``quantity`` is converted to (ConfigError if not allowed)."""
+        if quantity not in self.quantities:
+            raise ConfigError(
+                f"variable {self.name!r} cannot be given as quantity {quantity!r}; "
+                f"allowed: {sorted(self.quantities)}"
+            )
+        return self.quantities[quantity].units
+
+
+_TOKEN = re.compile(r"^([A-Za-z]+)(-?\d+)?$")
+
+
+def _scaled(units: str, power: int) -> list[str]:
+    out: list[str] = []
+    for tok in units.split():
+        m = _TOKEN.match(tok)
+        if tok == "1" or m is None:
+            if tok != "1":
+                raise ValueError(f"cannot raise units {units!r} to a power (token {tok!r})")
+            continue
+        exp = int(m.group(2) or 1) * power
+        out.append(m.group(1) if exp == 1 else f"{m.group(1)}{exp}")
+    return out
+
+
+def variance_units(units: str) -> str:
+    """Units of a variance: each factor's exponent doubled (``"1"`` stays ``"1"``)."""
+    toks = _scaled(units, 2)
+    return " ".join(toks) if toks else "1"
+
+
+def product_units(a: str, b: str) -> str:
+    """Units of a covariance of two fields (the product of their units, UDUNITS spelling)."""
+    toks = [*_scaled(a, 1), *_scaled(b, 1)]
+    return " ".join(toks) if toks else "1"
+
+
+def _theta_to_t(values: NDArray, fields: Mapping[str, NDArray]) -> NDArray:
+    p = fields["p"] if fields["p"].ndim == 3 else fields["p"][:, None, None]
+    return thermo.temperature_from_potential_temperature(values, p)
+
+
+def _q_to_r(values: NDArray, fields: Mapping[str, NDArray]) -> NDArray:
+    return thermo.mixing_ratio_from_specific_humidity(values)
+
+
+_KG = "kg kg-1"
+BUILTIN: tuple[Variable, ...] = (
+    Variable(
+        name="p",
+        units="Pa",
+        standard_name="air_pressure",
+        long_name="air pressure",
+        label="air pressure",
+        plausible=(1.0e4, 1.1e5),
+        required=True,
+        patches=False,
+    ),
+    Variable(
+        name="qc",
+        units=_KG,
+        standard_name="cloud_liquid_water_mixing_ratio",
+        long_name="cloud liquid water mixing ratio",
+        label="cloud liquid water mixing ratio",
+        quantities={"mixing_ratio": Quantity(units=_KG)},
+        plausible=(0.0, 0.02),
+        required=True,
+    ),
+    Variable(
+        name="qv",
+        units=_KG,
+        standard_name="humidity_mixing_ratio",
+        long_name="water vapour mixing ratio",
+        label="water vapour mixing ratio",
+        quantities={
+            "mixing_ratio": Quantity(units=_KG),
+            "specific_humidity": Quantity(
+                units=_KG,
+                convert=_q_to_r,
+                description="mixing ratio r = q / (1 - q) from specific humidity q",
+            ),
+        },
+        plausible=(0.0, 0.05),
+        required=True,
+    ),
+    Variable(
+        name="T",
+        units="K",
+        standard_name="air_temperature",
+        long_name="air temperature",
+        label="air temperature",
+        quantities={
+            "temperature": Quantity(units="K"),
+            "potential_temperature": Quantity(
+                units="K",
+                convert=_theta_to_t,
+                needs=("p",),
+                description="T = theta * (p / 1000 hPa) ** (Rd/cp), "
+                f"Rd/cp = {thermo.KAPPA:.6f}",
+            ),
+        },
+        plausible=(150.0, 340.0),
+        required=True,
+    ),
+    Variable(
+        name="w",
+        units="m s-1",
+        standard_name="upward_air_velocity",
+        long_name="vertical velocity at cell centres",
+        label="vertical velocity",
+        plausible=(-60.0, 60.0),
+        required=True,
+    ),
+    Variable(
+        name="rh",
+        kind="derived",
+        units="1",
+        standard_name="relative_humidity",
+        long_name="relative humidity over liquid water (e/e_s, Bolton 1980)",
+        label="relative humidity",
+        derived_from=("p", "T", "qv"),
+    ),
+    Variable(
+        name="cloud_mask",
+        kind="derived",
+        units="1",
+        long_name="cloudy cell (qc > threshold)",
+        label="cloud mask",
+        derived_from=("qc",),
+        moments=False,
+        patches=False,
+        extra_attrs={"flag_values": "0 1", "flag_meanings": "clear cloudy"},
+    ),
+    Variable(
+        name="lwp",
+        kind="derived",
+        units="kg m-2",
+        standard_name="atmosphere_mass_content_of_cloud_liquid_water",
+        long_name="liquid water path",
+        label="liquid water path",
+        derived_from=("p", "T", "qv", "qc"),
+        moments=False,
+        patches=False,
+    ),
+)
+"""The variables lesprep ships with. ``rh``, ``cloud_mask`` and ``lwp`` are computed by
+the fused per-cell pass of :mod:`lesprep.canonical.derived` (no ``formula`` here)."""
+
+_REGISTRY: dict[str, Variable] = {}
+
+
+def register(variable: Variable, *, replace: bool = False) -> Variable:
+    """Add a variable to the catalogue.
+
+    Parameters
+    ----------
+    variable
+        The entry.
+    replace
+        Allow replacing an entry of the same name (default: an error).
+
+    Returns
+    -------
+    Variable
+        The registered entry.
+
+    Raises
+    ------
+    ConfigError
+        The name is taken (and ``replace`` is False), or a derived variable names an
+        input the catalogue does not know.
+    """
+    if variable.name in _REGISTRY and not replace:
+        raise ConfigError(
+            f"variable {variable.name!r} is already in the catalogue",
+            hint="pass replace=True to redefine it",
+        )
+    unknown = [v for v in variable.derived_from if v not in _REGISTRY]
+    if unknown:
+        raise ConfigError(
+            f"derived variable {variable.name!r} is computed from {unknown}, which the "
+            f"catalogue does not know; known: {sorted(_REGISTRY)}"
+        )
+    _REGISTRY[variable.name] = variable
+    return variable
+
+
+def unregister(name: str) -> None:
+    """Remove a variable registered with :func:`register` (built-in ones stay)."""
+    if name in {v.name for v in BUILTIN}:
+        raise ConfigError(f"variable {name!r} is built in and cannot be removed")
+    _REGISTRY.pop(name, None)
+
+
+def get(name: str) -> Variable:
+    """The entry of ``name`` (ConfigError naming the known variables if unknown)."""
+    try:
+        return _REGISTRY[name]
+    except KeyError:
+        raise ConfigError(
+            f"variable {name!r} is not in the variable catalogue; known: {sorted(_REGISTRY)}",
+            hint="register it with lesprep.catalogue.register (units, long_name, label)",
+        ) from None
+
+
+def known(name: str) -> bool:
+    """Whether the catalogue has ``name``."""
+    return name in _REGISTRY
+
+
+def variables(*, kind: Kind | None = None) -> Iterator[Variable]:
+    """Every entry, in registration order (optionally of one kind)."""
+    return (v for v in list(_REGISTRY.values()) if kind is None or v.kind == kind)
+
+
+def required_inputs() -> tuple[str, ...]:
+    """Mapped variables every variable map must provide (those the derived fields need)."""
+    return tuple(v.name for v in variables(kind="mapped") if v.required)
+
+
+def plausible_ranges() -> dict[str, tuple[float, float]]:
+    """Default plausibility range of every variable that has one (canonical units)."""
+    return {v.name: v.plausible for v in variables() if v.plausible is not None}
+
+
+def check_names(names: list[str] | tuple[str, ...], *, what: str, use: str) -> tuple[str, ...]:
+    """Check configured variable names against the catalogue.
+
+    Parameters
+    ----------
+    names
+        Variable names as configured.
+    what
+        The config key, for the message (``coarsen.moments``).
+    use
+        ``"moments"`` or ``"patches"``: the capability the names must have.
+
+    Raises
+    ------
+    ConfigError
+        An unknown name, or one that may not get ``use``.
+    """
+    for n in names:
+        var = get(n) if known(n) else None
+        if var is None:
+            raise ConfigError(
+                f"{what} lists {n!r}, which the variable catalogue does not know; "
+                f"known: {sorted(_REGISTRY)}"
+            )
+        if not getattr(var, use):
+            allowed = sorted(v.name for v in variables() if getattr(v, use))
+            raise ConfigError(f"{what} lists {n!r}, which cannot get {use}; allowed: {allowed}")
+    return tuple(names)
+
+
+for _v in BUILTIN:
+    register(_v)

@@ -1,0 +1,104 @@
+"""The workflow's settings, parsed once: from a validated config to one value per stage.
+
+:class:`WorkflowSettings` is built once when the workflow is planned (or by the command
+line and the tests). Each job receives only its own stage's settings as plain
+``to_dict()`` params and rebuilds them with ``from_dict()``, so a job never reads the
+config, and a setting that a job does not use never re-runs it. Defaults live in the
+config schema only (``lesprep/schemas/config.schema.yaml``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from lesprep.canonical.settings import IngestSettings
+from lesprep.config import CaseRow, prepare_config, read_config
+from lesprep.jobs.resources import ResourceSettings
+from lesprep.layout import ResultsLayout
+from lesprep.scales.settings import CoarsenPlan
+from lesprep.sets.settings import SetSettings
+from lesprep.sets.splits import SplitRule
+from lesprep.store import StoreSettings
+
+
+@dataclass(frozen=True, kw_only=True)
+class DemoSettings:
+    """Where the synthetic demo archives go and an optional grid override."""
+
+    root: Path
+    size: Mapping[str, int]
+
+
+@dataclass(frozen=True, kw_only=True)
+class WorkflowSettings:
+    """Every stage's settings, parsed from one validated config.
+
+    Attributes
+    ----------
+    results
+        The results tree.
+    cases
+        Path of the case sheet.
+    demo
+        Demo archive settings.
+    ingest
+        Ingest settings (a case's own spin-up: :meth:`ingest_for`).
+    coarsen
+        Scales, scale groups and the coarsening settings (per group:
+        :meth:`CoarsenPlan.for_group`).
+    split_rule
+        Fractions and seed of the whole-case split.
+    sets
+        Training-store settings.
+    store
+        Compressor settings of every store.
+    resources
+        Job sizing.
+    """
+
+    results: ResultsLayout
+    cases: Path
+    demo: DemoSettings
+    ingest: IngestSettings
+    coarsen: CoarsenPlan
+    split_rule: SplitRule
+    sets: SetSettings
+    store: StoreSettings
+    resources: ResourceSettings
+
+    @classmethod
+    def from_config(cls, cfg: Mapping[str, Any], *, what: str = "config") -> WorkflowSettings:
+        """Validate ``cfg`` against the schema, fill its defaults and parse every stage.
+
+        Raises
+        ------
+        lesprep.errors.ConfigError
+            A schema violation or a value that does not parse (names the key).
+        """
+        c = prepare_config(dict(cfg), what=what)
+        store = StoreSettings.from_dict(c["store"])
+        ingest = IngestSettings.from_config(c["ingest"], store)
+        dtype = ingest.dtype
+        return cls(
+            results=ResultsLayout(c["results"]),
+            cases=Path(c["cases"]),
+            demo=DemoSettings(root=Path(c["demo"]["root"]), size=dict(c["demo"]["size"])),
+            ingest=ingest,
+            coarsen=CoarsenPlan.from_config(c["coarsen"], dtype=dtype, store=store),
+            split_rule=SplitRule.from_dict(c["splits"]),
+            sets=SetSettings.from_config(c["sets"], dtype=dtype, store=store),
+            store=store,
+            resources=ResourceSettings.from_config(c["resources"]),
+        )
+
+    @classmethod
+    def load(cls, path: str | Path) -> WorkflowSettings:
+        """Read a config file (YAML) and parse it."""
+        return cls.from_config(read_config(path), what=str(path))
+
+    def ingest_for(self, row: CaseRow) -> IngestSettings:
+        """Ingest settings of one case (its own spin-up, if the case sheet gives one)."""
+        return self.ingest.for_case(row.spinup_s)

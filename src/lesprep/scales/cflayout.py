@@ -1,0 +1,169 @@
+"""CF layout of the scale stores: dims, chunks, attributes and coarse-cell coordinates.
+
+Attributes of moment and patch outputs come from the variable catalogue
+(:mod:`lesprep.catalogue`): standard_name, label and units, variance units the square of
+the field's; the fixed outputs (cloud fraction, GCM-view inputs, column quantities) have
+their own entries here.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from lesprep import catalogue
+from lesprep.scales.settings import CoarsenSettings
+from lesprep.scales.spec import Scale
+from lesprep.scales.step import z_chunk_levels
+from lesprep.store import (
+    ArraySpec,
+)
+
+
+def output_attrs(name: str, s: Scale, threshold: float) -> dict[str, str]:
+    base, _, kind = name.rpartition("_")
+    table = {
+        "cloud_fraction": {
+            "standard_name": "cloud_area_fraction_in_atmosphere_layer",
+            "long_name": f"fraction of fine cells with qc > {threshold:g} kg kg-1",
+            "units": "1",
+            "cell_methods": "area: mean",
+        },
+        "rh_of_means": {
+            "long_name": "relative humidity of the coarse means of qv, T and p (Bolton 1980)",
+            "units": "1",
+        },
+        "drh_dz": {"long_name": "vertical derivative of rh_of_means", "units": "m-1"},
+        "cf_sundqvist": {
+            "long_name": "Sundqvist et al. (1989) cloud fraction from rh_of_means",
+            "units": "1",
+        },
+        "lwp_mean": {
+            "standard_name": "atmosphere_mass_content_of_cloud_liquid_water",
+            "long_name": "block mean of liquid water path",
+            "units": "kg m-2",
+            "cell_methods": "area: mean",
+        },
+        "lwp_var": {
+            "long_name": "sub-grid variance of liquid water path",
+            "units": "kg2 m-4",
+            "cell_methods": "area: variance",
+        },
+        "cloud_cover": {
+            "standard_name": "cloud_area_fraction",
+            "long_name": "fraction of fine columns with any cloudy cell",
+            "units": "1",
+            "cell_methods": "area: mean",
+        },
+        "p_mean": {
+            "standard_name": "air_pressure",
+            "long_name": "block mean of air pressure",
+            "units": "Pa",
+            "cell_methods": "area: mean",
+        },
+    }
+    if name in table:
+        return table[name]
+    var = catalogue.get(base) if kind in ("mean", "var", "skew", "patch") else None
+    if var is not None and kind == "mean":
+        a = {"standard_name": var.standard_name} if var.standard_name else {}
+        a.update(long_name=f"block mean of {var.label}", units=var.units)
+        a["cell_methods"] = "area: mean"
+        return a
+    if var is not None and kind == "var":
+        a = {
+            "long_name": f"sub-grid (population) variance of {var.label}",
+            "units": var.variance_units,
+            "cell_methods": "area: variance",
+        }
+        if var.units == "K":
+            a["units_metadata"] = "temperature: difference"
+        return a
+    if var is not None and kind == "skew":
+        return {
+            "long_name": f"sub-grid skewness of {var.label} (g1 = m3 / m2**1.5; 0 "
+            "where the block is constant)",
+            "units": "1",
+        }
+    if var is not None and kind == "patch":
+        return {
+            "long_name": f"fine-grid {var.label} under the coarse cell "
+            f"({s.factor} x {s.factor} fine cells)",
+            "units": var.units,
+        }
+    raise KeyError(f"no attributes for output {name!r}")
+
+
+def output_dims(name: str, arr: Any) -> tuple[str, ...]:
+    if name.endswith("_patch"):
+        return ("time", "z", "y", "x", "py", "px")
+    return {3: ("time", "z", "y", "x"), 2: ("time", "y", "x")}[arr.ndim]
+
+
+def scale_layout(
+    canon: xr.Dataset,
+    s: Scale,
+    sample: Mapping[str, Any],
+    settings: CoarsenSettings,
+    threshold: float,
+    slab: int,
+) -> dict[str, ArraySpec]:
+    nt = canon.sizes["time"]
+    dtype = np.dtype(settings.dtype)
+    out: dict[str, ArraySpec] = {}
+    for name, arr in sample.items():
+        dims = output_dims(name, arr)
+        shape = (nt, *arr.shape)
+        if arr.ndim >= 3:
+            zc = z_chunk_levels(arr.shape, dtype.itemsize, settings.chunk_mib, slab)
+            chunks = (1, zc, *arr.shape[1:])
+        else:
+            chunks = (1, *arr.shape)
+        zero_fill = name.startswith("qc_") or name in ("cloud_fraction", "lwp_mean", "lwp_var")
+        out[name] = ArraySpec(
+            dims=dims,
+            shape=shape,
+            chunks=chunks,
+            dtype=dtype,
+            attrs=output_attrs(name, s, threshold),
+            fill_value=0.0 if zero_fill else None,
+        )
+    ny, nx = canon.sizes["y"] // s.factor, canon.sizes["x"] // s.factor
+    L = s.length_m
+    x0 = float(canon.x.values[0]) - s.dx / 2
+    y0 = float(canon.y.values[0]) - s.dx / 2
+    xb = x0 + L * np.stack([np.arange(nx), np.arange(1, nx + 1)], axis=1)
+    yb = y0 + L * np.stack([np.arange(ny), np.arange(1, ny + 1)], axis=1)
+
+    def coord(dims: tuple[str, ...], values: np.ndarray, attrs: Mapping[str, Any]) -> ArraySpec:
+        values = np.asarray(values, dtype=np.float64)
+        return ArraySpec(
+            dims=dims,
+            shape=values.shape,
+            chunks=values.shape,
+            dtype="float64",
+            data=values,
+            attrs=dict(attrs),
+        )
+
+    out["time"] = coord(("time",), canon.time.values, canon.time.attrs)
+    out["z"] = coord(("z",), canon.z.values, canon.z.attrs)
+    out["z_bounds"] = coord(("z", "nv"), canon.z_bounds.values, canon.z_bounds.attrs)
+    out["y"] = coord(
+        ("y",),
+        yb.mean(axis=1),
+        {"units": "m", "long_name": "y of coarse-cell centres", "axis": "Y", "bounds": "y_bounds"},
+    )
+    out["x"] = coord(
+        ("x",),
+        xb.mean(axis=1),
+        {"units": "m", "long_name": "x of coarse-cell centres", "axis": "X", "bounds": "x_bounds"},
+    )
+    out["y_bounds"] = coord(("y", "nv"), yb, {"units": "m"})
+    out["x_bounds"] = coord(("x", "nv"), xb, {"units": "m"})
+    return out
+
+

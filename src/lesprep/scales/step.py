@@ -1,0 +1,317 @@
+"""One output time of one case, coarsened slab by slab to every scale of a job.
+
+:class:`StepCoarsener` takes the canonical fine fields one z-slab (one canonical chunk
+height) at a time and computes, for every scale, the block moments of the moment
+variables (hierarchically, coarser factors from finer ones), the cloud fraction, the
+GCM-view inputs and the patches; :func:`coarse_fields` does the same for fields in memory.
+Arithmetic is float64; outputs are rounded once to the stored dtype.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from lesprep.canonical import derived
+from lesprep.scales.moments import (
+    block_mean,
+    hierarchical_fractions,
+    hierarchical_moments,
+    plan_hierarchy,
+)
+from lesprep.scales.patches import extract_patches, patch_geometry
+from lesprep.scales.settings import CoarsenSettings
+from lesprep.scales.spec import Scale
+from lesprep.schemes import sundqvist_cloud_fraction
+
+
+def vertical_derivative(values: np.ndarray, z: np.ndarray, *, axis: int = 0) -> np.ndarray:
+    """d(values)/dz on a non-uniform grid: second order inside and at the ends."""
+    return np.gradient(np.asarray(values, dtype=np.float64), z, axis=axis, edge_order=2)
+
+
+def hierarchical_means(a: np.ndarray, factors: Sequence[int]) -> dict[int, np.ndarray]:
+    """Block means for several factors, coarser ones from finer ones (exact for means)."""
+    out: dict[int, np.ndarray] = {}
+    for f, parent in plan_hierarchy(factors).items():
+        out[f] = block_mean(a, f) if parent is None else block_mean(out[parent], f // parent)
+    return out
+
+
+SLAB_INPUTS = ("qc", "qv", "T", "w", "rh", "cloud_mask")
+"""Canonical 3-D fields every coarsening reads one z-slab at a time (with ``p`` when it
+is 3-D, and any further variable that gets moments or patches)."""
+
+
+def slab_inputs(settings: CoarsenSettings, *, p_is_3d: bool) -> tuple[str, ...]:
+    """Every canonical 3-D field a job reads per slab: :data:`SLAB_INPUTS`, the moment
+    and patch variables, and ``p`` when it is 3-D."""
+    names = [*SLAB_INPUTS, *settings.moments, *settings.patch_variables]
+    if p_is_3d:
+        names.append("p")
+    return tuple(n for n in dict.fromkeys(names) if n != "p" or p_is_3d)
+
+
+def slab_bounds(nz: int, levels: int) -> list[tuple[int, int]]:
+    """``(z0, z1)`` of consecutive slabs of at most ``levels`` levels covering ``nz``."""
+    step = max(1, int(levels))
+    return [(z0, min(nz, z0 + step)) for z0 in range(0, nz, step)]
+
+
+def z_chunk_levels(shape: Sequence[int], itemsize: int, chunk_mib: float, slab: int) -> int:
+    """Levels per z-chunk of a coarse ``(nz, ...)`` output array.
+
+    About ``chunk_mib`` MiB, as a whole multiple of the slab height ``slab`` (the
+    canonical chunk height coarsening reads at a time) or, for levels so large that a
+    slab exceeds the budget, one slab: every chunk row is then finished by one slab and
+    can be written while the next is computed. A column that fits is one chunk.
+    """
+    nz = int(shape[0])
+    per_level = max(1, int(np.prod(shape[1:])) * int(itemsize))
+    budget = int(chunk_mib * 2**20 // per_level)
+    if budget >= nz:
+        return nz
+    return max(1, min(nz, int(slab) * max(1, budget // int(slab))))
+
+
+class ZPieces:
+    """A ``(nz, ...)`` output kept as one array per z-chunk row, each allocated when a
+    slab first writes into it and handed on (:meth:`take_complete`) once it is full."""
+
+    def __init__(self, shape: tuple[int, ...], dtype: npt.DTypeLike, rows: int) -> None:
+        self.shape = tuple(shape)
+        self.ndim = len(self.shape)
+        self.dtype = np.dtype(dtype)
+        self.rows = int(rows)
+        self.pieces: dict[int, np.ndarray] = {}
+
+    def __getitem__(self, sl: slice) -> np.ndarray:
+        z0, z1 = int(sl.start), int(sl.stop)
+        start = (z0 // self.rows) * self.rows
+        end = min(self.shape[0], start + self.rows)
+        if z1 > end:
+            raise ValueError(f"levels {z0}:{z1} cross the z-chunk boundary at {end}")
+        piece = self.pieces.get(start)
+        if piece is None:
+            piece = self.pieces[start] = np.empty((end - start, *self.shape[1:]), self.dtype)
+        return piece[z0 - start : z1 - start]
+
+    def __setitem__(self, sl: slice, value: Any) -> None:
+        self[sl][...] = value
+
+    def take_complete(self, upto: int) -> list[tuple[int, np.ndarray]]:
+        """Pop the pieces that end at or below level ``upto``: ``(first level, array)``."""
+        done = [z for z, a in self.pieces.items() if z + a.shape[0] <= upto]
+        return [(z, self.pieces.pop(z)) for z in sorted(done)]
+
+
+class StepCoarsener:
+    """Coarse fields of one output time, built from z-slabs of the fine fields.
+
+    Every statistic except ``drh_dz`` and the column quantities is horizontal, so each
+    slab of levels is coarsened on its own and written into the step's output arrays:
+    the float64 work arrays are sized by the slab, not the column. :meth:`finish` adds
+    the column quantities and the vertical derivative (from float64 ``rh_of_means``).
+
+    Parameters
+    ----------
+    z
+        Cell-centre heights (m), ``(nz,)``.
+    shape
+        Fine ``(nz, ny, nx)``.
+    scales, settings
+        Resolved scales and the coarsening settings.
+    dtype
+        dtype of the outputs (arithmetic is float64).
+    p_profile
+        The ``(nz,)`` pressure profile when pressure is 1-D, else None (then every slab
+        carries ``p``).
+    stream
+        None: every output is a whole column, returned by :meth:`finish`. Else
+        ``(chunk_mib, slab)``: 3-D and patch outputs whose column needs more than one
+        z-chunk (:func:`z_chunk_levels`) are kept as :class:`ZPieces` and each finished
+        chunk row is handed out by :meth:`take_rows` as soon as a slab completes it
+        (``drh_dz``, which needs the whole column, is always returned by :meth:`finish`).
+    """
+
+    def __init__(
+        self,
+        z: np.ndarray,
+        shape: tuple[int, int, int],
+        scales: Sequence[Scale],
+        settings: CoarsenSettings,
+        *,
+        dtype: npt.DTypeLike = np.float64,
+        p_profile: np.ndarray | None = None,
+        stream: tuple[float, int] | None = None,
+    ) -> None:
+        self.stream = stream
+        self.rows: list[tuple[str, int, dict[str, np.ndarray]]] = []
+        self.z = np.asarray(z, dtype=np.float64)
+        self.shape = tuple(int(n) for n in shape)
+        self.scales = list(scales)
+        self.settings = settings
+        self.dtype = np.dtype(dtype)
+        self.p_profile = None if p_profile is None else np.asarray(p_profile, np.float64)
+        self.factors = sorted({s.factor for s in self.scales})
+        self.need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
+
+    def begin(self) -> None:
+        """Allocate the output arrays of a new time step."""
+        nz, ny, nx = self.shape
+        dt = self.dtype
+        st = self.settings
+        self.out: dict[str, dict[str, np.ndarray]] = {}
+        self.rh64 = {f: np.empty((nz, ny // f, nx // f)) for f in self.factors}
+        self.column = np.zeros((ny, nx), dtype=bool)
+        for s in self.scales:
+            f = s.factor
+            c3 = (nz, ny // f, nx // f)
+            names = []
+            for v in self.need:
+                names.append(f"{v}_mean")
+                if v in st.moments:
+                    names += [f"{v}_var", f"{v}_skew"]
+            names += ["p_mean", "cloud_fraction", "rh_of_means", "drh_dz", "cf_sundqvist"]
+            d: dict[str, Any] = {n: self._column(n, c3) for n in names}
+            for n in ("lwp_mean", "lwp_var", "cloud_cover"):
+                d[n] = np.empty(c3[1:], dtype=dt)
+            if s.label in st.patch_scales:
+                _, edge = patch_geometry(f, st.patch_size, st.patch_halo)
+                for v in st.patch_variables:
+                    d[f"{v}_patch"] = self._column(f"{v}_patch", (*c3, edge, edge))
+            self.out[s.label] = d
+
+    def _column(self, name: str, shape: tuple[int, ...]) -> Any:
+        if self.stream is not None and name != "drh_dz":
+            rows = z_chunk_levels(shape, self.dtype.itemsize, *self.stream)
+            if rows < shape[0]:
+                return ZPieces(shape, self.dtype, rows)
+        return np.empty(shape, dtype=self.dtype)
+
+    def take_rows(self) -> list[tuple[str, int, dict[str, np.ndarray]]]:
+        """Finished z-chunk rows of streamed outputs: ``(scale label, first level,
+        {name: array})``, each given out once."""
+        rows, self.rows = self.rows, []
+        return rows
+
+    def add_slab(self, z0: int, fine: Mapping[str, np.ndarray]) -> None:
+        """Coarsen the levels ``z0 : z0 + k`` (``fine`` holds ``SLAB_INPUTS`` and, for 3-D
+        pressure, ``p``, each ``(k, ny, nx)``)."""
+        st = self.settings
+        factors = self.factors
+        k = int(np.shape(fine["qc"])[0])
+        sl = slice(z0, z0 + k)
+        moments = {v: hierarchical_moments(fine[v], factors) for v in self.need}
+        mask = np.asarray(fine["cloud_mask"])
+        self.column |= np.any(mask, axis=0)
+        cf = hierarchical_fractions(mask, factors)
+        p_means = None if self.p_profile is not None else hierarchical_means(fine["p"], factors)
+        for s in self.scales:
+            f = s.factor
+            d = self.out[s.label]
+            for v in self.need:
+                m = moments[v][f]
+                if v in st.moments:
+                    m.variance_and_skewness(
+                        out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]), mean_out=d[f"{v}_mean"][sl]
+                    )
+                else:
+                    d[f"{v}_mean"][sl] = m.mean
+            t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
+            if p_means is not None:
+                p3 = p_means[f]
+            else:  # a 1-D profile: the same at every coarse cell of a level
+                assert self.p_profile is not None
+                p3 = np.broadcast_to(self.p_profile[sl, None, None], t_mean.shape)
+            d["p_mean"][sl] = p3
+            d["cloud_fraction"][sl] = cf[f]
+            rh = derived.relative_humidity(p3, t_mean, qv_mean, out=self.rh64[f][sl])
+            d["rh_of_means"][sl] = rh
+            sundqvist_cloud_fraction(rh, st.rh_critical, out=d["cf_sundqvist"][sl])
+            if s.label in st.patch_scales:
+                ds, _ = patch_geometry(f, st.patch_size, st.patch_halo)
+                for v in st.patch_variables:
+                    means = None  # the downsampled patch is a block mean computed above
+                    if ds > 1 and ds in factors and v in moments:
+                        means = moments[v][ds].mean
+                    elif ds > 1 and ds in factors and v == "cloud_mask":
+                        means = cf[ds]
+                    src = mask if v == "cloud_mask" else fine[v]
+                    extract_patches(
+                        src, f, st.patch_size, st.patch_halo, means=means, out=d[f"{v}_patch"][sl]
+                    )
+        for s in self.scales:
+            ready: dict[int, dict[str, np.ndarray]] = {}
+            for name, arr in self.out[s.label].items():
+                if isinstance(arr, ZPieces):
+                    for zs, piece in arr.take_complete(z0 + k):
+                        ready.setdefault(zs, {})[name] = piece
+            self.rows.extend((s.label, zs, part) for zs, part in sorted(ready.items()))
+
+    def finish(self, lwp: np.ndarray) -> dict[str, dict[str, np.ndarray]]:
+        """Column quantities and ``drh_dz``; returns the step's outputs per scale label."""
+        factors = self.factors
+        cover = hierarchical_fractions(self.column, factors)
+        lwp_m = hierarchical_moments(lwp, factors)
+        for s in self.scales:
+            f = s.factor
+            d = self.out[s.label]
+            d["drh_dz"][...] = vertical_derivative(self.rh64[f], self.z, axis=0)
+            d["lwp_mean"][...] = lwp_m[f].mean
+            d["lwp_var"][...] = lwp_m[f].variance()
+            d["cloud_cover"][...] = cover[f]
+        out = {
+            lab: {n: a for n, a in d.items() if not isinstance(a, ZPieces)}
+            for lab, d in self.out.items()
+        }
+        self.out = {}
+        self.rh64 = {}
+        return out
+
+
+def coarse_fields(
+    fine: Mapping[str, np.ndarray],
+    z: np.ndarray,
+    scales: Sequence[Scale],
+    settings: CoarsenSettings,
+    *,
+    dtype: npt.DTypeLike = np.float64,
+    slab_levels: int | None = None,
+) -> dict[str, dict[str, np.ndarray]]:
+    """All coarse fields of one output time, per scale label.
+
+    Parameters
+    ----------
+    fine
+        Canonical fine fields of one time: ``qc, qv, T, w, rh`` (z, y, x, float32 or
+        float64), ``cloud_mask`` (z, y, x, bool or 0/1), ``lwp`` (y, x) and ``p`` as
+        (z, y, x) or (z,).
+    z
+        Cell-centre heights (m).
+    scales
+        Resolved scales.
+    settings
+        Coarsening settings.
+    dtype
+        dtype of the returned arrays. The arithmetic is float64 whatever it is: moments
+        are accumulated in float64, and the GCM-view inputs (``rh_of_means``,
+        ``drh_dz``, ``cf_sundqvist``) are computed from the float64 means before rounding.
+    slab_levels
+        Levels coarsened at a time (default: all); the result does not depend on it.
+    """
+    shape = tuple(np.shape(fine["qc"]))
+    p = np.asarray(fine["p"])
+    step = StepCoarsener(
+        z, shape, scales, settings, dtype=dtype, p_profile=p if p.ndim == 1 else None
+    )
+    step.begin()
+    for z0, z1 in slab_bounds(shape[0], slab_levels or shape[0]):
+        slab = {v: np.asarray(fine[v])[z0:z1] for v in slab_inputs(settings, p_is_3d=p.ndim == 3)}
+        step.add_slab(z0, slab)
+    return step.finish(np.asarray(fine["lwp"]))
+
+

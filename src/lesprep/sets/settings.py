@@ -1,0 +1,100 @@
+"""Settings of the training stores, parsed once from the validated config.
+
+Defaults live in the config schema only.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any, Literal
+
+from lesprep.errors import ConfigError
+from lesprep.store import StoreSettings
+from lesprep.units import parse_quantity
+
+Dtype = Literal["float32", "float64"]
+
+
+@dataclass(frozen=True, kw_only=True)
+class SetSettings:
+    """Settings of one training store.
+
+    Attributes
+    ----------
+    z_range
+        Keep samples with z in [min, max] (m), or None for all.
+    time_stride
+        Keep every n-th kept output time.
+    shuffle, shuffle_seed
+        Store samples in a seeded random order.
+    chunk_mib
+        Target chunk size along ``sample`` (MiB).
+    dtype
+        Stored floating-point type.
+    store
+        Compressor settings.
+    """
+
+    z_range: tuple[float, float] | None
+    time_stride: int
+    shuffle: bool
+    shuffle_seed: int
+    chunk_mib: float
+    dtype: Dtype
+    store: StoreSettings
+
+    def __post_init__(self) -> None:
+        if self.z_range is not None:
+            lo, hi = (float(v) for v in self.z_range)
+            if lo > hi:
+                raise ConfigError(f"sets.z_range [{lo:g} m, {hi:g} m] is empty (min > max)")
+            object.__setattr__(self, "z_range", (lo, hi))
+
+    @classmethod
+    def from_config(
+        cls, sets: Mapping[str, Any], *, dtype: Dtype, store: StoreSettings
+    ) -> SetSettings:
+        """Parse the validated ``sets`` section once."""
+        zr = sets["z_range"]
+        z_range = None
+        if zr:
+            z_range = (
+                parse_quantity(zr[0], "m", name="sets.z_range[0]"),
+                parse_quantity(zr[1], "m", name="sets.z_range[1]"),
+            )
+        return cls(
+            z_range=z_range,
+            time_stride=int(sets["time_stride"]),
+            shuffle=bool(sets["shuffle"]),
+            shuffle_seed=int(sets["shuffle_seed"]),
+            chunk_mib=float(sets["chunk_mib"]),
+            dtype=dtype,
+            store=store,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain form (job params, provenance); :meth:`from_dict` inverts it."""
+        return {
+            "z_range_m": None if self.z_range is None else list(self.z_range),
+            "time_stride": self.time_stride,
+            "shuffle": self.shuffle,
+            "shuffle_seed": self.shuffle_seed,
+            "chunk_mib": self.chunk_mib,
+            "dtype": self.dtype,
+            "store": self.store.to_dict(),
+        }
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> SetSettings:
+        """Inverse of :meth:`to_dict`."""
+        zr = d["z_range_m"]
+        return cls(
+            z_range=None if zr is None else (float(zr[0]), float(zr[1])),
+            time_stride=int(d["time_stride"]),
+            shuffle=bool(d["shuffle"]),
+            shuffle_seed=int(d["shuffle_seed"]),
+            chunk_mib=float(d["chunk_mib"]),
+            dtype=d["dtype"],
+            store=StoreSettings.from_dict(d["store"]),
+        )

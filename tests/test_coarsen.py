@@ -14,9 +14,9 @@ from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import ScaleError
 from lesprep.provenance import load
 from lesprep.scales.coarsen import coarsen_case
-from lesprep.scales.step import coarse_fields, vertical_derivative
 from lesprep.scales.patches import extract_patches, reassemble
 from lesprep.scales.spec import Scale, parse_scale, parse_scales
+from lesprep.scales.step import coarse_fields, vertical_derivative
 from lesprep.store import open_store
 from settings_helpers import coarsen_settings, ingest_settings
 

@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from metpy.calc import density
+from metpy.units import units
 
-from lesprep.columns import liquid_water_path
+from lesprep.canonical.derived import cell_diagnostics
 from lesprep.errors import GridError
 from lesprep.raw.grid import (
     destagger_vertical,
@@ -24,13 +26,20 @@ def test_lwp_of_adiabatic_linear_profile() -> None:
     # qc rises linearly with height above cloud base zb at rate G up to cloud top zt:
     # LWP = rho * G * (zt - zb)**2 / 2 (closed form); cloud base/top fall on faces and
     # centres are midway between faces, so the midpoint rule is exact.
+    # The ingest's fused pass is checked, with uniform p, T, qv so the density is one
+    # number, taken from MetPy (density of moist air from p, T and the mixing ratio).
     faces = stretched_faces()
     z = 0.5 * (faces[1:] + faces[:-1])
     zb, zt = faces[20], faces[40]
-    gamma, rho = 2.0e-6, 1.1  # kg kg-1 per m (order of the adiabatic rate), kg m-3
-    qc = np.where((z > zb) & (z < zt), gamma * (z - zb), 0.0)
-    lwp = liquid_water_path(qc[:, None, None], np.full((z.size, 1, 1), rho), layer_thickness(faces))
-    assert float(lwp[0, 0]) == pytest.approx(rho * gamma * (zt - zb) ** 2 / 2, rel=1e-12)
+    gamma = 2.0e-6  # kg kg-1 per m (order of the adiabatic rate)
+    p, t, r = 90000.0, 285.0, 0.008
+    rho = density(p * units.Pa, t * units.K, r * units("kg/kg")).to("kg/m^3").magnitude
+    qc = np.where((z > zb) & (z < zt), gamma * (z - zb), 0.0)[:, None, None]
+    full = np.ones_like(qc)
+    diag = cell_diagnostics(
+        p * full, t * full, r * full, qc, layer_thickness(faces), 1e-5, dtype=np.float64
+    )
+    assert float(diag.lwp[0, 0]) == pytest.approx(rho * gamma * (zt - zb) ** 2 / 2, rel=1e-6)
 
 
 def test_faces_from_centres_and_bounds() -> None:

@@ -8,8 +8,9 @@ from pathlib import Path
 import netCDF4
 import numpy as np
 import pytest
+from metpy.calc import vapor_pressure
+from metpy.units import units
 
-from lesprep import thermo
 from lesprep.canonical.ingest import ingest_case
 from lesprep.demo.physics import demo_fields
 from lesprep.errors import (
@@ -273,9 +274,18 @@ def test_ingest_replaces_existing_output_atomically(tmp_path, demo_root):
     assert stale_temporaries(out) == []
 
 
-def test_saturated_cells_have_rh_one(ingested):
-    # the generator saturation-adjusts with Bolton (1980); the ingested rh agrees
+def test_stored_rh_against_metpy(ingested):
+    # the stored rh field against e / e_s from the stored p, T, qv: the vapour pressure e
+    # from MetPy, e_s from Bolton (1980) eq. 10 written out here, 611.2 Pa *
+    # exp(17.67 (T - 273.15) / (T - 29.65)); saturated cells (the generator
+    # saturation-adjusts) have rh = 1
     ds = open_store(ingested["sc-ostra-01"]).isel(time=-1)
-    qc = ds["qc"].values
-    rh = thermo.relative_humidity(ds["p"].values, ds["T"].values, ds["qv"].values)
-    np.testing.assert_allclose(rh[qc > 1e-6], 1.0, atol=2e-4)
+    stored = ds["rh"].values.astype(np.float64)
+    p = ds["p"].values.astype(np.float64) * units.Pa
+    t = ds["T"].values.astype(np.float64) * units.K
+    r = ds["qv"].values.astype(np.float64) * units("kg/kg")
+    e = vapor_pressure(p, r).to("Pa").magnitude
+    tk = t.magnitude
+    ref = e / (611.2 * np.exp(17.67 * (tk - 273.15) / (tk - 29.65)))
+    np.testing.assert_allclose(stored, ref, rtol=2e-6, atol=1e-6)
+    np.testing.assert_allclose(stored[ds["qc"].values > 1e-6], 1.0, atol=2e-4)

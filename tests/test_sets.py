@@ -121,7 +121,8 @@ def test_normalization_from_train_only(case_stores, tmp_path):
         assert doc["statistics"][v]["std"] == pytest.approx(a.std(), rel=1e-9)  # ddof=0
     assert json.loads((tmp_path / "n.json").read_text()) == doc
     assert json.loads(zarr.open_group(str(train)).attrs["normalization"]) == doc
-    # damage the held-out case's data: the train statistics do not move
+    # a held-out case changes: the train store, rebuilt from the same train cases, gives
+    # the same statistics, so nothing of the held-out split leaks into the normalization
     held = tmp_path / "held.zarr"
     shutil.copytree(case_stores["sc-ostra-02"], held)
     g = zarr.open_group(str(held), mode="r+")
@@ -134,7 +135,18 @@ def test_normalization_from_train_only(case_stores, tmp_path):
         split="test",
         scale="400m",
     )
-    assert normalization_stats(train) == doc["statistics"]
+    again = build(case_stores, ["sc-ostra-01", "cu-marro-01"], tmp_path / "train2.zarr")
+    assert normalization_stats(again) == doc["statistics"]
+    # and the check can fail: a changed train case does move them
+    changed = tmp_path / "changed.zarr"
+    shutil.copytree(case_stores["cu-marro-01"], changed)
+    zarr.open_group(str(changed), mode="r+")["qc_mean"][...] = 1.0
+    moved = build(
+        {**case_stores, "cu-marro-01": changed},
+        ["sc-ostra-01", "cu-marro-01"],
+        tmp_path / "train3.zarr",
+    )
+    assert normalization_stats(moved)["qc_mean"] != doc["statistics"]["qc_mean"]
 
 
 def test_provenance_command(case_stores, tmp_path):

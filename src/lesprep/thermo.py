@@ -64,8 +64,10 @@ def saturation_vapour_pressure(temperature: ArrayLike) -> NDArray[np.float64]:
 
     Examples
     --------
-    >>> round(float(saturation_vapour_pressure(293.15)), 1)
-    2337.0
+    Bolton's eq. 10 at 20 degC, 611.2 * exp(17.67 * 20 / 263.5) = 2336.95 Pa (worked by hand):
+
+    >>> round(float(saturation_vapour_pressure(293.15)), 2)
+    2336.95
     """
     tc = np.asarray(temperature, dtype=np.float64) - T0
     return 611.2 * np.exp(17.67 * tc / (tc + 243.5))

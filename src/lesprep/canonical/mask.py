@@ -2,23 +2,14 @@
 
 A fine cell is cloudy when its cloud liquid water mixing ratio exceeds the threshold,
 strictly (``qc > threshold``). The default threshold, 1e-5 kg kg-1 (0.01 g/kg), is
-common practice for LES cloud masks; it is configured as a quantity with units.
+common practice for LES cloud masks; it is configured as a quantity with units and
+parsed once into :attr:`lesprep.canonical.settings.IngestSettings.threshold`.
 """
 
 from __future__ import annotations
 
 import numpy as np
 from numpy.typing import NDArray
-
-from lesprep.units import parse_quantity
-
-DEFAULT_THRESHOLD = "1e-5 kg/kg"
-
-
-def threshold_value(text: str) -> float:
-    """Cloud threshold in kg kg-1 from a quantity with units (``"1e-5 kg/kg"``)."""
-    value = parse_quantity(text, "kg kg-1", name="cloud_threshold")
-    return value
 
 
 def cloud_mask(qc: NDArray[np.floating], threshold: float) -> NDArray[np.bool_]:

@@ -249,26 +249,33 @@ def w_extend(*, files: list[str], out: str, copies: int) -> dict[str, Any]:
     return {"time_s": time.perf_counter() - t0, "files": written}
 
 
-def _ingest_settings() -> Any:
-    from lesprep.canonical.ingest import IngestSettings
-    from lesprep.raw.checks import resolve_ranges
+def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
+    """The workflow's settings for the benchmark case, built as the workflow builds them."""
+    from lesprep.jobs.settings import WorkflowSettings
 
-    return IngestSettings(
-        spinup=SPINUP, cloud_threshold=THRESHOLD, ranges=resolve_ranges(None), store=dict(STORE)
+    return WorkflowSettings.from_config(
+        {
+            "cases": "unused.tsv",
+            "ingest": {"spinup": SPINUP, "cloud_threshold": THRESHOLD},
+            "coarsen": {
+                "scales": list(scales),
+                "patches": {
+                    "variables": ["qc", "w"],
+                    "scales": list(patch_scales),
+                    "size": PATCH_SIZE,
+                },
+            },
+            "store": dict(STORE),
+        }
     )
+
+
+def _ingest_settings() -> Any:
+    return _settings(["1 km"], []).ingest
 
 
 def _coarsen_settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
-    from lesprep.scales.coarsen import CoarsenSettings
-    from lesprep.scales.spec import parse_scale, parse_scales
-
-    return CoarsenSettings(
-        scales=tuple(parse_scales(list(scales))),
-        patch_variables=("qc", "w"),
-        patch_scales=tuple(parse_scale(s).label for s in patch_scales),
-        patch_size=PATCH_SIZE,
-        store=dict(STORE),
-    )
+    return _settings(scales, patch_scales).coarsen.for_group("all")
 
 
 def w_jit_warm() -> dict[str, Any]:
@@ -276,8 +283,8 @@ def w_jit_warm() -> dict[str, Any]:
     _import_lesprep()
     import numpy as np
 
-    from lesprep.scales.coarsen import coarse_fields
     from lesprep.scales.spec import parse_scales
+    from lesprep.scales.step import coarse_fields
 
     t0 = time.perf_counter()
     rng = np.random.default_rng(0)
@@ -694,7 +701,7 @@ def _store_trial(
     import zarr
 
     _import_lesprep()
-    from lesprep.store import compressors
+    from lesprep.store import StoreSettings, compressors
 
     writes, reads = [], []
     for _ in range(repeat):
@@ -706,7 +713,7 @@ def _store_trial(
             chunks=chunks,
             shards=shards,
             dtype=data.dtype,
-            compressors=compressors(store_cfg),
+            compressors=compressors(StoreSettings.from_dict(store_cfg)),
             fill_value=0,
             zarr_format=3,
         )

@@ -25,7 +25,7 @@ from matplotlib.patches import Rectangle, StepPatch
 
 from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import InputError
-from lesprep.report import figures
+from lesprep.report import figures, tables
 from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import build_set
@@ -344,7 +344,7 @@ def test_rh_critical_default_when_unrecorded():
 
 def test_scenes_for_case_against_numpy_and_scipy(tree):
     canon = tree["canon"]["cu-marro-01"]
-    frame = figures.scenes_for_case(canon)
+    frame = tables.scenes_for_case(canon)
     ds = open_store(canon)
     assert list(frame["time"]) == list(ds["time"].values)
     lwp = ds["lwp"].values.astype(np.float64)
@@ -357,12 +357,12 @@ def test_scenes_for_case_against_numpy_and_scipy(tree):
 
 
 def test_scene_table_rst(tree, tmp_path):
-    tsv = figures.write_scenes_tsv(tree["canon"], tmp_path / "scenes.tsv")
+    tsv = tables.write_scenes_tsv(tree["canon"], tmp_path / "scenes.tsv")
     table = pd.read_csv(tsv, sep="\t")
     assert list(table.columns[:2]) == ["case", "time_s"]
     assert list(dict.fromkeys(table["case"])) == list(FLAVOUR)
     out = tmp_path / "scenes.rst"
-    text = figures.scene_table_rst(tsv, tree["splits"], out)
+    text = tables.scene_table_rst(tsv, tree["splits"], out)
     assert out.read_text() == text
     # docutils (the reST reference parser) reads it as one table without complaint
     doctree = publish_doctree(text, settings_overrides={"report_level": 5, "halt_level": 5})

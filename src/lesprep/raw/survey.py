@@ -48,9 +48,10 @@ import netCDF4
 import numpy as np
 import pandas as pd
 
+from lesprep import catalogue
 from lesprep.errors import ConfigError, InputError
 from lesprep.raw.archive import parse_time_units
-from lesprep.raw.varmap import CANONICAL_UNITS, parse_varmap
+from lesprep.raw.varmap import parse_varmap
 from lesprep.units import ureg
 
 __all__ = [
@@ -65,7 +66,8 @@ __all__ = [
     "inspect_files",
 ]
 
-CANONICAL = ("qc", "qv", "T", "p", "w")
+CANONICAL = catalogue.required_inputs()
+"""The variables a draft proposes (those every variable map must provide)."""
 MIN_SCORE = 3.0
 """Name evidence a candidate needs to be proposed (a short-name or long-name match)."""
 
@@ -674,7 +676,7 @@ def _units_ok(canonical: str, units: str | None) -> bool | None:
         found = ureg.Unit(units.strip())
     except Exception:  # pint raises several unrelated types
         return None
-    return found.dimensionality == ureg.Unit(CANONICAL_UNITS[canonical]).dimensionality
+    return found.dimensionality == ureg.Unit(catalogue.get(canonical).units).dimensionality
 
 
 _PARTIAL: dict[str, tuple[str, ...]] = {
@@ -824,7 +826,7 @@ def _proposal_notes(c: str, v: VariableInfo) -> list[str]:
     if v.units is None:
         notes.append(
             f"{v.name!r} (proposed for {c}) has no units attribute; the draft assumes "
-            f"{CANONICAL_UNITS[c]!r} -- CHECK"
+            f"{catalogue.get(c).units!r} -- CHECK"
         )
     elif _units_ok(c, v.units) is None:
         notes.append(
@@ -869,7 +871,7 @@ def _propose(
             dims=v.dims,
             quantity=quantity,
             units=v.units,
-            assumed_units=CANONICAL_UNITS[c] if v.units is None else None,
+            assumed_units=catalogue.get(c).units if v.units is None else None,
             score=score,
             reasons=tuple(reasons),
             alternatives=tuple(f"{s[1]} ({s[0]:g})" for s in scored[c] if s[1] != raw),

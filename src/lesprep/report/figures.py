@@ -25,7 +25,6 @@ Conventions
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import os
 from collections.abc import Iterator, Mapping
@@ -33,7 +32,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import xarray as xr
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LogNorm
@@ -42,9 +40,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from lesprep import __version__, provenance
 from lesprep.errors import InputError
-from lesprep.report.scenes import SceneDescriptors, describe_case
+from lesprep.layout import ResultsLayout
 from lesprep.schemes import baseline_errors, sundqvist_cloud_fraction
-from lesprep.sets.splits import read_assignment_tsv
 from lesprep.store import open_store
 
 __all__ = [
@@ -53,13 +50,11 @@ __all__ = [
     "case_lwp_map",
     "case_profiles",
     "case_timeseries",
+    "draw_report_figures",
     "raw_output_times",
     "rh_critical_of",
     "scale_cf_vs_rh",
     "scale_target_distribution",
-    "scene_table_rst",
-    "scenes_for_case",
-    "write_scenes_tsv",
 ]
 
 DEFAULT_RH_CRITICAL = 0.8
@@ -666,172 +661,24 @@ def baseline_skill(set_store: str | Path, *, chunk: int = _CHUNK) -> dict[str, f
 # --------------------------------------------------------------------------- scenes
 
 
-def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
-    """Scene descriptors of every kept output time of one case.
+def draw_report_figures(layout: ResultsLayout, cases: list[str], scales: list[str]) -> None:
+    """Draw every per-case figure and, for ``scales``, the train/test figures.
 
     Parameters
     ----------
-    canonical_path
-        A case's canonical store; ``lwp`` and the column-cloudy field (any
-        ``cloud_mask`` over z) are passed to :func:`lesprep.report.scenes.describe_case` with
-        the store's ``dx`` (read one time at a time).
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns ``time`` (s since the time origin) and the fields of
-        :class:`lesprep.report.scenes.SceneDescriptors`, one row per kept time.
-
-    Examples
-    --------
-    >>> scenes_for_case("results/cases/c/canonical.zarr").columns[0]  # doctest: +SKIP
-    'time'
+    layout
+        The results tree (where the stores are and where the figures go).
+    cases
+        Case ids.
+    scales
+        Scale labels whose train and test stores both exist.
     """
-    ds = open_store(canonical_path, chunks={})
-    try:
-        _require(ds, ("lwp", "cloud_mask"), canonical_path)
-        column_cloudy = (ds["cloud_mask"] > 0).any("z")
-        return describe_case(ds["lwp"], column_cloudy, float(ds.attrs["dx"]))
-    finally:
-        ds.close()
-
-
-def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
-    """Scene descriptors of several cases as one tab-separated table.
-
-    Parameters
-    ----------
-    canonical_paths
-        Case id -> canonical store.
-    out_tsv
-        Table to write (UTF-8, a header line, one row per case and kept time, cases in
-        the order given): ``case``, ``time_s`` and the descriptor fields.
-
-    Returns
-    -------
-    pathlib.Path
-        ``out_tsv``.
-
-    Examples
-    --------
-    >>> write_scenes_tsv({"c": "results/cases/c/canonical.zarr"}, "scenes.tsv")  # doctest: +SKIP
-    """
-    frames = []
-    for case, path in canonical_paths.items():
-        frame = scenes_for_case(path).rename(columns={"time": "time_s"})
-        frame.insert(0, "case", case)
-        frames.append(frame)
-    columns = ["case", "time_s", *(f.name for f in dataclasses.fields(SceneDescriptors))]
-    table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=columns)
-    out = Path(out_tsv)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    table.to_csv(tmp, sep="\t", index=False, float_format="%.9g", lineterminator="\n")
-    os.replace(tmp, out)
-    return out
-
-
-def _cell(value: float, fmt: str) -> str:
-    return "n/a" if not np.isfinite(value) else format(value, fmt)
-
-
-def scene_table_rst(
-    scenes_tsv: str | Path, splits_tsv: str | Path, out_rst: str | Path | None = None
-) -> str:
-    """A reStructuredText table of every case: split assignment and scene descriptors.
-
-    Parameters
-    ----------
-    scenes_tsv
-        Table written by :func:`write_scenes_tsv`.
-    splits_tsv
-        The split assignment (``results/splits.tsv``).
-    out_rst
-        File to write the table to, or None to only return it.
-
-    Returns
-    -------
-    str
-        A ``list-table`` with one row per case of the assignment (in its order): regime,
-        split and its reason, kept times, and over those times the mean LWP (g m-2), the
-        mean population standard deviation of LWP (g m-2), the mean cloud cover, the
-        median spectral-peak wavelength (km, over times with a peak) and how many times
-        peak at the domain scale. Cases without scene rows show ``n/a``.
-
-    Examples
-    --------
-    >>> print(scene_table_rst("scenes.tsv", "splits.tsv"))  # doctest: +SKIP
-    """
-    scenes = pd.read_csv(scenes_tsv, sep="\t")
-    assignment = read_assignment_tsv(splits_tsv)
-    header = [
-        "case",
-        "regime",
-        "split (reason)",
-        "kept times",
-        "mean LWP (g m-2)",
-        "LWP std (g m-2)",
-        "cloud cover (1)",
-        "peak wavelength (km)",
-        "peak at domain",
-    ]
-    rows = []
-    for a in assignment:
-        sub = scenes[scenes["case"] == a.case]
-        n = len(sub)
-        if n:
-            peaks = sub["peak_wavelength_m"].to_numpy(dtype=np.float64)
-            peaks = peaks[np.isfinite(peaks)]
-            at_domain = sub["peak_at_domain"].astype(str).str.lower().eq("true").sum()
-            cells = [
-                str(n),
-                _cell(1000.0 * float(sub["lwp_mean"].mean()), ".1f"),
-                _cell(1000.0 * float(sub["lwp_std"].mean()), ".1f"),
-                _cell(float(sub["cloud_cover"].mean()), ".2f"),
-                _cell(float(np.median(peaks)) / 1000.0 if peaks.size else math.nan, ".2f"),
-                f"{int(at_domain)} of {n}",
-            ]
-        else:
-            cells = ["0", "n/a", "n/a", "n/a", "n/a", "n/a"]
-        rows.append([a.case, a.regime or "-", f"{a.split} ({a.reason})", *cells])
-    lines = [
-        ".. list-table:: Cases, their split and their liquid-water-path scenes "
-        "(means over the kept output times)",
-        "   :header-rows: 1",
-        "",
-    ]
-    for row in [header, *rows]:
-        for i, cell in enumerate(row):
-            lines.append(("   * - " if i == 0 else "     - ") + cell)
-    text = "\n".join(lines) + "\n"
-    if out_rst is not None:
-        out = Path(out_rst)
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
-    return text
-
-
-def write_baseline_table(sets: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
-    """Skill of the Sundqvist baseline per split and scale, as a TSV.
-
-    Parameters
-    ----------
-    sets
-        ``"<split>/<scale>"`` -> training store.
-    out_tsv
-        Table to write (columns split, scale, rmse, bias, mae, n), atomically.
-    """
-    rows = ["split\tscale\trmse\tbias\tmae\tn"]
-    for key in sorted(sets):
-        split, scale = key.split("/", 1)
-        skill = baseline_skill(sets[key])
-        rows.append(
-            f"{split}\t{scale}\t{skill['rmse']:.6g}\t{skill['bias']:.6g}\t"
-            f"{skill['mae']:.6g}\t{int(skill['n'])}"
-        )
-    out = Path(out_tsv)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp")
-    tmp.write_text("\n".join(rows) + "\n")
-    tmp.replace(out)
-    return out
+    for case in cases:
+        canon = layout.canonical(case)
+        case_timeseries(canon, None, None, layout.case_figure(case, "timeseries"))
+        case_profiles(canon, layout.case_figure(case, "profiles"))
+        case_lwp_map(canon, layout.case_figure(case, "lwp_map"))
+    for label in scales:
+        train, test = layout.set_store("train", label), layout.set_store("test", label)
+        scale_target_distribution(train, test, layout.scale_figure(label, "target_distribution"))
+        scale_cf_vs_rh(train, layout.scale_figure(label, "cf_vs_rh"))

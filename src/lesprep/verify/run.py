@@ -372,9 +372,9 @@ def working_directory(results: Path, recorded_results: str | None) -> Path:
 def _recorded_results(tree: _Tree) -> str | None:
     for prov in tree.prov.values():
         for st in walk_steps(prov):
-            cfg = st.get("config")
-            if st.get("step") == "ingest" and isinstance(cfg, dict) and cfg.get("results"):
-                return str(cfg["results"])
+            record = st.get("config")  # the job's recorded params
+            if st.get("step") == "ingest" and isinstance(record, dict) and record.get("results"):
+                return str(record["results"])
     return None
 
 

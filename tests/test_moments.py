@@ -406,4 +406,7 @@ def test_other_invalid_inputs():
         block_moments(np.zeros((4, 4)), 2, engine="gpu")
     with pytest.raises(InputError):
         BlockMoments(4, np.zeros((2, 2)), np.zeros((2, 3)), np.zeros((2, 2)))
-    assert np.int64(4) and block_moments(np.zeros((4, 4)), np.int64(4)).count == 16
+    # a numpy integer factor is accepted as the int it is: one 4 x 4 block of 16 cells
+    bm = block_moments(np.arange(16.0).reshape(4, 4), np.int64(4))
+    assert bm.count == 16 and bm.mean.shape == (1, 1)
+    assert float(bm.mean[0, 0]) == pytest.approx(7.5)  # numpy: arange(16).mean()

@@ -11,7 +11,7 @@ import pytest
 from lesprep.sets.assemble import decode_category, open_set
 from lesprep.sets.splits import read_assignment_tsv
 from lesprep.store import open_store
-from workflow_project import Project
+from workflow_project import REPO, Project
 
 pytestmark = pytest.mark.workflow
 
@@ -71,6 +71,36 @@ def test_threshold_change_reruns_masks_and_downstream(project):
     assert "demo_archive" not in jobs
     project.config["ingest"]["cloud_threshold"] = "1e-5 kg/kg"
     assert project.planned_jobs() == {}
+
+
+@pytest.mark.parametrize(
+    "edited, expected",
+    [
+        # a fix in the report code re-runs the report only
+        ("report/scenes.py", {"figures": 1, "tables": 1}),
+        # a change in coarsening code re-runs coarsening and what follows, never ingest
+        (
+            "scales/patches.py",
+            {
+                "coarsen_all": 4,
+                "assemble_train": 3,
+                "assemble_heldout": 3,
+                "figures": 1,
+                "tables": 1,
+            },
+        ),
+    ],
+)
+def test_code_change_reruns_only_its_stage(project, tmp_path, edited, expected):
+    src = tmp_path / "src"
+    shutil.copytree(
+        REPO / "src" / "lesprep", src / "lesprep", ignore=shutil.ignore_patterns("__pycache__")
+    )
+    f = src / "lesprep" / edited
+    f.write_text(f.read_text() + "\n# an edit\n")
+    jobs = project.planned_jobs(src=src)
+    jobs.pop("all", None)
+    assert jobs == expected
 
 
 def test_edited_raw_file_reruns_its_case(tmp_path):

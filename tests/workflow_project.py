@@ -82,7 +82,7 @@ class Project:
         (self.root / "config/cases.tsv").write_text("\n".join(lines) + "\n")
 
     def snakemake(
-        self, *args: str, timeout: float = 900, check: bool = True
+        self, *args: str, timeout: float = 900, check: bool = True, src: Path | None = None
     ) -> subprocess.CompletedProcess[str]:
         self.write()
         cmd = [
@@ -98,6 +98,8 @@ class Project:
             *args,
         ]
         env = {**os.environ, "PYTHONWARNINGS": "ignore"}
+        if src is not None:  # run another copy of the package (an edited one)
+            env["PYTHONPATH"] = os.pathsep.join([str(src), env.get("PYTHONPATH", "")])
         res = subprocess.run(
             cmd, capture_output=True, text=True, timeout=timeout, env=env, stdin=subprocess.DEVNULL
         )
@@ -107,9 +109,9 @@ class Project:
             )
         return res
 
-    def planned_jobs(self) -> dict[str, int]:
+    def planned_jobs(self, src: Path | None = None) -> dict[str, int]:
         """Jobs a dry run would execute, by rule (from Snakemake's job stats table)."""
-        res = self.snakemake("--dry-run")
+        res = self.snakemake("--dry-run", src=src)
         return parse_job_stats(res.stdout + res.stderr)
 
 

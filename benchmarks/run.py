@@ -176,7 +176,7 @@ def w_touch(*, gib: float = 1.0) -> dict[str, Any]:
 def w_generate(*, nx: int, ny: int, nz: int, ntimes: int, root: str, skip: bool) -> dict:
     """Write the demo archive unless ``root/<case>/manifest.json`` has the same spec."""
     _import_lesprep()
-    from lesprep.demo.physics import GENERATOR_VERSION, demo_case, write_demo_case
+    from lesprep.demo import GENERATOR_VERSION, demo_case, write_demo_case
 
     spec = demo_case(CASE).with_size(nx=nx, ny=ny, nz=nz, ntimes=ntimes)
     folder = Path(root) / CASE
@@ -1200,7 +1200,7 @@ class Suite:
         self.lesprep_dir = self.data / "lesprep"
         env = dict(kv.split("=", 1) for kv in args.worker_env)
         self.r = Runner(Path(args.out), Path(args.json), args.step_timeout, env)
-        self.dx = 50.0  # the demo cases' spacing (lesprep.demo.physics.DemoCase.dx)
+        self.dx = 50.0  # the demo cases' spacing (lesprep.demo.DemoCase.dx)
         self.scales = scale_texts(args.nx, args.ny, self.dx)
         self.labels = [label_of(float(s.split()[0])) for s in self.scales]
         factors = power_factors(args.nx, args.ny)

@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from lesprep.config import load_config
-from lesprep.demo.physics import DEMO_CASES, write_demo_case
+from lesprep.demo import DEMO_CASES, write_demo_case
 
 REPO = Path(__file__).resolve().parents[1]
 SMALL = {"nx": 24, "ny": 24, "nz": 24, "ntimes": 5}

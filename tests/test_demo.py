@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from lesprep import thermo
-from lesprep.demo import physics as demo
+from lesprep import demo, thermo
+from lesprep.demo import cases, physics
 from lesprep.errors import ConfigError, InputError
 
 mpcalc = pytest.importorskip("metpy.calc")
@@ -45,7 +45,7 @@ def _cover(fields: dict[str, np.ndarray]) -> float:
 
 def _mixed_layer(spec: demo.DemoCase, z: np.ndarray) -> np.ndarray:
     """Levels between 25 % and 75 % of the mixed-layer depth (first interface)."""
-    zi = demo._REGIMES[spec.kind].interfaces[0][0]
+    zi = cases._REGIMES[spec.kind].interfaces[0][0]
     return (z > 0.25 * zi) & (z < 0.75 * zi)
 
 
@@ -222,7 +222,7 @@ def test_stratocumulus_profile(case: str, last_fields) -> None:
     # linearised liquid-water potential temperature (Betts 1973)
     thl = (f["T"] / exner - thermo.LV / thermo.CP * f["qc"] / exner).mean(axis=(1, 2))
     qt = (f["qv"] + f["qc"]).mean(axis=(1, 2))
-    zi = demo._REGIMES[CASES[case].kind].interfaces[0][0]
+    zi = cases._REGIMES[CASES[case].kind].interfaces[0][0]
 
     def at(profile: np.ndarray, height: float) -> float:
         return float(np.interp(height, z, profile))
@@ -397,7 +397,7 @@ def test_interrupted_write_leaves_previous_archive(tmp_path: Path, monkeypatch) 
     spec = demo.demo_case("sc-ostra-01").with_size(nx=12, ny=12, ntimes=3)
     folder = demo.write_demo_case(spec, tmp_path)
     before = (folder / "manifest.json").read_text()
-    real_state = demo._state
+    real_state = physics.state_at
 
     def failing(s: demo.DemoCase, i: int):
         if i == 2:

@@ -12,7 +12,7 @@ from metpy.calc import vapor_pressure
 from metpy.units import units
 
 from lesprep.canonical.ingest import ingest_case
-from lesprep.demo.physics import demo_fields
+from lesprep.demo import demo_fields
 from lesprep.errors import (
     ConfigError,
     GridError,

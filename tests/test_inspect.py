@@ -16,7 +16,7 @@ import pytest
 import yaml
 
 from lesprep.canonical.ingest import ingest_case
-from lesprep.demo.physics import demo_case, write_demo_case
+from lesprep.demo import demo_case, write_demo_case
 from lesprep.errors import ConfigError, InputError
 from lesprep.raw.survey import draft_varmap, inspect_files
 from lesprep.raw.varmap import parse_varmap

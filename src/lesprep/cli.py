@@ -17,7 +17,7 @@ from lesprep.errors import LesprepError
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from lesprep.demo.physics import DEMO_CASES, demo_case, write_demo_case
+    from lesprep.demo import DEMO_CASES, demo_case, write_demo_case
 
     ids = args.case or [c.case for c in DEMO_CASES]
     size = {k: getattr(args, k) for k in ("nx", "ny", "nz", "ntimes") if getattr(args, k)}

@@ -48,407 +48,40 @@ Conventions
 
 from __future__ import annotations
 
-import dataclasses
 import functools
-import hashlib
 import itertools
-import json
 import math
-import re
-import shutil
-import uuid
 import zlib
 from dataclasses import dataclass
-from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
-import netCDF4
 import numpy as np
 from numpy.typing import NDArray
 
 from lesprep import thermo
-from lesprep.demo.spectral import evolving_field
-from lesprep.errors import ConfigError, InputError
-
-GENERATOR_VERSION = "1"
-"""Version of the generated data; bump when the fields change."""
-
-SOURCE = "lesprep synthetic demo (not a real simulation)"
-SURFACE_PRESSURE = 101500.0
-"""Surface pressure of every demo case, Pa."""
-SPINUP_TAU_S = 1800.0
-"""Time scale ``tau`` of the spin-up (Gaussian in time, see the module docstring), s."""
-SPINUP_FLOOR = 0.05
-"""Perturbation amplitude at t = 0, as a fraction of the steady-state amplitude."""
-BETA_FIRST_OUTPUT_S = 900.0
-"""First output time of flavour beta, s after the start of the run."""
-BETA_TIME_UNITS = "hours since 2031-06-01 00:00:00"
-DECORRELATION_S = 3600.0
-"""Decorrelation time of the largest turbulent eddies, s."""
-DYNAMIC_PRESSURE_FACTOR = 0.25
-
-Kind = Literal["overcast", "broken", "cumulus"]
-Flavour = Literal["alpha", "beta"]
-_KINDS = ("overcast", "broken", "cumulus")
-_FLAVOURS = ("alpha", "beta")
-_CASE_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
-_TANH_10_90 = 2.0 * math.atanh(0.8)  # 10-90 % depth of tanh(z / w) is this times w
-
-
-# --------------------------------------------------------------------------- regimes
-
-
-@dataclass(frozen=True)
-class _Cells:
-    """Cellular pattern of the broken deck (hexagons from three plane waves)."""
-
-    wavelength: float = 1500.0  # m
-    w_amp: float = 0.55  # m s-1, std of the cellular w at mid-layer
-    q_amp: float = 0.45e-3  # kg kg-1
-    th_amp: float = 0.15  # K
-    zi_amp: float = 20.0  # m, inversion lifted above the cloudy updrafts
-
-
-@dataclass(frozen=True)
-class _Plumes:
-    """Gaussian cumulus plumes with a life cycle."""
-
-    density_per_km2: float = 1.5  # mean number of active plumes per km2
-    radius: tuple[float, float] = (100.0, 300.0)  # m, e-folding radius
-    w_peak: tuple[float, float] = (2.0, 5.0)  # m s-1
-    life_s: tuple[float, float] = (1200.0, 2700.0)
-    top_max: float = 2500.0  # m
-    q_excess: float = 0.6e-3  # kg kg-1, source-air excess over the mixed layer
-    th_excess: float = 0.3  # K
-    entrainment_scale: float = 3000.0  # m, e-folding of undiluted air above the layer top
-
-
-@dataclass(frozen=True)
-class _Regime:
-    """Base-state profile and perturbation parameters of one kind of case.
-
-    Layer 0 is well mixed (``theta_ml``, ``qt_ml``); layer ``j + 1`` starts at interface
-    ``j`` with a jump and a linear slope. ``w_sigma`` etc. give one value per layer.
-    """
-
-    theta_ml: float  # K
-    z_base: float  # m, cloud base of the steady state (sets qt_ml)
-    interfaces: tuple[tuple[float, float], ...]  # (height m, 10-90 % thickness m)
-    theta_layers: tuple[tuple[float, float], ...]  # (jump K, slope K m-1)
-    qt_layers: tuple[tuple[float, float], ...]  # (jump kg kg-1, slope kg kg-1 m-1)
-    spinup_below: int  # index of the interface below which the spin-up deficit applies
-    w_sigma: tuple[float, ...]  # m s-1, peak std of turbulent w per layer
-    w_modes: tuple[int, ...]
-    q_sigma: tuple[float, ...]  # kg kg-1
-    th_sigma: tuple[float, ...]  # K
-    rho_q: float = 0.7  # correlation of qt anomaly with w
-    rho_th: float = 0.5  # correlation of theta_l anomaly with w
-    zi_sigma: float = 15.0  # m, undulation of interface 0
-    velocity: tuple[float, float] = (2.0, -1.0)  # m s-1, translation of all structures
-    spinup_dq: float = 2.0e-3  # kg kg-1
-    cells: _Cells | None = None
-    plumes: _Plumes | None = None
-
-    @property
-    def min_top(self) -> float:
-        """Lowest domain top that holds the profile (last interface + 300 m)."""
-        z, thick = self.interfaces[-1]
-        return z + thick + 300.0
-
-
-_REGIMES: dict[str, _Regime] = {
-    "overcast": _Regime(
-        theta_ml=289.0,
-        z_base=720.0,
-        interfaces=((1000.0, 50.0),),
-        theta_layers=((8.0, 6.0e-3),),
-        qt_layers=((-4.0e-3, -0.5e-6),),
-        spinup_below=0,
-        w_sigma=(0.6, 0.06),
-        w_modes=(3, 1),
-        q_sigma=(0.25e-3, 0.08e-3),
-        th_sigma=(0.1, 0.05),
-    ),
-    "broken": _Regime(
-        theta_ml=290.0,
-        z_base=960.0,
-        interfaces=((1100.0, 50.0),),
-        theta_layers=((7.0, 6.0e-3),),
-        qt_layers=((-3.5e-3, -0.5e-6),),
-        spinup_below=0,
-        w_sigma=(0.35, 0.06),
-        w_modes=(3, 1),
-        q_sigma=(0.2e-3, 0.08e-3),
-        th_sigma=(0.1, 0.05),
-        velocity=(1.5, 1.0),
-        cells=_Cells(),
-    ),
-    "cumulus": _Regime(
-        theta_ml=298.0,
-        z_base=700.0,
-        interfaces=((600.0, 50.0), (2300.0, 200.0)),
-        theta_layers=((0.0, 4.0e-3), (5.0, 5.0e-3)),
-        qt_layers=((0.0, -5.0e-6), (-3.0e-3, -0.5e-6)),
-        spinup_below=1,
-        w_sigma=(0.5, 0.25, 0.06),
-        w_modes=(3, 2, 1),
-        q_sigma=(0.25e-3, 0.3e-3, 0.1e-3),
-        th_sigma=(0.12, 0.1, 0.05),
-        velocity=(-3.0, 1.0),
-        plumes=_Plumes(),
-    ),
-}
-
-
-# --------------------------------------------------------------------------- the spec
-
-
-@dataclass(frozen=True, kw_only=True)
-class DemoCase:
-    """Specification of one synthetic demo case.
-
-    Parameters
-    ----------
-    case
-        Invented case id, also the directory name of the archive.
-    regime
-        Regime tag recorded for the case sheet ("stratocumulus", "cumulus").
-    kind
-        Which structure to build: "overcast" (near-overcast stratocumulus deck),
-        "broken" (cellular, broken deck) or "cumulus" (shallow cumulus plumes).
-    flavour
-        Raw archive layout, "alpha" or "beta" (see :func:`write_demo_case`).
-    nx, ny
-        Horizontal grid points.
-    nz
-        Vertical levels (cell centres).
-    dx
-        Horizontal spacing in m (``dy = dx``).
-    ztop
-        Height of the top face in m.
-    ntimes
-        Number of output times.
-    interval_s
-        Output interval in s.
-    seed
-        Seed of the random fields.
-
-    Examples
-    --------
-    >>> spec = demo_case("sc-ostra-01").with_size(nx=32, ny=32)
-    >>> spec.nx, spec.case
-    (32, 'sc-ostra-01')
-    """
-
-    case: str
-    regime: str
-    kind: Kind
-    flavour: Flavour
-    nx: int = 60
-    ny: int = 60
-    nz: int = 48
-    dx: float = 50.0
-    ztop: float = 2500.0
-    ntimes: int = 8
-    interval_s: float = 1800.0
-    seed: int = 0
-
-    def __post_init__(self) -> None:
-        def bad(message: str, hint: str | None = None) -> ConfigError:
-            return ConfigError(message, case=self.case, hint=hint)
-
-        if not isinstance(self.case, str) or not _CASE_ID.fullmatch(self.case):
-            raise bad(
-                f"case id {self.case!r} is not usable as a directory name; expected "
-                "letters, digits, '.', '_' or '-'"
-            )
-        if not self.regime:
-            raise bad("regime tag is empty; expected e.g. 'stratocumulus'")
-        if self.kind not in _KINDS:
-            raise bad(f"kind {self.kind!r} is unknown; expected one of {list(_KINDS)}")
-        if self.flavour not in _FLAVOURS:
-            raise bad(f"flavour {self.flavour!r} is unknown; expected one of {list(_FLAVOURS)}")
-        for name, low in (("nx", 8), ("ny", 8), ("nz", 8), ("ntimes", 1)):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, int) or value < low:
-                raise bad(f"{name} = {value!r}; expected an integer >= {low}")
-        for name in ("dx", "interval_s"):
-            value = getattr(self, name)
-            if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
-                raise bad(f"{name} = {value!r}; expected a positive number")
-        min_top = _REGIMES[self.kind].min_top
-        if not (isinstance(self.ztop, (int, float)) and self.ztop >= min_top):
-            raise bad(
-                f"ztop = {self.ztop!r} m is too low for kind {self.kind!r}; expected "
-                f">= {min_top:g} m"
-            )
-        if not isinstance(self.seed, int) or self.seed < 0:
-            raise bad(f"seed = {self.seed!r}; expected a non-negative integer")
-
-    def with_size(self, **overrides: Any) -> DemoCase:
-        """A copy with some fields replaced (e.g. ``nx``, ``ny``, ``nz``, ``ntimes``).
-
-        Parameters
-        ----------
-        **overrides
-            Field names and new values.
-
-        Returns
-        -------
-        DemoCase
-            The modified spec (validated).
-
-        Raises
-        ------
-        ConfigError
-            For a name that is not a field of :class:`DemoCase` or an invalid value.
-
-        Examples
-        --------
-        >>> demo_case("cu-marro-01").with_size(nx=512, ny=512, nz=160, ntimes=12).nz
-        160
-        """
-        names = {f.name for f in dataclasses.fields(self)}
-        unknown = sorted(set(overrides) - names)
-        if unknown:
-            raise ConfigError(
-                f"unknown demo size field(s) {unknown}; expected some of {sorted(names)}",
-                case=self.case,
-            )
-        return dataclasses.replace(self, **overrides)
-
-    def output_times_s(self) -> NDArray[np.float64]:
-        """Output times of the case.
-
-        Alpha starts at ``t = 0``, beta at ``t = 900 s``; then every ``interval_s``.
-
-        Returns
-        -------
-        numpy.ndarray
-            Seconds since the start of the run, float64, length ``ntimes``.
-
-        Examples
-        --------
-        >>> demo_case("sc-ostra-02").output_times_s()[:2].tolist()
-        [900.0, 2400.0]
-        """
-        start = 0.0 if self.flavour == "alpha" else BETA_FIRST_OUTPUT_S
-        return start + self.interval_s * np.arange(self.ntimes, dtype=np.float64)
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain-dict form (for manifests and provenance).
-
-        Returns
-        -------
-        dict
-            Field name to value, as :func:`dataclasses.asdict`.
-
-        Examples
-        --------
-        >>> demo_case("cu-marro-02").to_dict()["flavour"]
-        'beta'
-        """
-        return dataclasses.asdict(self)
-
-
-DEMO_CASES: tuple[DemoCase, ...] = (
-    DemoCase(
-        case="sc-ostra-01",
-        regime="stratocumulus",
-        kind="overcast",
-        flavour="alpha",
-        nz=50,
-        ztop=2500.0,
-        ntimes=8,
-        interval_s=1800.0,
-        seed=101,
-    ),
-    DemoCase(
-        case="sc-ostra-02",
-        regime="stratocumulus",
-        kind="overcast",
-        flavour="beta",
-        nz=52,
-        ztop=2600.0,
-        ntimes=9,
-        interval_s=1500.0,
-        seed=202,
-    ),
-    DemoCase(
-        case="sc-pelle-01",
-        regime="stratocumulus",
-        kind="broken",
-        flavour="alpha",
-        nz=48,
-        ztop=2640.0,
-        ntimes=7,
-        interval_s=1800.0,
-        seed=303,
-    ),
-    DemoCase(
-        case="cu-marro-01",
-        regime="cumulus",
-        kind="cumulus",
-        flavour="alpha",
-        nz=56,
-        ztop=2800.0,
-        ntimes=9,
-        interval_s=1200.0,
-        seed=404,
-    ),
-    DemoCase(
-        case="cu-marro-02",
-        regime="cumulus",
-        kind="cumulus",
-        flavour="beta",
-        nz=54,
-        ztop=3000.0,
-        ntimes=8,
-        interval_s=1800.0,
-        seed=505,
-    ),
+from lesprep.demo.cases import (
+    _REGIMES,
+    DECORRELATION_S,
+    DYNAMIC_PRESSURE_FACTOR,
+    SPINUP_FLOOR,
+    SPINUP_TAU_S,
+    SURFACE_PRESSURE,
+    DemoCase,
+    _Regime,
 )
-"""The default demo cases (invented ids)."""
+from lesprep.demo.spectral import evolving_field
+from lesprep.errors import InputError
 
-
-def demo_case(case_id: str) -> DemoCase:
-    """Look up a default demo case by id.
-
-    Parameters
-    ----------
-    case_id
-        One of the ids in :data:`DEMO_CASES`.
-
-    Returns
-    -------
-    DemoCase
-
-    Raises
-    ------
-    InputError
-        If the id is not a default demo case; the message lists the valid ids.
-
-    Examples
-    --------
-    >>> demo_case("sc-pelle-01").kind
-    'broken'
-    """
-    for spec in DEMO_CASES:
-        if spec.case == case_id:
-            return spec
-    valid = [spec.case for spec in DEMO_CASES]
-    raise InputError(
-        f"is not a demo case; expected one of {valid}",
-        case=str(case_id),
-        hint="use one of the listed demo case ids",
-    )
+_TANH_10_90 = 2.0 * math.atanh(0.8)  # 10-90 % depth of tanh(z / w) is this times w
 
 
 # --------------------------------------------------------------------------- grid
 
 
 @dataclass(frozen=True)
-class _Grid:
+class Grid:
+    """Vertical grid of a demo case: face and centre heights (m)."""
+
     z_faces: NDArray[np.float64]
     z: NDArray[np.float64]
     x: NDArray[np.float64]
@@ -466,7 +99,8 @@ def _stretched_faces(nz: int, ztop: float) -> NDArray[np.float64]:
 
 
 @functools.lru_cache(maxsize=32)
-def _grid(spec: DemoCase) -> _Grid:
+def grid_of(spec: DemoCase) -> Grid:
+    """The vertical grid of a case: uniform (flavour alpha) or stretched (flavour beta)."""
     if spec.flavour == "alpha":
         faces = np.linspace(0.0, spec.ztop, spec.nz + 1)
     else:
@@ -476,7 +110,7 @@ def _grid(spec: DemoCase) -> _Grid:
     y = (np.arange(spec.ny) + 0.5) * spec.dx
     for a in (faces, centres, x, y):
         a.setflags(write=False)
-    return _Grid(z_faces=faces, z=centres, x=x, y=y)
+    return Grid(z_faces=faces, z=centres, x=x, y=y)
 
 
 # --------------------------------------------------------------------------- base state
@@ -596,9 +230,10 @@ def _hydrostatic(heights: NDArray[np.float64], reg: _Regime, qt_ml: float) -> ND
 
 
 @functools.lru_cache(maxsize=32)
-def _reference(spec: DemoCase) -> _Reference:
+def reference_state(spec: DemoCase) -> _Reference:
+    """The steady base state of a case: profiles and hydrostatic reference pressure."""
     reg = _REGIMES[spec.kind]
-    grid = _grid(spec)
+    grid = grid_of(spec)
     qt_ml = _mixed_layer_qt(reg)
     p = _hydrostatic(grid.z, reg, qt_ml)
     if spec.flavour == "beta":
@@ -650,7 +285,7 @@ def _normalise_levels(a: NDArray[np.float64]) -> NDArray[np.float64]:
 
 
 def _turbulence(
-    spec: DemoCase, reg: _Regime, grid: _Grid, t: float
+    spec: DemoCase, reg: _Regime, grid: Grid, t: float
 ) -> tuple[NDArray, NDArray, NDArray, NDArray]:
     """Steady-state turbulence of time ``t`` (before the spin-up factor).
 
@@ -701,7 +336,7 @@ def _hexagon_wavevectors(spec: DemoCase, wavelength: float) -> list[tuple[float,
     return [(n / lx, 0.0), (-0.5 * n / lx, m / ly), (-0.5 * n / lx, -m / ly)]
 
 
-def _cell_pattern(spec: DemoCase, reg: _Regime, grid: _Grid, t: float) -> NDArray:
+def _cell_pattern(spec: DemoCase, reg: _Regime, grid: Grid, t: float) -> NDArray:
     """Unit-variance cellular pattern: broad cloudy updrafts around narrow clear holes."""
     assert reg.cells is not None
     rng = np.random.default_rng(list(_stream(spec, 7)))
@@ -773,7 +408,7 @@ def _window(centre: int, half: int, n: int) -> tuple[NDArray[np.intp], Any]:
 def _add_plumes(
     spec: DemoCase,
     reg: _Regime,
-    grid: _Grid,
+    grid: Grid,
     t: float,
     amp: float,
     qt_ml: float,
@@ -880,12 +515,12 @@ def _adjust(thl: NDArray, qt: NDArray, p: NDArray) -> tuple[NDArray, NDArray, ND
     return temp, qv, qc
 
 
-def _state(spec: DemoCase, time_index: int) -> dict[str, Any]:
+def state_at(spec: DemoCase, time_index: int) -> dict[str, Any]:
     """All fields of one output time, including ``w_faces`` and the time ``t`` (s)."""
     i = _check_index(spec, time_index)
     reg = _REGIMES[spec.kind]
-    grid = _grid(spec)
-    ref = _reference(spec)
+    grid = grid_of(spec)
+    ref = reference_state(spec)
     t = float(spec.output_times_s()[i])
     amp = _spinup_amplitude(t)
 
@@ -965,310 +600,10 @@ def demo_fields(spec: DemoCase, time_index: int) -> dict[str, NDArray[np.float64
 
     Examples
     --------
+    >>> from lesprep.demo import demo_case
     >>> f = demo_fields(demo_case("sc-ostra-01").with_size(nx=16, ny=16), 7)
     >>> f["qc"].shape, f["z_faces"].shape
     ((50, 16, 16), (51,))
     """
-    state = _state(spec, time_index)
+    state = state_at(spec, time_index)
     return {key: state[key] for key in ("qc", "qv", "T", "p", "w", "z", "z_faces")}
-
-
-# --------------------------------------------------------------------------- writing
-
-
-def _chunks(shape: tuple[int, ...], target_bytes: int = 4 * 2**20) -> tuple[int, ...]:
-    """Chunks of a ``(time, a, b, c)`` float32 variable: one time, ``a`` split to ~4 MiB."""
-    per_row = 4 * math.prod(shape[2:])
-    lead = max(1, min(shape[1], target_bytes // max(per_row, 1)))
-    return (1, lead, *shape[2:])
-
-
-def _new_var(
-    ds: netCDF4.Dataset,
-    name: str,
-    dims: tuple[str, ...],
-    attrs: dict[str, str],
-    *,
-    compress: bool,
-    dtype: str = "f4",
-    chunks: tuple[int, ...] | None = None,
-) -> netCDF4.Variable:
-    var = ds.createVariable(
-        name,
-        dtype,
-        dims,
-        compression="zlib" if compress else None,
-        complevel=4,
-        shuffle=compress,
-        chunksizes=chunks,
-    )
-    var.setncatts(attrs)
-    return var
-
-
-def _global_attrs(ds: netCDF4.Dataset, spec: DemoCase) -> None:
-    ds.setncatts(
-        {
-            "title": f"Synthetic demo LES archive, case {spec.case} ({spec.regime}, {spec.kind})",
-            "flavour": spec.flavour,
-            "source": SOURCE,
-            "case": spec.case,
-            "regime": spec.regime,
-        }
-    )
-
-
-def _horizontal_coords(ds: netCDF4.Dataset, grid: _Grid) -> None:
-    for name, values in (("x", grid.x), ("y", grid.y)):
-        var = ds.createVariable(name, "f8", (name,))
-        var.setncatts({"units": "m", "long_name": f"{name} of cell centre", "axis": name.upper()})
-        var[:] = values
-
-
-_ALPHA_VARS = {
-    "liq": ("zc", {"units": "g/kg", "long_name": "cloud liquid water mixing ratio"}),
-    "vap": ("zc", {"units": "g/kg", "long_name": "water vapour mixing ratio"}),
-    "tempc": ("zc", {"units": "degC", "long_name": "air temperature"}),
-    "pres": ("zc", {"units": "hPa", "long_name": "air pressure"}),
-    "wf": ("zf", {"units": "m/s", "long_name": "vertical velocity on cell faces"}),
-}
-
-
-def _write_alpha(spec: DemoCase, folder: Path, compress: bool) -> list[str]:
-    grid = _grid(spec)
-    names = []
-    for i in range(spec.ntimes):
-        state = _state(spec, i)
-        values = {
-            "liq": state["qc"] * 1e3,
-            "vap": state["qv"] * 1e3,
-            "tempc": state["T"] - thermo.T0,
-            "pres": state["p"] / 100.0,
-            "wf": state["w_faces"],
-        }
-        del state
-        name = f"snap_{i:04d}.nc"
-        with netCDF4.Dataset(folder / name, "w", format="NETCDF4") as ds:
-            _global_attrs(ds, spec)
-            ds.createDimension("time", None)
-            ds.createDimension("zc", spec.nz)
-            ds.createDimension("zf", spec.nz + 1)
-            ds.createDimension("y", spec.ny)
-            ds.createDimension("x", spec.nx)
-            tvar = ds.createVariable("time", "f8", ("time",))
-            tvar.setncatts({"units": "s", "long_name": "time since start of run", "axis": "T"})
-            tvar[0] = spec.output_times_s()[i]
-            for zname, zval, what in (
-                ("zc", grid.z, "height of cell centre"),
-                ("zf", grid.z_faces, "height of cell face"),
-            ):
-                zvar = ds.createVariable(zname, "f8", (zname,))
-                zvar.setncatts({"units": "m", "long_name": what, "positive": "up", "axis": "Z"})
-                zvar[:] = zval
-            _horizontal_coords(ds, grid)
-            for vname, (zdim, attrs) in _ALPHA_VARS.items():
-                data = values.pop(vname).astype(np.float32)
-                var = _new_var(
-                    ds,
-                    vname,
-                    ("time", zdim, "y", "x"),
-                    attrs,
-                    compress=compress,
-                    chunks=_chunks((1, *data.shape)),
-                )
-                var[0] = data
-        names.append(name)
-    return names
-
-
-_BETA_VARS = {
-    "cloudwater": {"units": "kg kg-1", "long_name": "cloud liquid water mixing ratio"},
-    "sphum": {"units": "kg kg-1", "long_name": "specific humidity"},
-    "theta": {"units": "K", "long_name": "potential temperature (p0 = 1000 hPa)"},
-    "wc": {"units": "m s-1", "long_name": "vertical velocity at cell centres"},
-}
-
-
-def _beta_coords(ds: netCDF4.Dataset, spec: DemoCase, grid: _Grid, *, with_time: bool) -> None:
-    _global_attrs(ds, spec)
-    if with_time:
-        ds.createDimension("time", spec.ntimes)
-    ds.createDimension("x", spec.nx)
-    ds.createDimension("y", spec.ny)
-    ds.createDimension("z", spec.nz)
-    ds.createDimension("nv", 2)
-    if with_time:
-        tvar = ds.createVariable("time", "f8", ("time",))
-        tvar.setncatts(
-            {"units": BETA_TIME_UNITS, "calendar": "standard", "long_name": "time", "axis": "T"}
-        )
-        tvar[:] = spec.output_times_s() / 3600.0
-    _horizontal_coords(ds, grid)
-    zvar = ds.createVariable("z", "f8", ("z",))
-    zvar.setncatts(
-        {
-            "units": "m",
-            "long_name": "height of cell centre",
-            "positive": "up",
-            "axis": "Z",
-            "bounds": "z_bnds",
-        }
-    )
-    zvar[:] = grid.z
-    bvar = ds.createVariable("z_bnds", "f8", ("z", "nv"))
-    bvar[:] = np.stack([grid.z_faces[:-1], grid.z_faces[1:]], axis=1)
-
-
-def _write_beta(spec: DemoCase, folder: Path, compress: bool) -> list[str]:
-    grid = _grid(spec)
-    ref = _reference(spec)
-    with netCDF4.Dataset(folder / "pref.nc", "w", format="NETCDF4") as ds:
-        _beta_coords(ds, spec, grid, with_time=False)
-        var = _new_var(
-            ds,
-            "pref",
-            ("z",),
-            {"units": "Pa", "long_name": "reference air pressure"},
-            compress=compress,
-            chunks=(spec.nz,),
-        )
-        var[:] = ref.p.astype(np.float32)
-    datasets: dict[str, netCDF4.Dataset] = {}
-    try:
-        for name, attrs in _BETA_VARS.items():
-            ds = netCDF4.Dataset(folder / f"{name}.nc", "w", format="NETCDF4")
-            datasets[name] = ds
-            _beta_coords(ds, spec, grid, with_time=True)
-            _new_var(
-                ds,
-                name,
-                ("time", "x", "y", "z"),
-                attrs,
-                compress=compress,
-                chunks=_chunks((spec.ntimes, spec.nx, spec.ny, spec.nz)),
-            )
-        for i in range(spec.ntimes):
-            state = _state(spec, i)
-            p = state["p"]
-            values = {
-                "cloudwater": state["qc"],
-                "sphum": state["qv"] / (1.0 + state["qv"]),
-                "theta": state["T"] / thermo.exner(p),
-                "wc": state["w"],
-            }
-            del state, p
-            for name, data in values.items():
-                datasets[name][name][i] = data.transpose(2, 1, 0).astype(np.float32)
-            del values
-    finally:
-        for ds in datasets.values():
-            ds.close()
-    return ["pref.nc", *(f"{name}.nc" for name in _BETA_VARS)]
-
-
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(2**20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
-def _manifest(spec: DemoCase, folder: Path, names: list[str], compress: bool) -> dict[str, Any]:
-    return {
-        "generator": "lesprep.demo.physics",
-        "generator_version": GENERATOR_VERSION,
-        "source": SOURCE,
-        "case": spec.case,
-        "flavour": spec.flavour,
-        "compress": compress,
-        "spec": spec.to_dict(),
-        "times_s": spec.output_times_s().tolist(),
-        "files": [
-            {"name": n, "size": (folder / n).stat().st_size, "sha256": _sha256(folder / n)}
-            for n in names
-        ],
-    }
-
-
-def _replace_dir(tmp: Path, final: Path) -> None:
-    """Move ``tmp`` to ``final``, replacing an existing directory."""
-    if not final.exists():
-        tmp.rename(final)
-        return
-    old = final.with_name(f".{final.name}.old-{uuid.uuid4().hex[:12]}")
-    final.rename(old)
-    try:
-        tmp.rename(final)
-    except BaseException:
-        old.rename(final)
-        raise
-    shutil.rmtree(old, ignore_errors=True)
-
-
-def write_demo_case(spec: DemoCase, out_root: Path | str, *, compress: bool = False) -> Path:
-    """Write the raw archive of one demo case.
-
-    Flavour "alpha" writes ``snap_0000.nc``, ``snap_0001.nc``, ... (one output time
-    each; dims ``(time, zc, y, x)`` and ``(time, zf, y, x)`` for ``wf``); flavour "beta"
-    writes ``cloudwater.nc``, ``sphum.nc``, ``theta.nc``, ``wc.nc`` (dims
-    ``(time, x, y, z)``) and ``pref.nc`` (dims ``(z)``). Both add ``manifest.json``
-    listing every file with its size and SHA-256, the spec, the flavour and the
-    generator version.
-
-    The archive is written into a hidden temporary sibling directory and renamed into
-    place at the end, so an interrupted run never leaves a complete-looking archive;
-    an existing archive of the same case is replaced. Fields are generated and written
-    one output time at a time.
-
-    Parameters
-    ----------
-    spec
-        The case.
-    out_root
-        Directory that receives ``<case>/``; created if missing.
-    compress
-        Store variables zlib-compressed (level 4, with shuffle).
-
-    Returns
-    -------
-    pathlib.Path
-        The case directory ``<out_root>/<case>``.
-
-    Raises
-    ------
-    InputError
-        If ``<out_root>/<case>`` exists and is not a directory.
-
-    Examples
-    --------
-    >>> import tempfile
-    >>> spec = demo_case("sc-ostra-02").with_size(nx=8, ny=8, ntimes=1)
-    >>> with tempfile.TemporaryDirectory() as tmp:
-    ...     sorted(p.name for p in write_demo_case(spec, tmp).iterdir())
-    ['cloudwater.nc', 'manifest.json', 'pref.nc', 'sphum.nc', 'theta.nc', 'wc.nc']
-    """
-    root = Path(out_root)
-    root.mkdir(parents=True, exist_ok=True)
-    final = root / spec.case
-    if final.exists() and not final.is_dir():
-        raise InputError(
-            "exists and is not a directory; expected a demo archive directory or nothing",
-            case=spec.case,
-            file=str(final),
-            hint="remove or rename the file",
-        )
-    tmp = root / f".{spec.case}.partial-{uuid.uuid4().hex[:12]}"
-    tmp.mkdir()
-    try:
-        if spec.flavour == "alpha":
-            names = _write_alpha(spec, tmp, compress)
-        else:
-            names = _write_beta(spec, tmp, compress)
-        manifest = _manifest(spec, tmp, names, compress)
-        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
-        _replace_dir(tmp, final)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return final

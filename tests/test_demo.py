@@ -21,7 +21,7 @@ import pytest
 from scipy import stats
 
 from lesprep import demo, thermo
-from lesprep.demo import cases, physics
+from lesprep.demo import cases, physics, writers
 from lesprep.errors import ConfigError, InputError
 
 mpcalc = pytest.importorskip("metpy.calc")
@@ -404,7 +404,7 @@ def test_interrupted_write_leaves_previous_archive(tmp_path: Path, monkeypatch) 
             raise KeyboardInterrupt  # like a killed run
         return real_state(s, i)
 
-    monkeypatch.setattr(demo, "_state", failing)
+    monkeypatch.setattr(writers, "state_at", failing)
     with pytest.raises(KeyboardInterrupt):
         demo.write_demo_case(spec.with_size(seed=7), tmp_path)
     assert [p.name for p in tmp_path.iterdir()] == [spec.case]

@@ -80,7 +80,6 @@ def test_no_import_cycle():
 
 
 NOT_YET_SPLIT = {
-    "src/lesprep/raw/survey.py",  # archive scan, guessing and scoring, draft
     "src/lesprep/verify/run.py",  # one module per check still to come
 }
 """Modules still over 800 lines, each holding several concerns; the list only shrinks."""

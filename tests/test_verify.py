@@ -27,7 +27,7 @@ from lesprep.errors import InputError
 from lesprep.sets.assemble import decode_category, open_set
 from lesprep.sets.splits import read_assignment_tsv
 from lesprep.store import consolidate, open_store
-from lesprep.verify.run import CHECKS, Finding, VerifyReport, verify_results
+from lesprep.verify import CHECKS, Finding, VerifyReport, verify_results
 from workflow_project import Project
 
 pytestmark = pytest.mark.workflow

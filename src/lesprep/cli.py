@@ -44,7 +44,7 @@ def _cmd_provenance(args: argparse.Namespace) -> int:
 
 
 def _cmd_verify(args: argparse.Namespace) -> int:
-    from lesprep.verify.run import verify_results
+    from lesprep.verify import verify_results
 
     report = verify_results(args.results, sample_checks=args.samples, workdir=args.workdir)
     print(report.summary())

@@ -49,27 +49,65 @@ class _Piece:
     n: int  # samples in this piece (kept z * ny * nx)
 
 
-def _layout(ds: xr.Dataset) -> tuple[list[str], list[str], list[str]]:
-    """(3-D features, column features, patch variables) of a scale store."""
+FEATURE_KINDS: dict[tuple[str, ...], str] = {
+    ("time", "z", "y", "x"): "cell",
+    ("time", "y", "x"): "column",
+    ("z",): "profile",
+    ("time", "z", "y", "x", "py", "px"): "patch",
+}
+"""Dims of a per-case scale-store variable that a set carries, and what kind it is."""
+
+
+def feature_kind(dims: tuple[str, ...]) -> str | None:
+    """Kind of a per-case scale-store variable a set carries (None: not a feature)."""
+    return FEATURE_KINDS.get(tuple(dims))
+
+
+def store_layout(ds: xr.Dataset) -> tuple[list[str], list[str], list[str]]:
+    """(3-D features, column and profile features, patch variables) of a scale store."""
     feats, cols, patches = [], [], []
     for name, v in ds.data_vars.items():
-        if name.endswith("_bounds"):
+        kind = feature_kind(tuple(v.dims))
+        if str(name).endswith("_bounds") or kind is None:
             continue
-        if v.dims == ("time", "z", "y", "x"):
-            feats.append(str(name))
-        elif v.dims == ("time", "y", "x") or v.dims == ("z",):
-            cols.append(str(name))
-        elif v.dims == ("time", "z", "y", "x", "py", "px"):
-            patches.append(str(name))
+        {"cell": feats, "column": cols, "profile": cols, "patch": patches}[kind].append(str(name))
     return sorted(feats), sorted(cols), sorted(patches)
 
 
-def _kept(ds: xr.Dataset, st: SetSettings) -> tuple[np.ndarray, np.ndarray]:
-    t_idx = np.arange(0, ds.sizes["time"], st.time_stride)
-    z = ds.z.values
+def kept_indices(
+    times: int, z: np.ndarray, *, z_range: Sequence[float] | None, time_stride: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Time and level indices a set keeps of a per-case store under its filters.
+
+    Every ``time_stride``-th time from the first; levels with ``z_min <= z <= z_max``.
+
+    Parameters
+    ----------
+    times
+        Number of times of the per-case store.
+    z
+        Its heights (m).
+    z_range
+        ``(z_min, z_max)`` in m, or None for every level.
+    time_stride
+        Keep every n-th time.
+
+    Returns
+    -------
+    t_idx, z_idx : numpy.ndarray
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> t, k = kept_indices(5, np.array([50.0, 150.0, 250.0]), z_range=(100, 300), time_stride=2)
+    >>> t.tolist(), k.tolist()
+    ([0, 2, 4], [1, 2])
+    """
+    t_idx = np.arange(0, times, max(1, int(time_stride)))
+    z = np.asarray(z, dtype=np.float64)
     z_idx = np.arange(z.size)
-    if st.z_range is not None:
-        z_idx = z_idx[(z >= st.z_range[0]) & (z <= st.z_range[1])]
+    if z_range is not None:
+        z_idx = z_idx[(z >= float(z_range[0])) & (z <= float(z_range[1]))]
     return t_idx, z_idx
 
 
@@ -160,7 +198,7 @@ def build_set(
     if not case_ids:
         return _empty_set(out, split=split, scale=scale, skipped=skipped)
     regime_names = sorted({regimes.get(c, "") or "none" for c in case_ids})
-    layouts = {c: _layout(ds) for c, ds in stores.items()}
+    layouts = {c: store_layout(ds) for c, ds in stores.items()}
     ref = layouts[case_ids[0]]
     for c in case_ids[1:]:
         if layouts[c] != ref:
@@ -174,7 +212,12 @@ def build_set(
     kept: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     for ci, c in enumerate(case_ids):
         ds = stores[c]
-        t_idx, z_idx = _kept(ds, settings)
+        t_idx, z_idx = kept_indices(
+            ds.sizes["time"],
+            ds.z.values,
+            z_range=settings.z_range,
+            time_stride=settings.time_stride,
+        )
         kept[c] = (t_idx, z_idx)
         n = z_idx.size * ds.sizes["y"] * ds.sizes["x"]
         pieces.extend(_Piece(ci, int(t), n) for t in t_idx)

@@ -11,7 +11,8 @@ import pytest
 import xarray as xr
 
 from lesprep.errors import ConfigError, GridError, NonFiniteError
-from lesprep.schemes import baseline_errors, sundqvist_cloud_fraction
+from lesprep.report.skill import baseline_errors
+from lesprep.schemes import sundqvist_cloud_fraction
 
 
 @pytest.mark.parametrize(

@@ -25,7 +25,7 @@ from matplotlib.patches import Rectangle, StepPatch
 
 from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import InputError
-from lesprep.report import figures, tables
+from lesprep.report import figures, skill, tables
 from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import build_set
@@ -298,8 +298,8 @@ def test_baseline_skill_against_numpy(tree):
         p = ds["cf_sundqvist"].values.astype(np.float64)
         t = ds["cloud_fraction"].values.astype(np.float64)
         d = p - t
-        whole = figures.baseline_skill(tree["sets"][split])
-        chunked = figures.baseline_skill(tree["sets"][split], chunk=53)
+        whole = skill.baseline_skill(tree["sets"][split])
+        chunked = skill.baseline_skill(tree["sets"][split], chunk=53)
         for got in (whole, chunked):
             assert got["n"] == d.size
             assert got["rmse"] == pytest.approx(math.sqrt(np.mean(d**2)), rel=1e-12)
@@ -327,8 +327,8 @@ def test_empty_split(tree, tmp_path):
     texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
     assert texts[1] == "test: no samples"
     assert len([p for p in fig.axes[0].patches if isinstance(p, StepPatch)]) == 1
-    skill = figures.baseline_skill(empty)
-    assert skill["n"] == 0 and math.isnan(skill["rmse"]) and math.isnan(skill["bias"])
+    result = skill.baseline_skill(empty)
+    assert result["n"] == 0 and math.isnan(result["rmse"]) and math.isnan(result["bias"])
     with pytest.raises(InputError, match="rh_of_means"):
         figures.scale_cf_vs_rh(empty, tmp_path / "x.png")
 

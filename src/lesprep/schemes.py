@@ -1,4 +1,4 @@
-"""Classical relative-humidity cloud-fraction baseline and its error metrics.
+"""Classical relative-humidity cloud-fraction scheme, the baseline of the report.
 
 The baseline is the diagnostic scheme of Sundqvist et al. (1989): cloud fraction grows
 from zero at a critical relative humidity ``RHc`` to one at saturation,
@@ -14,7 +14,6 @@ Conventions
   roughly between 0.6 and 0.9 that often depend on height and on grid resolution (from
   memory). ``rh_critical`` must lie in [0, 1).
 * NaN relative humidity gives NaN cloud fraction.
-* Error metrics are computed in float64 over the pairs where neither value is NaN.
 """
 
 from __future__ import annotations
@@ -26,9 +25,9 @@ import xarray as xr
 from numpy.typing import ArrayLike, NDArray
 
 from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
-from lesprep.errors import ConfigError, GridError, NonFiniteError
+from lesprep.errors import ConfigError, GridError
 
-__all__ = ["baseline_errors", "sundqvist_cloud_fraction"]
+__all__ = ["sundqvist_cloud_fraction"]
 
 CLOUD_FRACTION_ATTRS: dict[str, str] = {
     "standard_name": "cloud_area_fraction_in_atmosphere_layer",
@@ -160,59 +159,3 @@ def sundqvist_cloud_fraction(
         fraction.attrs = dict(CLOUD_FRACTION_ATTRS)
         fraction.attrs["rh_critical"] = rhc
     return fraction
-
-
-def baseline_errors(predicted: ArrayLike, target: ArrayLike) -> dict[str, float]:
-    """Error of a prediction against a target, over the pairs without NaN.
-
-    Parameters
-    ----------
-    predicted, target
-        Arrays of the same shape (DataArrays and dask arrays are loaded). A pair is
-        skipped when either value is NaN.
-
-    Returns
-    -------
-    dict
-        ``rmse = sqrt(mean((p - t)**2))``, ``bias = mean(p - t)`` (positive when the
-        prediction is too high), ``mae = mean(|p - t|)``, all float64 over the kept
-        pairs, and ``n``, the number of kept pairs (an int). With no pair left the three
-        metrics are NaN and ``n`` is 0.
-
-    Raises
-    ------
-    GridError
-        If the shapes differ.
-    NonFiniteError
-        If a value is infinite.
-
-    Examples
-    --------
-    >>> errors = baseline_errors([0.1, 0.5, float("nan")], [0.2, 0.2, 0.3])
-    >>> {key: round(value, 6) for key, value in errors.items()}
-    {'rmse': 0.223607, 'bias': 0.1, 'mae': 0.2, 'n': 2}
-    """
-    p = np.asarray(predicted, dtype=np.float64)
-    t = np.asarray(target, dtype=np.float64)
-    if p.shape != t.shape:
-        raise GridError(
-            f"predicted has shape {p.shape} and target has shape {t.shape}; "
-            "expected the same shape",
-        )
-    if np.any(np.isinf(p)) or np.any(np.isinf(t)):
-        raise NonFiniteError(
-            "predicted or target holds infinite values; expected finite values or NaN",
-            hint="mask invalid points as NaN to leave them out",
-        )
-    keep = ~(np.isnan(p) | np.isnan(t))
-    n = int(np.count_nonzero(keep))
-    if n == 0:
-        nan = float("nan")
-        return {"rmse": nan, "bias": nan, "mae": nan, "n": 0}
-    diff = p[keep] - t[keep]
-    return {
-        "rmse": float(np.sqrt(np.mean(diff**2))),
-        "bias": float(np.mean(diff)),
-        "mae": float(np.mean(np.abs(diff))),
-        "n": n,
-    }

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import math
 import os
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
@@ -41,12 +41,11 @@ from numpy.typing import ArrayLike, NDArray
 from lesprep import __version__, provenance
 from lesprep.errors import InputError
 from lesprep.layout import ResultsLayout
-from lesprep.schemes import baseline_errors, sundqvist_cloud_fraction
-from lesprep.store import open_store
+from lesprep.report.stores import SET_CHUNK, opened_store, set_slices
+from lesprep.schemes import sundqvist_cloud_fraction
 
 __all__ = [
     "DEFAULT_RH_CRITICAL",
-    "baseline_skill",
     "case_lwp_map",
     "case_profiles",
     "case_timeseries",
@@ -60,7 +59,6 @@ __all__ = [
 DEFAULT_RH_CRITICAL = 0.8
 """Critical relative humidity used when a store records none (common practice)."""
 
-_CHUNK = 1 << 22  # samples per read of a training store (16 MiB of float32)
 _DPI = 120
 _SPINUP_COLOUR = "0.6"
 _KG_M2 = "kg m$^{-2}$"
@@ -108,16 +106,6 @@ def _ingest_step(ds: xr.Dataset) -> dict[str, Any]:
     return {}
 
 
-def _require(ds: xr.Dataset, names: tuple[str, ...], path: str | Path) -> None:
-    missing = [n for n in names if n not in ds.variables]
-    if missing:
-        raise InputError(
-            f"store lacks variable(s) {missing}; expected a lesprep store holding {list(names)}",
-            file=str(path),
-            hint="pass the right store (canonical.zarr, scale-<L>m.zarr or a set store)",
-        )
-
-
 def raw_output_times(canonical_path: str | Path) -> tuple[NDArray[np.float64], float]:
     """Every raw output time of a case and its spin-up, from a canonical store.
 
@@ -140,20 +128,11 @@ def raw_output_times(canonical_path: str | Path) -> tuple[NDArray[np.float64], f
     --------
     >>> times, spinup = raw_output_times("results/cases/c/canonical.zarr")  # doctest: +SKIP
     """
-    ds = open_store(canonical_path)
-    try:
+    with opened_store(canonical_path) as ds:
         kept = np.asarray(ds["time"].values, dtype=np.float64)
         dropped = np.asarray(_ingest_step(ds).get("times_dropped_s", []), dtype=np.float64)
         spinup = float(ds.attrs.get("spinup_s", 0.0))
-    finally:
-        ds.close()
     return np.sort(np.concatenate([dropped, kept])), spinup
-
-
-def _set_slices(ds: xr.Dataset, chunk: int) -> Iterator[slice]:
-    n = int(ds.sizes.get("sample", 0))
-    for start in range(0, n, max(1, int(chunk))):
-        yield slice(start, min(n, start + chunk))
 
 
 def _set_scale(ds: xr.Dataset) -> str:
@@ -248,9 +227,7 @@ def case_timeseries(
     --------
     >>> fig = case_timeseries(store, None, None, "timeseries.png")  # doctest: +SKIP
     """
-    ds = open_store(canonical_path)
-    try:
-        _require(ds, ("time", "cloud_mask", "lwp"), canonical_path)
+    with opened_store(canonical_path, ("time", "cloud_mask", "lwp")) as ds:
         stored_raw, stored_spinup = raw_output_times(canonical_path)
         raw = stored_raw if raw_times_s is None else np.asarray(raw_times_s, dtype=np.float64)
         spinup = stored_spinup if spinup_s is None else float(spinup_s)
@@ -258,8 +235,6 @@ def case_timeseries(
         cover, lwp = _domain_series(ds)
         case = _case_name(ds, canonical_path)
         xlabel = f"time since {_origin_text(ds)} (h)"
-    finally:
-        ds.close()
     first = float(np.min(raw)) if raw.size else float(kept[0])
     hours = kept / 3600.0
     fig = _figure(7.0, 5.0)
@@ -326,15 +301,11 @@ def case_profiles(canonical_path: str | Path, out_png: str | Path) -> Figure:
     --------
     >>> fig = case_profiles(store, "profiles.png")  # doctest: +SKIP
     """
-    ds = open_store(canonical_path)
-    try:
-        _require(ds, ("z", "cloud_mask", "qc", "w"), canonical_path)
+    with opened_store(canonical_path, ("z", "cloud_mask", "qc", "w")) as ds:
         prof = _mean_profiles(ds)
         z_km = np.asarray(ds["z"].values, dtype=np.float64) / 1000.0
         case = _case_name(ds, canonical_path)
         nt = ds.sizes["time"]
-    finally:
-        ds.close()
     fig = _figure(8.0, 4.5)
     axes = fig.subplots(1, 3, sharey=True)
     series = (
@@ -381,9 +352,7 @@ def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: in
     --------
     >>> fig = case_lwp_map(store, "lwp.png", time_index=0)  # doctest: +SKIP
     """
-    ds = open_store(canonical_path)
-    try:
-        _require(ds, ("time", "x", "y", "lwp"), canonical_path)
+    with opened_store(canonical_path, ("time", "x", "y", "lwp")) as ds:
         nt = ds.sizes["time"]
         if not -nt <= int(time_index) < nt:
             raise InputError(
@@ -398,8 +367,6 @@ def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: in
         t_h = float(ds["time"].values[int(time_index)]) / 3600.0
         case = _case_name(ds, canonical_path)
         origin = _origin_text(ds)
-    finally:
-        ds.close()
     xe = np.concatenate([x - dx / 2, [x[-1] + dx / 2]]) / 1000.0
     ye = np.concatenate([y - dx / 2, [y[-1] + dx / 2]]) / 1000.0
     fig = _figure(6.0, 5.0)
@@ -425,20 +392,17 @@ def _histogram(
     path: str | Path, edges: NDArray[np.float64], chunk: int
 ) -> tuple[NDArray[np.float64], int, int, str]:
     """Counts of cloud_fraction in ``edges``, sample count, clear count, scale label."""
-    ds = open_store(path)
-    try:
+    with opened_store(path) as ds:
         counts = np.zeros(edges.size - 1, dtype=np.float64)
         n = clear = 0
         scale = _set_scale(ds)
         if "cloud_fraction" in ds.variables:
-            for sl in _set_slices(ds, chunk):
+            for sl in set_slices(ds, chunk):
                 v = np.asarray(ds["cloud_fraction"].isel(sample=sl).values, dtype=np.float64)
                 v = v[~np.isnan(v)]
                 counts += np.histogram(v, bins=edges)[0]
                 n += v.size
                 clear += int(np.count_nonzero(v == 0.0))
-    finally:
-        ds.close()
     return counts, n, clear, scale
 
 
@@ -448,7 +412,7 @@ def scale_target_distribution(
     out_png: str | Path,
     *,
     bins: int = 20,
-    chunk: int = _CHUNK,
+    chunk: int = SET_CHUNK,
 ) -> Figure:
     """Histogram (density) of the target cloud fraction, train against test split.
 
@@ -509,7 +473,7 @@ def scale_cf_vs_rh(
     *,
     rh_bins: int = 40,
     cf_bins: int = 25,
-    chunk: int = _CHUNK,
+    chunk: int = SET_CHUNK,
 ) -> Figure:
     """Joint histogram of coarse cloud fraction and RH of the means, with Sundqvist.
 
@@ -540,13 +504,11 @@ def scale_cf_vs_rh(
     --------
     >>> fig = scale_cf_vs_rh(train, "cf_rh.png")  # doctest: +SKIP
     """
-    ds = open_store(train_set)
-    try:
-        _require(ds, ("rh_of_means", "cloud_fraction"), train_set)
+    with opened_store(train_set, ("rh_of_means", "cloud_fraction")) as ds:
         rhc = rh_critical_of(ds)
         scale = _set_scale(ds)
         lo, hi = math.inf, -math.inf
-        for sl in _set_slices(ds, chunk):
+        for sl in set_slices(ds, chunk):
             rh = np.asarray(ds["rh_of_means"].isel(sample=sl).values, dtype=np.float64)
             if np.any(np.isfinite(rh)):
                 lo, hi = min(lo, float(np.nanmin(rh))), max(hi, float(np.nanmax(rh)))
@@ -558,14 +520,12 @@ def scale_cf_vs_rh(
         cf_edges = np.linspace(0.0, 1.0, int(cf_bins) + 1)
         counts = np.zeros((rh_edges.size - 1, cf_edges.size - 1), dtype=np.float64)
         cf_sum = np.zeros(rh_edges.size - 1, dtype=np.float64)
-        for sl in _set_slices(ds, chunk):
+        for sl in set_slices(ds, chunk):
             rh = np.asarray(ds["rh_of_means"].isel(sample=sl).values, dtype=np.float64)
             cf = np.asarray(ds["cloud_fraction"].isel(sample=sl).values, dtype=np.float64)
             ok = np.isfinite(rh) & np.isfinite(cf)
             counts += np.histogram2d(rh[ok], cf[ok], bins=(rh_edges, cf_edges))[0]
             cf_sum += np.histogram(rh[ok], bins=rh_edges, weights=cf[ok])[0]
-    finally:
-        ds.close()
     fig = _figure(6.5, 5.0)
     ax = fig.subplots()
     n = int(counts.sum())
@@ -605,60 +565,6 @@ def scale_cf_vs_rh(
     ax.set_title(f"Cloud fraction against RH at scale {scale}, train split ({n:,} samples)")
     _save(fig, out_png)
     return fig
-
-
-def baseline_skill(set_store: str | Path, *, chunk: int = _CHUNK) -> dict[str, float]:
-    """Error of the Sundqvist baseline ``cf_sundqvist`` against ``cloud_fraction``.
-
-    Parameters
-    ----------
-    set_store
-        A training store (any split, one scale).
-    chunk
-        Samples read at a time; the per-slice results of
-        :func:`lesprep.schemes.baseline_errors` are combined exactly (weighted by their
-        pair counts: mean squared error, bias and mean absolute error are means).
-
-    Returns
-    -------
-    dict
-        ``rmse``, ``bias`` (positive when the baseline predicts too much cloud), ``mae``
-        and ``n`` (pairs without NaN), as :func:`lesprep.schemes.baseline_errors`;
-        NaN metrics and ``n = 0`` for a store without samples.
-
-    Examples
-    --------
-    >>> baseline_skill("results/sets/test/scale-1000m.zarr")  # doctest: +SKIP
-    {'rmse': ..., 'bias': ..., 'mae': ..., 'n': ...}
-    """
-    ds = open_store(set_store)
-    sq = bias = mae = 0.0
-    n = 0
-    try:
-        if "cf_sundqvist" in ds.variables and "cloud_fraction" in ds.variables:
-            for sl in _set_slices(ds, chunk):
-                part = baseline_errors(
-                    ds["cf_sundqvist"].isel(sample=sl).values,
-                    ds["cloud_fraction"].isel(sample=sl).values,
-                )
-                if part["n"] == 0:
-                    continue
-                k = int(part["n"])
-                sq += k * part["rmse"] ** 2
-                bias += k * part["bias"]
-                mae += k * part["mae"]
-                n += k
-        elif int(ds.sizes.get("sample", 0)) > 0:
-            _require(ds, ("cf_sundqvist", "cloud_fraction"), set_store)
-    finally:
-        ds.close()
-    if n == 0:
-        nan = float("nan")
-        return {"rmse": nan, "bias": nan, "mae": nan, "n": 0}
-    return {"rmse": math.sqrt(sq / n), "bias": bias / n, "mae": mae / n, "n": n}
-
-
-# --------------------------------------------------------------------------- scenes
 
 
 def draw_report_figures(layout: ResultsLayout, cases: list[str], scales: list[str]) -> None:

@@ -16,10 +16,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from lesprep.report.figures import _require, baseline_skill
 from lesprep.report.scenes import SceneDescriptors, describe_case
+from lesprep.report.skill import baseline_skill
+from lesprep.report.stores import opened_store
 from lesprep.sets.splits import read_assignment_tsv
-from lesprep.store import open_store
 
 
 def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
@@ -43,13 +43,9 @@ def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
     >>> scenes_for_case("results/cases/c/canonical.zarr").columns[0]  # doctest: +SKIP
     'time'
     """
-    ds = open_store(canonical_path, chunks={})
-    try:
-        _require(ds, ("lwp", "cloud_mask"), canonical_path)
+    with opened_store(canonical_path, ("lwp", "cloud_mask"), chunks={}) as ds:
         column_cloudy = (ds["cloud_mask"] > 0).any("z")
         return describe_case(ds["lwp"], column_cloudy, float(ds.attrs["dx"]))
-    finally:
-        ds.close()
 
 
 def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | Path) -> Path:

@@ -16,7 +16,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from helpers import MIB, ROOT, remove, status_kib, warm
+from helpers import HERE, MIB, ROOT, remove, status_kib, warm
 from trials import w_profile, w_storage
 from workers import (
     w_check,
@@ -117,7 +117,7 @@ class Runner:
         rfile = self.ipc / f"{key}.result.json"
         pfile.write_text(json.dumps(dict(params), default=str))
         remove(rfile)
-        cmd = [sys.executable, str(Path(__file__).resolve()), "--worker", worker]
+        cmd = [sys.executable, str(HERE / "run.py"), "--worker", worker]
         cmd += ["--params", str(pfile), "--result", str(rfile)]
         print(f"  .. {key} ({worker})", flush=True)
         load0 = os.getloadavg()

@@ -8,7 +8,7 @@ Defaults live in the config schema only.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Literal
 
 from lesprep import catalogue
@@ -146,19 +146,10 @@ class CoarsenPlan:
         depends on.
         """
         labels = self.groups[group]
-        b = self.base
-        return CoarsenSettings(
+        return replace(
+            self.base,
             scales=tuple(s for s in self.scales if s.label in labels),
-            moments=b.moments,
-            patch_variables=b.patch_variables,
             patch_scales=tuple(lab for lab in self.patch_scales if lab in labels),
-            patch_size=b.patch_size,
-            patch_halo=b.patch_halo,
-            on_misfit=b.on_misfit,
-            rh_critical=b.rh_critical,
-            dtype=b.dtype,
-            chunk_mib=b.chunk_mib,
-            store=b.store,
         )
 
 

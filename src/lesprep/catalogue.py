@@ -11,6 +11,9 @@ An entry (:class:`Variable`) says everything the stages need to know about a var
   variable map), each with the units the raw field is converted to first and, where
   the quantity is not the canonical one, the conversion to it;
 * its plausible range in canonical units (common practice, see :mod:`lesprep.raw.checks`);
+* for a quantity that cannot be negative, how far below zero raw values may go before the
+  archive is refused (``negative_tolerance``; values in between are numerics of advection
+  schemes that are not positive-definite, set to zero and recorded);
 * for a derived variable, the variables it is computed from and its formula;
 * whether it may get sub-grid moments and fine patches at coarse scales.
 
@@ -89,6 +92,7 @@ class Variable:
     standard_name: str | None = None
     quantities: Mapping[str, Quantity] = field(default_factory=dict)
     plausible: tuple[float, float] | None = None
+    negative_tolerance: float | None = None
     derived_from: tuple[str, ...] = ()
     formula: Formula | None = None
     moments: bool = True
@@ -187,6 +191,7 @@ BUILTIN: tuple[Variable, ...] = (
         label="cloud liquid water mixing ratio",
         quantities={"mixing_ratio": Quantity(units=_KG)},
         plausible=(0.0, 0.02),
+        negative_tolerance=1e-6,
         required=True,
     ),
     Variable(
@@ -204,6 +209,7 @@ BUILTIN: tuple[Variable, ...] = (
             ),
         },
         plausible=(0.0, 0.05),
+        negative_tolerance=1e-6,
         required=True,
     ),
     Variable(
@@ -339,6 +345,17 @@ def variables(*, kind: Kind | None = None) -> Iterator[Variable]:
 def required_inputs() -> tuple[str, ...]:
     """Mapped variables every variable map must provide (those the derived fields need)."""
     return tuple(v.name for v in variables(kind="mapped") if v.required)
+
+
+def negative_tolerances() -> dict[str, float]:
+    """Default negative tolerance of every variable that has one (canonical units).
+
+    qc and qv: 1e-6 kg kg-1, about 0.1 % of a typical in-cloud water content of 1 g/kg.
+    This is common practice for screening LES output, not a published value; undershoots
+    of non-positive-definite advection are usually orders of magnitude smaller (-1e-9 kg/kg
+    in a few cells). Precipitating species run more negative and get larger tolerances.
+    """
+    return {v.name: v.negative_tolerance for v in variables() if v.negative_tolerance is not None}
 
 
 def plausible_ranges() -> dict[str, tuple[float, float]]:

@@ -107,6 +107,51 @@ class _ConversionLog:
         return [c.to_dict() for c in self.items.values()]
 
 
+@dataclass
+class _ClipLog:
+    """Negative values within the tolerance that were set to zero, per variable and time."""
+
+    records: list[dict[str, Any]] = field(default_factory=list)
+
+    def clip(
+        self, values: np.ndarray, extent: tuple[float, float], *, name: str, tol: float, t: float
+    ) -> tuple[tuple[float, float], np.ndarray | None]:
+        """Set values in ``[-tol, 0)`` to zero in place; return the new extent and the
+        clipped amounts (None when nothing was clipped). Values below ``-tol`` stay: the
+        range check refuses them."""
+        lo, hi = extent
+        if lo >= 0.0 or lo < -tol:
+            return extent, None
+        neg = values < 0
+        amounts = np.where(neg, -values.astype(np.float64), 0.0)
+        cells = int(np.count_nonzero(neg))
+        np.maximum(values, 0, out=values)
+        self.records.append(
+            {"variable": name, "time_s": t, "cells": cells, "min": lo, "tolerance": tol}
+        )
+        return (0.0, max(hi, 0.0)), amounts
+
+    def add_mass(self, amounts: dict[str, np.ndarray], rho: np.ndarray, dz: np.ndarray) -> None:
+        """Record the clipped mass of this time step as a domain-mean column (kg m-2)."""
+        n = len(amounts)
+        for rec, a in zip(self.records[-n:], amounts.values(), strict=True):
+            column = np.tensordot(dz, (a * rho).sum(axis=(1, 2)), axes=(0, 0))
+            rec["mass_kg_m2"] = float(column) / (a.shape[1] * a.shape[2])
+            log.warning(
+                "case %s: %s had %d cell(s) below zero at t = %g s (min %.3g, within the "
+                "tolerance %.3g); set to zero, %.3g kg m-2 of the domain-mean column",
+                self.case,
+                rec["variable"],
+                rec["cells"],
+                rec["time_s"],
+                rec["min"],
+                rec["tolerance"],
+                rec["mass_kg_m2"],
+            )
+
+    case: str = ""
+
+
 def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.ndarray, list[str]]:
     """Drop time (already selected) and transpose to (z, y, x) order."""
     axes = tuple(a for a in axes if a != "time")
@@ -121,6 +166,7 @@ def canonical_step(
     faces: np.ndarray,
     settings: IngestSettings,
     conversions: _ConversionLog,
+    clipped: _ClipLog,
 ) -> dict[str, np.ndarray]:
     """Canonical fields of one output time, checked and derived, in the store dtype.
 
@@ -139,6 +185,7 @@ def canonical_step(
     files: dict[str, str] = {}
     extents: dict[str, tuple[float, float]] = {}
     names = mapped_names(vm)
+    clipped_now: dict[str, np.ndarray] = {}
     for name in names:
         spec = vm.variables[name]
         quantity = catalogue.get(name).quantities[spec.quantity]
@@ -187,6 +234,12 @@ def canonical_step(
             values = quantity.convert(values, out).astype(dtype)
         out[name] = np.ascontiguousarray(values)
         extents[name] = value_extent(out[name])[1:] if extent is None else extent
+        if name in settings.negative_tolerance:
+            extents[name], amounts = clipped.clip(
+                out[name], extents[name], name=name, tol=settings.negative_tolerance[name], t=t
+            )
+            if amounts is not None:
+                clipped_now[name] = amounts
     for name in names:
         spec = vm.variables[name]
         if name not in settings.ranges:
@@ -206,6 +259,10 @@ def canonical_step(
             time=t,
             extent=extents[name],
         )
+    if clipped_now:
+        p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
+        rho = thermo.air_density(p, out["T"], out["qv"])
+        clipped.add_mass(clipped_now, np.asarray(rho, dtype=np.float64), layer_thickness(faces))
     diag = cell_diagnostics(
         out["p"],
         out["T"],
@@ -366,7 +423,14 @@ def ingest_case(
     retain_freed_memory()
     vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
     files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
-    cat = index_archive(files, vm, case=case)
+    cat = index_archive(
+        files,
+        vm,
+        case=case,
+        time_gaps=settings.time_gaps,
+        duplicate_times=settings.duplicate_times,
+        restart_order=settings.restart_order,
+    )
     for note in cat.warnings:
         log.warning("%s", note)
     dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
@@ -377,6 +441,7 @@ def ingest_case(
     dropped = [float(t) for t in np.delete(cat.times, keep)]
     p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
     conversions = _ConversionLog()
+    clipped = _ClipLog(case=case)
     dtype = np.dtype(settings.dtype)
     layout = _layout(cat, keep, faces, settings, p_profile)
     out = Path(out)
@@ -385,7 +450,12 @@ def ingest_case(
         writer = TimeWriter(group)
         for j, ti in enumerate(keep):
             fields = canonical_step(
-                cat, int(ti), faces=faces, settings=settings, conversions=conversions
+                cat,
+                int(ti),
+                faces=faces,
+                settings=settings,
+                conversions=conversions,
+                clipped=clipped,
             )
             step = {
                 n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
@@ -426,6 +496,9 @@ def ingest_case(
             times_dropped_s=dropped,
             warnings=cat.warnings,
             times_kept=int(keep.size),
+            time_axis=None if cat.time_report is None else cat.time_report.to_dict(),
+            restart_overlaps=cat.overlaps,
+            negatives_clipped=clipped.records,
             time_origin=cat.origin,
             settings=settings.to_dict(),
             saturation_formula=thermo.SATURATION_FORMULA,

@@ -18,6 +18,24 @@ from lesprep.store import StoreSettings
 from lesprep.units import parse_quantity
 
 Dtype = Literal["float32", "float64"]
+TimeGaps = Literal["warn", "error"]
+DuplicateTimes = Literal["error", "keep_later"]
+RestartOrder = Literal["mtime", "name"]
+
+
+def parse_tolerances(overrides: Mapping[str, Any]) -> dict[str, float]:
+    """The catalogue's negative tolerances updated with the config's overrides.
+
+    Raises
+    ------
+    ConfigError
+        An override names a variable the catalogue does not know.
+    """
+    out = catalogue.negative_tolerances()
+    for name, tol in overrides.items():
+        catalogue.get(name)
+        out[name] = float(tol)
+    return out
 
 
 def parse_ranges(overrides: Mapping[str, Any]) -> dict[str, tuple[float, float]]:
@@ -56,6 +74,13 @@ class IngestSettings:
         Target chunk size of a 3-D field (MiB).
     store
         Compressor settings.
+    negative_tolerance
+        How far below zero each non-negative variable may go (canonical units) before the
+        archive is refused; values in between are set to zero and recorded.
+    time_gaps
+        What a missing output time or an irregular interval does.
+    duplicate_times, restart_order
+        What an output time in two files does, and which file is the later one.
     """
 
     spinup_s: float
@@ -64,10 +89,16 @@ class IngestSettings:
     dtype: Dtype
     chunk_mib: float
     store: StoreSettings
+    negative_tolerance: Mapping[str, float]
+    time_gaps: TimeGaps
+    duplicate_times: DuplicateTimes
+    restart_order: RestartOrder
 
     def __post_init__(self) -> None:
         ranges = {k: (float(v[0]), float(v[1])) for k, v in self.ranges.items()}
         object.__setattr__(self, "ranges", MappingProxyType(ranges))
+        tol = {k: float(v) for k, v in self.negative_tolerance.items()}
+        object.__setattr__(self, "negative_tolerance", MappingProxyType(tol))
 
     def __hash__(self) -> int:
         return hash((self.spinup_s, self.threshold, tuple(self.ranges.items()), self.dtype))
@@ -84,6 +115,10 @@ class IngestSettings:
             dtype=ingest["dtype"],
             chunk_mib=float(ingest["chunk_mib"]),
             store=store,
+            negative_tolerance=parse_tolerances(ingest["negative_tolerance"]),
+            time_gaps=ingest["time_gaps"],
+            duplicate_times=ingest["duplicate_times"],
+            restart_order=ingest["restart_order"],
         )
 
     def for_case(self, spinup_s: float | None) -> IngestSettings:
@@ -99,6 +134,10 @@ class IngestSettings:
             "dtype": self.dtype,
             "chunk_mib": self.chunk_mib,
             "store": self.store.to_dict(),
+            "negative_tolerance": dict(self.negative_tolerance),
+            "time_gaps": self.time_gaps,
+            "duplicate_times": self.duplicate_times,
+            "restart_order": self.restart_order,
         }
 
     @classmethod
@@ -111,4 +150,8 @@ class IngestSettings:
             dtype=d["dtype"],
             chunk_mib=float(d["chunk_mib"]),
             store=StoreSettings.from_dict(d["store"]),
+            negative_tolerance=dict(d["negative_tolerance"]),
+            time_gaps=d["time_gaps"],
+            duplicate_times=d["duplicate_times"],
+            restart_order=d["restart_order"],
         )

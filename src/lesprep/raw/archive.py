@@ -13,9 +13,10 @@ from __future__ import annotations
 import glob
 import os
 import re
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import netCDF4
 import numpy as np
@@ -23,6 +24,12 @@ import pandas as pd
 
 from lesprep.errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
 from lesprep.raw.checks import value_extent
+from lesprep.raw.timeaxis import (
+    DuplicateResolver,
+    TimeAxisReport,
+    check_intervals,
+    file_ranks,
+)
 from lesprep.raw.varmap import VariableMap
 from lesprep.units import ureg
 
@@ -159,12 +166,41 @@ def open_raw(path: str | Path, *, case: str) -> RawFile:
         nc.set_auto_maskandscale(True)
         return RawFile(nc)
     except Exception as exc:  # netCDF4 raises OSError, RuntimeError, ...
-        raise InputError(
-            f"cannot be read as NetCDF ({type(exc).__name__}: {exc})",
-            case=case,
-            file=str(path),
-            hint="the file may be truncated or corrupt; copy it again from the archive",
-        ) from None
+        raise incomplete_file_error(path, exc, case=case) from None
+
+
+def incomplete_file_error(
+    path: str | Path, exc: BaseException, *, case: str, variable: str | None = None
+) -> InputError:
+    """The error for a raw file that cannot be read completely.
+
+    Says what the library reported, the file's size and how long ago it was modified: a
+    file modified in the last hour is most likely still being written by a running
+    simulation (leave it out until the run has written it), an older one truncated or
+    corrupt (copy it again).
+    """
+    path = Path(path)
+    try:
+        st = path.stat()
+        age = max(0.0, time.time() - st.st_mtime)
+        facts = f"{st.st_size} bytes, modified {age:.0f} s ago"
+    except OSError:
+        age, facts = float("inf"), "no longer readable"
+    if age < 3600.0:
+        hint = (
+            "it was modified recently: a running simulation may still be writing it; "
+            "leave it out of the archive until the run has finished writing it"
+        )
+    else:
+        hint = "the file may be truncated or corrupt; copy it again from the archive"
+    return InputError(
+        f"cannot be read completely ({facts}; the NetCDF library says "
+        f"{type(exc).__name__}: {exc})",
+        case=case,
+        file=str(path),
+        variable=variable,
+        hint=hint,
+    )
 
 
 def parse_time_units(
@@ -239,6 +275,11 @@ class ArchiveIndex:
         variable without a time axis, a single entry used for every time.
     grid
         Coordinates in metres.
+    time_report
+        The usual output interval, missing times and irregular steps.
+    overlaps
+        Output times found in two files, with the file kept (``duplicate_times:
+        keep_later``).
     """
 
     case: str
@@ -250,6 +291,8 @@ class ArchiveIndex:
     grid: RawGrid
     attrs: dict[str, Any] = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
+    time_report: TimeAxisReport | None = None
+    overlaps: list[dict[str, Any]] = field(default_factory=list)
 
 
 def _coord_values(
@@ -283,7 +326,15 @@ def _coord_values(
     return np.asarray(conv.apply(values), dtype=np.float64)
 
 
-def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> ArchiveIndex:
+def index_archive(
+    files: list[Path],
+    varmap: VariableMap,
+    *,
+    case: str,
+    time_gaps: Literal["warn", "error"],
+    duplicate_times: Literal["error", "keep_later"],
+    restart_order: Literal["mtime", "name"],
+) -> ArchiveIndex:
     """Index a case's raw files against its variable map.
 
     Parameters
@@ -294,6 +345,12 @@ def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> Archi
         The flavour's variable map.
     case
         Case id, for messages.
+    time_gaps
+        A missing output time or an irregular interval warns (and is recorded) or is
+        refused (:mod:`lesprep.raw.timeaxis`).
+    duplicate_times, restart_order
+        An output time in two files is refused, or the later file's copy is kept (later
+        by modification time or by file name), with a warning naming times and files.
 
     Returns
     -------
@@ -437,12 +494,17 @@ def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> Archi
         )
     times: np.ndarray | None = None
     where: dict[str, list[tuple[int, int]]] = {}
+    resolver = DuplicateResolver(files, file_ranks(files, restart_order))
     for name, items in entries.items():
         if name in static and not items:
             continue
         items.sort()
         t = np.array([it[0] for it in items])
-        dup = np.nonzero(np.diff(t) <= 1e-6 * max(1.0, float(np.abs(t).max())))[0]
+        tol = 1e-6 * max(1.0, float(np.abs(t).max()))
+        if duplicate_times == "keep_later":
+            items = resolver.resolve(items, tol)
+            t = np.array([it[0] for it in items])
+        dup = np.nonzero(np.diff(t) <= tol)[0]
         if dup.size:
             a, b = items[dup[0]], items[dup[0] + 1]
             raise TimeAxisError(
@@ -451,7 +513,8 @@ def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> Archi
                 case=case,
                 file=str(files[b[1]]),
                 variable=varmap.variables[name].raw,
-                hint="remove the duplicate file or the restart overlap from the archive",
+                hint="remove the duplicate file or the restart overlap from the archive, or "
+                "set ingest.duplicate_times: keep_later to keep the later file's copy",
             )
         if times is None:
             times = t
@@ -470,6 +533,19 @@ def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> Archi
     for name, fi in static.items():
         if name not in where:
             where[name] = [(fi, -1)]
+    if resolver.overlaps:
+        notes.append(f"case {case!r}: " + resolver.describe(restart_order))
+    report = check_intervals(times)
+    if not report.regular:
+        if time_gaps == "error":
+            raise TimeAxisError(
+                report.describe(),
+                case=case,
+                file=str(files[0].parent),
+                variable=time_spec["raw"],
+                hint="add the missing output files, or set ingest.time_gaps: warn to accept",
+            )
+        notes.append(f"case {case!r}: {report.describe()}")
     return ArchiveIndex(
         case=case,
         files=list(files),
@@ -480,6 +556,8 @@ def index_archive(files: list[Path], varmap: VariableMap, *, case: str) -> Archi
         grid=grid,
         attrs=attrs,
         warnings=notes,
+        time_report=report,
+        overlaps=[vars(o) for o in resolver.overlaps.values()],
     )
 
 
@@ -537,13 +615,7 @@ def read_field(
         values, extent = var.read_with_extent({time_dim: k} if k >= 0 else None)
         units = var.attrs.get("units")
     except Exception as exc:
-        raise InputError(
-            f"cannot read values ({type(exc).__name__}: {exc})",
-            case=cat.case,
-            file=str(path),
-            variable=spec.raw,
-            hint="the file may be truncated or corrupt",
-        ) from None
+        raise incomplete_file_error(path, exc, case=cat.case, variable=spec.raw) from None
     finally:
         ds.close()
     return values, str(path), units, extent

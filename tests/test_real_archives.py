@@ -1,0 +1,158 @@
+"""What real LES archives contain and must be accepted, with a record: tiny negative
+condensate, missing output times, restart overlaps; and half-written files, refused with
+a clear message."""
+
+from __future__ import annotations
+
+import os
+import shutil
+
+import netCDF4
+import numpy as np
+import pytest
+from metpy.calc import density
+from metpy.units import units
+
+from conftest import REPO
+from lesprep.canonical.ingest import ingest_case
+from lesprep.errors import InputError, RangeError, TimeAxisError
+from lesprep.provenance import load
+from lesprep.raw.timeaxis import check_intervals
+from lesprep.store import open_store, stale_temporaries
+from settings_helpers import ingest_settings
+
+ALPHA = REPO / "config/varmaps/flavour-alpha.yaml"
+
+
+def _ingest(raw, out, **settings):
+    return ingest_case(
+        case="c1",
+        raw=str(raw / "*.nc"),
+        varmap=ALPHA,
+        settings=ingest_settings(spinup="0 s", **settings),
+        out=out,
+    )
+
+
+def _step(store):
+    return load(open_store(store).attrs)["steps"][-1]
+
+
+# ------------------------------------------------------------------ negative condensate
+
+
+def test_tiny_negative_cloud_water_is_set_to_zero_and_recorded(tmp_path, case_copy, caplog):
+    raw = case_copy("sc-ostra-01")  # liq in g/kg
+    cells = [(0, 3, 4, 5), (0, 10, 2, 7), (0, 20, 11, 11)]
+    with netCDF4.Dataset(raw / "snap_0002.nc", "a") as nc:
+        t_s = float(nc["time"][0])
+        for c in cells:
+            nc["liq"][c] = -1e-6  # g/kg, i.e. -1e-9 kg/kg: numerics, not a broken file
+    out = _ingest(raw, tmp_path / "c.zarr")
+    ds = open_store(out)
+    j = int(np.argmin(np.abs(ds["time"].values - t_s)))
+    qc = ds["qc"].values[j]
+    for _, k, y, x in cells:
+        assert qc[k, y, x] == 0.0
+    assert float(ds["qc"].min()) >= 0.0
+    recs = _step(out)["negatives_clipped"]
+    assert [(r["variable"], r["time_s"], r["cells"]) for r in recs] == [("qc", t_s, 3)]
+    # the clipped mass as a domain-mean column, against MetPy's moist-air density
+    p, t, r = (ds[v].values[j].astype(np.float64) for v in ("p", "T", "qv"))
+    rho = density(p * units.Pa, t * units.K, r * units("kg/kg")).to("kg/m^3").magnitude
+    dz = np.diff(ds["z_bounds"].values, axis=1)[:, 0]
+    ref = sum(rho[k, y, x] * 1e-9 * dz[k] for _, k, y, x in cells) / (qc.shape[1] * qc.shape[2])
+    assert recs[0]["mass_kg_m2"] == pytest.approx(ref, rel=1e-3)
+    assert "below zero" in caplog.text and "qc" in caplog.text
+
+
+def test_negative_cloud_water_beyond_the_tolerance_is_refused(tmp_path, case_copy):
+    raw = case_copy("sc-ostra-01")
+    with netCDF4.Dataset(raw / "snap_0002.nc", "a") as nc:
+        nc["liq"][0, 3, 4, 5] = -0.01  # g/kg = -1e-5 kg/kg, 10x the default tolerance
+    out = tmp_path / "c.zarr"
+    with pytest.raises(RangeError, match="canonical qc spans"):
+        _ingest(raw, out)
+    assert not out.exists() and stale_temporaries(out) == []
+    # a larger configured tolerance accepts it
+    _ingest(raw, out, negative_tolerance={"qc": 2e-5})
+    assert float(open_store(out)["qc"].min()) == 0.0
+
+
+# ------------------------------------------------------------------ gaps and intervals
+
+
+def test_interval_check_against_hand_worked_axes():
+    r = check_intervals([0, 3600, 7200, 10800, 18000, 21600, 25200])
+    assert r.interval_s == 3600 and r.missing_s == (14400.0,) and r.irregular == ()
+    assert check_intervals([0, 60, 120, 180]).regular
+    r = check_intervals([0, 600, 1200, 1500, 2100])
+    assert r.irregular == ((1200.0, 1500.0),)  # diffs 600, 600, 300, 600: median 600
+
+
+def test_missing_output_time_warns_and_is_recorded(tmp_path, case_copy):
+    raw = case_copy("sc-ostra-01")
+    with netCDF4.Dataset(raw / "snap_0002.nc") as nc:
+        gone = float(nc["time"][0])
+    (raw / "snap_0002.nc").unlink()
+    out = _ingest(raw, tmp_path / "c.zarr")
+    step = _step(out)
+    assert step["time_axis"]["missing_s"] == [gone]
+    assert any(f"{gone:g}" in w and "missing" in w for w in step["warnings"])
+    with pytest.raises(TimeAxisError, match=f"output time.*{gone:g}.*missing"):
+        _ingest(raw, tmp_path / "d.zarr", time_gaps="error")
+    assert not (tmp_path / "d.zarr").exists()
+
+
+# ------------------------------------------------------------------ restarts
+
+
+def _overlap(raw):
+    """A restart overlap: snap_0003.nc written again, later, with other values."""
+    dup = raw / "snap_0003r.nc"
+    shutil.copyfile(raw / "snap_0003.nc", dup)
+    with netCDF4.Dataset(dup, "a") as nc:
+        nc["liq"][...] = nc["liq"][...] * 0.5
+        t_s = float(nc["time"][0])
+    old = os.stat(raw / "snap_0003.nc").st_mtime
+    os.utime(dup, (old + 60, old + 60))
+    return dup, t_s
+
+
+def test_restart_overlap_is_refused_by_default(tmp_path, case_copy):
+    raw = case_copy("sc-ostra-01")
+    _overlap(raw)
+    with pytest.raises(TimeAxisError, match="appears in two files"):
+        _ingest(raw, tmp_path / "c.zarr")
+
+
+@pytest.mark.parametrize("order", ["mtime", "name"])
+def test_restart_overlap_keeps_the_later_file(tmp_path, case_copy, order):
+    raw = case_copy("sc-ostra-01")
+    dup, t_s = _overlap(raw)
+    out = _ingest(raw, tmp_path / "c.zarr", duplicate_times="keep_later", restart_order=order)
+    ds = open_store(out)
+    j = int(np.argmin(np.abs(ds["time"].values - t_s)))
+    with netCDF4.Dataset(dup) as nc:
+        later = np.asarray(nc["liq"][0], dtype=np.float64) * 1e-3  # g/kg -> kg/kg
+    np.testing.assert_allclose(ds["qc"].values[j], later.astype(np.float32), rtol=1e-6)
+    step = _step(out)
+    assert step["restart_overlaps"] == [
+        {"time_s": t_s, "kept": "snap_0003r.nc", "dropped": ["snap_0003.nc"]}
+    ]
+    assert any("snap_0003r.nc" in w and f"{t_s:g}" in w for w in step["warnings"])
+
+
+# ------------------------------------------------------------------ half-written files
+
+
+def test_half_written_newest_file_is_named(tmp_path, case_copy):
+    raw = case_copy("sc-ostra-01")
+    newest = sorted(raw.glob("snap_*.nc"))[-1]
+    data = newest.read_bytes()
+    newest.write_bytes(data[: len(data) // 2])  # a run still writing its newest output
+    with pytest.raises(InputError) as err:
+        _ingest(raw, tmp_path / "c.zarr")
+    msg = str(err.value)
+    assert newest.name in msg and "cannot be read completely" in msg
+    assert "still be writing" in msg or "running simulation" in msg

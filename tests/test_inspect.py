@@ -260,6 +260,22 @@ def test_unseen_layout_by_cf_attributes(tmp_path):
     assert_same_stores(a, b)
 
 
+def test_velocity_on_the_staggered_vertical_is_proposed_as_w(tmp_path):
+    # 'wvel' in m s-1 on the face dimension, with no long_name or standard_name: nothing in
+    # its name says w, but a velocity on the staggered vertical almost always is
+    f = tmp_path / "anon.nc"
+    write_archive(f)
+    with netCDF4.Dataset(f, "a") as nc:
+        nc.renameVariable("wa", "wvel")
+        nc["wvel"].delncattr("standard_name")
+    report = inspect_files([f])
+    w = report.proposals["w"]
+    assert (w.raw, w.quantity) == ("wvel", "direct")
+    assert any("staggered vertical" in r for r in w.reasons)
+    # u and v (velocities at cell centres) are not taken for it
+    assert {p.raw for p in report.proposals.values()} & {"u", "v"} == set()
+
+
 def test_bare_q_without_units_is_flagged(tmp_path):
     f = write_archive(tmp_path / "out.nc")
     with netCDF4.Dataset(f, "a") as nc:
@@ -284,8 +300,9 @@ def test_bare_q_without_units_is_flagged(tmp_path):
 def test_missing_variable_gets_a_placeholder_ingest_names(tmp_path):
     f = write_archive(tmp_path / "out.nc")
     with netCDF4.Dataset(f, "a") as nc:
-        nc.renameVariable("wa", "velocity_thing")
-        nc.variables["velocity_thing"].delncattr("standard_name")
+        nc.renameVariable("wa", "some_thing")
+        nc.variables["some_thing"].delncattr("standard_name")
+        nc.variables["some_thing"].units = "1"  # not a velocity: nothing is w
     report = inspect_files([f])
     assert report.proposals["w"].raw is None  # u and v (m s-1) are not taken for w
     text = draft_varmap(report)

@@ -145,6 +145,17 @@ def _fits(canonical: str, axes: tuple[str, ...]) -> bool:
 _Scored = tuple[float, str, str, list[str]]  # score, raw name, quantity, reasons
 
 
+def _staggered_velocity(
+    v: VariableInfo, axes: tuple[str, ...]
+) -> tuple[float, str, list[str]] | None:
+    """A field in velocity units on the staggered vertical dimension is almost always w,
+    whatever its name: evidence just above :data:`MIN_SCORE` (a named candidate wins)."""
+    if "z_face" not in axes or _excluded("w", v) or not _units_ok("w", v.units):
+        return None
+    reasons = [f"units {v.units!r} (a velocity) on the staggered vertical dimension"]
+    return MIN_SCORE + 1.0, "direct", reasons
+
+
 def _candidates(
     variables: dict[str, VariableInfo], dims: dict[str, DimInfo], skip: set[str]
 ) -> dict[str, list[_Scored]]:
@@ -156,6 +167,8 @@ def _candidates(
             continue
         for c in CANONICAL:
             found = _score(c, v) if _fits(c, axes) else None
+            if found is None and c == "w" and _fits(c, axes):
+                found = _staggered_velocity(v, axes)
             if found is None:
                 continue
             score, quantity, reasons = found

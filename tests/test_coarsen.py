@@ -353,3 +353,28 @@ def test_z_chunks_are_whole_slabs_near_the_budget():
     pieces[6:8] = 3.0
     pieces[8:10] = 4.0
     assert [(z, a.shape[0]) for z, a in pieces.take_complete(10)] == [(4, 4), (8, 2)]
+
+
+# ------------------------------------------------------------- small grids, short columns
+
+
+@pytest.mark.parametrize("nz", [1, 2, 3])
+def test_short_columns_and_a_one_cell_domain(nz):
+    # a 1 x 1 coarse domain (the factor is the whole domain), one time, one to three levels
+    fine = random_fine(np.random.default_rng(3), nz=nz, n=12)
+    z = 25.0 + 50.0 * np.arange(nz)
+    out = coarse_fields(fine, z, scales_for([12]), SETTINGS)["f12"]
+    for name, arr in out.items():
+        assert arr.shape[-2:] == (1, 1), name
+    # block means and variance against numpy over the whole domain
+    np.testing.assert_allclose(out["qc_mean"][:, 0, 0], fine["qc"].mean(axis=(1, 2)), rtol=1e-12)
+    np.testing.assert_allclose(out["w_var"][:, 0, 0], fine["w"].var(axis=(1, 2)), rtol=1e-10)
+    rh = out["rh_of_means"][:, 0, 0]
+    if nz == 1:
+        assert np.isnan(out["drh_dz"]).all()  # undefined with one level (documented)
+    elif nz == 2:  # the one finite difference (numpy), at both levels
+        np.testing.assert_allclose(out["drh_dz"][:, 0, 0], np.repeat(np.diff(rh) / 50.0, 2))
+    else:  # second order on three levels: numpy's gradient with edge_order=2
+        ref = np.gradient(rh, z, edge_order=2)
+        np.testing.assert_allclose(out["drh_dz"][:, 0, 0], ref, rtol=1e-12)
+    assert np.isfinite(out["cf_sundqvist"]).all() and np.isfinite(out["lwp_mean"]).all()

@@ -29,8 +29,24 @@ from lesprep.schemes import sundqvist_cloud_fraction
 
 
 def vertical_derivative(values: np.ndarray, z: np.ndarray, *, axis: int = 0) -> np.ndarray:
-    """d(values)/dz on a non-uniform grid: second order inside and at the ends."""
-    return np.gradient(np.asarray(values, dtype=np.float64), z, axis=axis, edge_order=2)
+    """d(values)/dz on a non-uniform grid.
+
+    Three or more levels: second order inside and at the ends. Two levels: the one
+    finite difference, at both levels. One level: NaN (a vertical derivative is not
+    defined by one level).
+
+    Examples
+    --------
+    >>> vertical_derivative(np.array([1.0, 3.0]), np.array([0.0, 100.0])).tolist()
+    [0.02, 0.02]
+    >>> vertical_derivative(np.array([[1.0, 2.0]]), np.array([50.0])).tolist()
+    [[nan, nan]]
+    """
+    a = np.asarray(values, dtype=np.float64)
+    n = a.shape[axis]
+    if n == 1:
+        return np.full(a.shape, np.nan)
+    return np.gradient(a, z, axis=axis, edge_order=2 if n >= 3 else 1)
 
 
 def hierarchical_means(a: np.ndarray, factors: Sequence[int]) -> dict[int, np.ndarray]:

@@ -156,3 +156,108 @@ def test_half_written_newest_file_is_named(tmp_path, case_copy):
     msg = str(err.value)
     assert newest.name in msg and "cannot be read completely" in msg
     assert "still be writing" in msg or "running simulation" in msg
+
+
+# ------------------------------------------------------------------ near-constant fields
+
+QUIET_MAP = """
+dims: {t: time, k: z, kw: z_face, j: y, i: x}
+coords: {time: {raw: t}, z: {raw: k}, z_face: {raw: kw}, y: {raw: j}, x: {raw: i}}
+variables:
+  qc: {raw: qc, dims: [t, k, j, i]}
+  qv: {raw: qv, dims: [t, k, j, i]}
+  T: {raw: ta, dims: [t, k, j, i], quantity: temperature}
+  p: {raw: pa, dims: [t, k, j, i]}
+  w: {raw: wa, dims: [t, kw, j, i]}
+"""
+
+
+def _quiet_archive(path, rng, *, nt=2, nz=3, n=32, sigma=2e-6):
+    """A quiet layer: T = 290 K plus noise of standard deviation ``sigma`` and skewness 1
+    (a standardised gamma distribution of shape 4: skewness 2 / sqrt(4)), stored in float64
+    in the raw file. Everything else is smooth and plausible."""
+    z = 25.0 + 50.0 * np.arange(nz)
+    with netCDF4.Dataset(path, "w") as nc:
+        for name, size in (("t", nt), ("k", nz), ("kw", nz + 1), ("j", n), ("i", n)):
+            nc.createDimension(name, size)
+        for name, dims, vals, u in (
+            ("t", ("t",), 600.0 * np.arange(nt), "s"),
+            ("k", ("k",), z, "m"),
+            ("kw", ("kw",), 50.0 * np.arange(nz + 1), "m"),
+            ("j", ("j",), (np.arange(n) + 0.5) * 50.0, "m"),
+            ("i", ("i",), (np.arange(n) + 0.5) * 50.0, "m"),
+        ):
+            v = nc.createVariable(name, "f8", dims)
+            v.units = u
+            v[:] = vals
+        shape, d4 = (nt, nz, n, n), ("t", "k", "j", "i")
+        g = rng.gamma(4.0, 1.0, shape)
+        fields = {
+            "qc": (np.zeros(shape), "kg kg-1", d4),
+            "qv": (0.008 + rng.normal(0, 1e-4, shape), "kg kg-1", d4),
+            "ta": (290.0 + sigma * (g - 4.0) / 2.0, "K", d4),
+            "pa": (np.broadcast_to(100000.0 - 12.0 * z[None, :, None, None], shape), "Pa", d4),
+            "wa": (rng.normal(0, 0.3, (nt, nz + 1, n, n)), "m s-1", ("t", "kw", "j", "i")),
+        }
+        for name, (vals, u, dims) in fields.items():
+            v = nc.createVariable(name, "f8", dims)
+            v.units = u
+            v[:] = vals
+    return path
+
+
+def _block_stats(x, f):
+    nt, nz, ny, nx = x.shape
+    b = x.reshape(nt, nz, ny // f, f, nx // f, f).transpose(0, 1, 2, 4, 3, 5)
+    b = b.reshape(nt, nz, ny // f, nx // f, f * f)
+    import scipy.stats
+
+    return b.mean(axis=-1), b.var(axis=-1), scipy.stats.skew(b, axis=-1, bias=True)
+
+
+def test_near_constant_field_keeps_its_subgrid_statistics(tmp_path, caplog):
+    from lesprep.scales.coarsen import coarsen_case
+    from lesprep.scales.spec import parse_scales
+    from settings_helpers import coarsen_settings
+
+    rng = np.random.default_rng(11)
+    raw = _quiet_archive(tmp_path / "quiet.nc", rng)
+    vm = tmp_path / "quiet.yaml"
+    vm.write_text(QUIET_MAP)
+    canon = ingest_case(
+        case="quiet-1",
+        raw=[raw],
+        varmap=vm,
+        settings=ingest_settings(spinup="0 s"),
+        out=tmp_path / "canonical.zarr",
+    )
+    assert "T spans fewer than 16 float32 steps on 3 level(s)" in caplog.text
+    fine = open_store(canon)
+    assert fine["T"].attrs["units"] == "K" and float(fine["T"].mean()) == pytest.approx(290.0)
+    assert "T_dev" in fine and _step(canon)["deviation_fields"] == ["T"]
+    with netCDF4.Dataset(raw) as nc:
+        t64 = np.asarray(nc["ta"][:], dtype=np.float64)
+    settings = coarsen_settings(scales=tuple(parse_scales([4, 16])), patch_scales=())
+    outs = coarsen_case(canon, {"f4": tmp_path / "f4.zarr", "f16": tmp_path / "f16.zarr"}, settings)
+    for lab, f in (("f4", 4), ("f16", 16)):
+        ds = open_store(outs[lab])
+        # reference: numpy / scipy.stats on the float64 raw values (shifted by 290 K, which
+        # changes neither variance nor skewness, to spare scipy the cancellation)
+        mean, var, skew = _block_stats(t64 - 290.0, f)
+        mean = mean + 290.0
+        np.testing.assert_allclose(ds["T_mean"].values, mean, rtol=0, atol=1e-4)
+        np.testing.assert_allclose(ds["T_var"].values, var, rtol=0.02)
+        assert np.max(np.abs(ds["T_skew"].values - skew)) < 0.1  # the issue's criterion
+        # without the deviation field the stored float32 T is quantized (a float32 step is
+        # 3.05e-5 K at 290 K): most f = 4 blocks would have zero variance
+        if f == 4:
+            b = fine["T"].values.astype(np.float64)
+            _, var32, _ = _block_stats(b, 4)
+            assert np.mean(var32 == 0) > 0.5
+
+    # storage: the deviation field costs at most 1.3x the store without it
+    def size(p):
+        return sum(x.stat().st_size for x in p.rglob("*") if x.is_file())
+
+    extra = size(canon / "T_dev") + size(canon / "T_ref")
+    assert size(canon) / (size(canon) - extra) <= 1.3

@@ -44,6 +44,26 @@ DERIVED_3D = ("rh", "cloud_mask")
 """Fine-grid derived fields of the fused per-cell pass stored with dims (time, z, y, x)."""
 
 
+def _deviation(
+    values: np.ndarray,
+    *,
+    faces: np.ndarray,
+    z: np.ndarray,
+    quantity: Any,
+    fields: dict[str, np.ndarray],
+    dtype: np.dtype,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Deviation from the per-level horizontal mean (store dtype) and that mean (float64),
+    from canonical-axis values converted in float64 (destaggered and quantity-converted in
+    float64 here)."""
+    if values.shape[0] == faces.size:  # on z faces
+        values = destagger_vertical(np.ascontiguousarray(values), faces, z, axis=0)
+    if quantity.convert is not None:
+        values = np.asarray(quantity.convert(values, fields), dtype=np.float64)
+    ref = values.mean(axis=(1, 2))
+    return (values - ref[:, None, None]).astype(dtype), ref
+
+
 def mapped_names(vm: VariableMap) -> tuple[str, ...]:
     """The variable map's variables in catalogue order (``p`` first: others may need it)."""
     return tuple(v.name for v in catalogue.variables(kind="mapped") if v.name in vm.variables)
@@ -52,6 +72,94 @@ def mapped_names(vm: VariableMap) -> tuple[str, ...]:
 def fields_3d(vm: VariableMap) -> tuple[str, ...]:
     """Stored (time, z, y, x) fields of a case: mapped ones except ``p``, then derived."""
     return (*(n for n in mapped_names(vm) if n != "p"), *DERIVED_3D)
+
+
+def _first_step(
+    cat: ArchiveIndex,
+    keep: np.ndarray,
+    step_fields: Any,
+    clipped: _ClipLog,
+) -> tuple[dict[str, np.ndarray], frozenset[str], dict[str, list[int]]]:
+    """The first kept time's fields, the variables stored with a deviation field, and the
+    quantized levels found (:func:`quantized_levels`) per variable.
+
+    The first kept output time decides: a variable with quantized levels there gets
+    ``<v>_dev`` and ``<v>_ref`` for the whole run (a store's arrays are fixed when it is
+    created). Variables on horizontally staggered grids are only reported.
+    """
+    n_clipped = len(clipped.records)
+    first = step_fields(int(keep[0]), frozenset())
+    vm = cat.varmap
+    quantized: dict[str, list[int]] = {}
+    for name in mapped_names(vm):
+        if name == "p" or first[name].ndim != 3:
+            continue
+        levels = quantized_levels(first[name])
+        if levels.size:
+            quantized[name] = [int(k) for k in levels]
+    eligible = {
+        n
+        for n in quantized
+        if not any(a in ("y_face", "x_face") for a in vm.variables[n].axes(vm.dims))
+    }
+    for name, levels in quantized.items():
+        shown = ", ".join(str(k) for k in levels[:12]) + (" ..." if len(levels) > 12 else "")
+        remedy = (
+            f"stored also as {name}_dev (deviation from the level mean, computed before "
+            f"rounding) and {name}_ref, from which coarsening takes its sub-grid statistics"
+            if name in eligible
+            else "no remedy for a horizontally staggered field; its sub-grid statistics on "
+            "these levels describe the rounding"
+        )
+        log.warning(
+            "case %s: %s spans fewer than %d float32 steps on %d level(s) (indices %s) at "
+            "the first kept time; %s",
+            cat.case,
+            name,
+            QUANTUM_STEPS,
+            len(levels),
+            shown,
+            remedy,
+        )
+    deviations = frozenset(eligible)
+    if deviations:
+        del clipped.records[n_clipped:]
+        first = step_fields(int(keep[0]), deviations)
+    return first, deviations, quantized
+
+
+def _deviation_layout(
+    deviations: frozenset[str], nt: int, layout: dict[str, ArraySpec], dtype: np.dtype
+) -> dict[str, ArraySpec]:
+    """Arrays of the deviation fields: ``<v>_dev`` like ``<v>``, ``<v>_ref`` (time, z)."""
+    out: dict[str, ArraySpec] = {}
+    for name in sorted(deviations):
+        base = layout[name]
+        var = catalogue.get(name)
+        attrs = {
+            "long_name": f"{var.label} minus its horizontal mean on the level ({name}_ref), "
+            "computed in float64 before rounding",
+            "units": var.units,
+            "comment": f"{name} = {name}_ref + {name}_dev; kept because {name} is nearly "
+            "constant on some levels, where its float32 values are quantized",
+        }
+        if var.units == "K":
+            attrs["units_metadata"] = "temperature: difference"
+        out[f"{name}_dev"] = ArraySpec(
+            dims=base.dims, shape=base.shape, chunks=base.chunks, dtype=dtype, attrs=attrs
+        )
+        nz = base.shape[1]
+        out[f"{name}_ref"] = ArraySpec(
+            dims=("time", "z"),
+            shape=(nt, nz),
+            chunks=(1, nz),
+            dtype="float64",
+            attrs={
+                "long_name": f"horizontal mean of {var.label} on each level (float64)",
+                "units": var.units,
+            },
+        )
+    return out
 
 
 def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
@@ -152,6 +260,33 @@ class _ClipLog:
     case: str = ""
 
 
+QUANTUM_STEPS = 16
+"""A level whose values span fewer float32 steps than this is quantized (see
+:func:`quantized_levels`)."""
+
+
+def quantized_levels(values: np.ndarray) -> np.ndarray:
+    """Levels of a stored ``(z, y, x)`` field whose spread is within a few float32 steps.
+
+    A level is quantized when ``max - min < QUANTUM_STEPS * spacing(max |v|)`` in float32
+    and the level is not all zero: its sub-grid variance and skewness would then describe
+    the rounding, not the field (a float32 step is 3e-5 K at 290 K). Levels that are
+    exactly zero everywhere (clear air in ``qc``) are not quantized, they are zero.
+
+    Examples
+    --------
+    >>> a = np.full((2, 4, 4), 290.0, dtype=np.float32)
+    >>> a[1] += np.linspace(0, 1, 16, dtype=np.float32).reshape(4, 4)
+    >>> quantized_levels(a).tolist()
+    [0]
+    """
+    lo = values.min(axis=(1, 2)).astype(np.float64)
+    hi = values.max(axis=(1, 2)).astype(np.float64)
+    top = np.maximum(np.abs(lo), np.abs(hi))
+    step = np.spacing(top.astype(np.float32)).astype(np.float64)
+    return np.nonzero((hi - lo < QUANTUM_STEPS * step) & (top > 0))[0]
+
+
 def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.ndarray, list[str]]:
     """Drop time (already selected) and transpose to (z, y, x) order."""
     axes = tuple(a for a in axes if a != "time")
@@ -167,8 +302,14 @@ def canonical_step(
     settings: IngestSettings,
     conversions: _ConversionLog,
     clipped: _ClipLog,
+    deviations: frozenset[str] = frozenset(),
 ) -> dict[str, np.ndarray]:
     """Canonical fields of one output time, checked and derived, in the store dtype.
+
+    For each variable in ``deviations`` two more arrays come back: ``<v>_ref``, the
+    horizontal mean of every level computed in float64 before rounding, and ``<v>_dev``,
+    the float64 value minus that reference, rounded once to the store dtype: the sub-grid
+    spread of a near-constant field survives in it (:func:`quantized_levels`).
 
     Returns ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask`` (int8 0/1), ``lwp`` (y, x,
     float64) and ``p`` as (z, y, x) or, for a profile, (z,). Every value is computed in
@@ -207,6 +348,11 @@ def canonical_step(
         if raw_extent[0]:  # NaN/Inf (or fill values): report them where the raw file has them
             check_finite(raw, variable=spec.raw, dims=raw_dims, **where)
         raw_dtype = raw.dtype
+        if name in deviations:
+            v64, _ = _to_canonical_axes(conv.convert(raw, np.float64), axes)
+            out[f"{name}_dev"], out[f"{name}_ref"] = _deviation(
+                v64, faces=faces, z=z, quantity=quantity, fields=out, dtype=dtype
+            )
         values = conv.convert(raw, dtype, out=raw if reuse else None)  # in place if it can
         del raw
         # Rounding is monotonic, so the converted extremes are the converted raw extremes
@@ -443,24 +589,35 @@ def ingest_case(
     conversions = _ConversionLog()
     clipped = _ClipLog(case=case)
     dtype = np.dtype(settings.dtype)
+
+    def step_fields(ti: int, deviations: frozenset[str]) -> dict[str, np.ndarray]:
+        return canonical_step(
+            cat,
+            ti,
+            faces=faces,
+            settings=settings,
+            conversions=conversions,
+            clipped=clipped,
+            deviations=deviations,
+        )
+
+    first, deviations, quantized = _first_step(cat, keep, step_fields, clipped)
     layout = _layout(cat, keep, faces, settings, p_profile)
+    layout.update(_deviation_layout(deviations, keep.size, layout, dtype))
     out = Path(out)
     with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
         group = create_store(tmp, layout, codecs=compressors(settings.store))
         writer = TimeWriter(group)
         for j, ti in enumerate(keep):
-            fields = canonical_step(
-                cat,
-                int(ti),
-                faces=faces,
-                settings=settings,
-                conversions=conversions,
-                clipped=clipped,
-            )
+            fields = first if j == 0 else step_fields(int(ti), deviations)
+            first = {}
             step = {
                 n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
                 for n in (*fields_3d(vm), "lwp")
             }
+            for n in deviations:
+                step[f"{n}_dev"] = fields[f"{n}_dev"]
+                step[f"{n}_ref"] = fields[f"{n}_ref"]
             if not p_profile:
                 step["p"] = fields["p"].astype(dtype, copy=False)
             elif j == 0:
@@ -497,6 +654,8 @@ def ingest_case(
             warnings=cat.warnings,
             times_kept=int(keep.size),
             time_axis=None if cat.time_report is None else cat.time_report.to_dict(),
+            quantized_levels=quantized,
+            deviation_fields=sorted(deviations),
             restart_overlaps=cat.overlaps,
             negatives_clipped=clipped.records,
             time_origin=cat.origin,

@@ -48,7 +48,7 @@ from lesprep.scales.patches import patch_geometry
 from lesprep.scales.reader import FineReader
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
-from lesprep.scales.step import StepCoarsener
+from lesprep.scales.step import QUANTUM_STEPS_BLOCK, StepCoarsener
 from lesprep.store import (
     TimeWriter,
     atomic_path,
@@ -177,6 +177,23 @@ def coarsen_case(
                 fields = step.finish(reader.lwp(j))
                 for s in scales:
                     writers[s.label].add(j, fields.pop(s.label))
+            quantized = {
+                v: {"blocks": n, "of": step.blocks[v], "scale": scales[0].label}
+                for v, n in step.quantized.items()
+                if n
+            }
+            for v, q in quantized.items():
+                log.warning(
+                    "case %s: %d of %d blocks of %s at scale %s have a spread within %d "
+                    "float32 steps of their mean: their variance and skewness describe the "
+                    "rounding of the stored values, not the field",
+                    case,
+                    q["blocks"],
+                    q["of"],
+                    v,
+                    q["scale"],
+                    QUANTUM_STEPS_BLOCK,
+                )
         for w in writers.values():
             w.flush()
         for lab, tmp in tmps.items():
@@ -196,6 +213,7 @@ def coarsen_case(
                 canonical=str(canonical),
                 settings=settings.to_dict(),
                 skipped=skipped,
+                quantized_blocks=quantized,
                 **info,
                 config_sha256=None
                 if config_record is None

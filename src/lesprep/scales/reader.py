@@ -34,7 +34,11 @@ class FineReader:
         self.levels = int(levels or qc.chunks[1])
         p = self.group["p"]
         self.p_profile = np.asarray(p[...], dtype=np.float64) if p.ndim == 1 else None
-        self.names = slab_inputs(settings, p_is_3d=self.p_profile is None)
+        names = list(slab_inputs(settings, p_is_3d=self.p_profile is None))
+        for v in dict.fromkeys([*settings.moments, "qv", "T"]):
+            if f"{v}_dev" in self.group:  # a near-constant field's deviation and reference
+                names += [f"{v}_dev", f"{v}_ref"]
+        self.names = tuple(names)
         self.bounds = slab_bounds(self.nz, self.levels)
         self._io = ThreadPoolExecutor(max_workers=len(self.names))
         self._ahead = ThreadPoolExecutor(max_workers=1)
@@ -76,5 +80,3 @@ class FineReader:
 
     def __exit__(self, *exc: Any) -> None:
         self.close()
-
-

@@ -71,6 +71,11 @@ def slab_inputs(settings: CoarsenSettings, *, p_is_3d: bool) -> tuple[str, ...]:
     return tuple(n for n in dict.fromkeys(names) if n != "p" or p_is_3d)
 
 
+QUANTUM_STEPS_BLOCK = 4
+"""A block whose standard deviation is below this many float32 steps of its mean has a
+quantized spread (counted per variable at the finest factor of a job)."""
+
+
 def slab_bounds(nz: int, levels: int) -> list[tuple[int, int]]:
     """``(z0, z1)`` of consecutive slabs of at most ``levels`` levels covering ``nz``."""
     step = max(1, int(levels))
@@ -174,6 +179,8 @@ class StepCoarsener:
         self.p_profile = None if p_profile is None else np.asarray(p_profile, np.float64)
         self.factors = sorted({s.factor for s in self.scales})
         self.need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
+        self.quantized: dict[str, int] = {}
+        self.blocks: dict[str, int] = {}
 
     def begin(self) -> None:
         """Allocate the output arrays of a new time step."""
@@ -208,6 +215,15 @@ class StepCoarsener:
                 return ZPieces(shape, self.dtype, rows)
         return np.empty(shape, dtype=self.dtype)
 
+    def _count_quantized(self, v: str, var: np.ndarray, mean: np.ndarray) -> None:
+        """Count blocks whose spread is above zero but within a few float32 steps of
+        their mean: their variance and skewness describe rounding, not the field."""
+        step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)
+        var64 = np.asarray(var, dtype=np.float64)
+        noisy = (var64 > 0) & (var64 < (QUANTUM_STEPS_BLOCK * step) ** 2)
+        self.quantized[v] = self.quantized.get(v, 0) + int(np.count_nonzero(noisy))
+        self.blocks[v] = self.blocks.get(v, 0) + int(var64.size)
+
     def take_rows(self) -> list[tuple[str, int, dict[str, np.ndarray]]]:
         """Finished z-chunk rows of streamed outputs: ``(scale label, first level,
         {name: array})``, each given out once."""
@@ -221,7 +237,15 @@ class StepCoarsener:
         factors = self.factors
         k = int(np.shape(fine["qc"])[0])
         sl = slice(z0, z0 + k)
-        moments = {v: hierarchical_moments(fine[v], factors) for v in self.need}
+        # a near-constant field is coarsened from its deviation from the level mean
+        # (``<v>_dev``, ``<v>_ref``; see lesprep.canonical.ingest.quantized_levels)
+        refs = {
+            v: np.asarray(fine[f"{v}_ref"], np.float64) for v in self.need if f"{v}_ref" in fine
+        }
+        moments = {
+            v: hierarchical_moments(fine[f"{v}_dev"] if v in refs else fine[v], factors)
+            for v in self.need
+        }
         mask = np.asarray(fine["cloud_mask"])
         self.column |= np.any(mask, axis=0)
         cf = hierarchical_fractions(mask, factors)
@@ -229,15 +253,24 @@ class StepCoarsener:
         for s in self.scales:
             f = s.factor
             d = self.out[s.label]
+            means: dict[str, np.ndarray] = {}
             for v in self.need:
                 m = moments[v][f]
-                if v in st.moments:
+                if v in refs:
+                    means[v] = m.mean + refs[v][:, None, None]
+                    if v in st.moments:
+                        m.variance_and_skewness(out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]))
+                    d[f"{v}_mean"][sl] = means[v]
+                elif v in st.moments:
                     m.variance_and_skewness(
                         out=(d[f"{v}_var"][sl], d[f"{v}_skew"][sl]), mean_out=d[f"{v}_mean"][sl]
                     )
                 else:
                     d[f"{v}_mean"][sl] = m.mean
-            t_mean, qv_mean = moments["T"][f].mean, moments["qv"][f].mean
+                if v in st.moments and f == factors[0] and v not in refs:
+                    self._count_quantized(v, d[f"{v}_var"][sl], m.mean)
+            t_mean = means["T"] if "T" in means else moments["T"][f].mean
+            qv_mean = means["qv"] if "qv" in means else moments["qv"][f].mean
             if p_means is not None:
                 p3 = p_means[f]
             else:  # a 1-D profile: the same at every coarse cell of a level
@@ -329,5 +362,3 @@ def coarse_fields(
         slab = {v: np.asarray(fine[v])[z0:z1] for v in slab_inputs(settings, p_is_3d=p.ndim == 3)}
         step.add_slab(z0, slab)
     return step.finish(np.asarray(fine["lwp"]))
-
-

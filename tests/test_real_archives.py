@@ -247,12 +247,15 @@ def test_near_constant_field_keeps_its_subgrid_statistics(tmp_path, caplog):
         mean = mean + 290.0
         np.testing.assert_allclose(ds["T_mean"].values, mean, rtol=0, atol=1e-4)
         np.testing.assert_allclose(ds["T_var"].values, var, rtol=0.02)
-        assert np.max(np.abs(ds["T_skew"].values - skew)) < 0.1  # the criterion
+        err = float(np.max(np.abs(ds["T_skew"].values - skew)))
+        print(f"f = {f}: largest skewness error {err:.3g}")
+        assert err < 0.1  # within 0.1 of the float64 value
         # without the deviation field the stored float32 T is quantized (a float32 step is
         # 3.05e-5 K at 290 K): most f = 4 blocks would have zero variance
         if f == 4:
             b = fine["T"].values.astype(np.float64)
-            _, var32, _ = _block_stats(b, 4)
+            nt, nz, ny, nx = b.shape
+            var32 = b.reshape(nt, nz, ny // 4, 4, nx // 4, 4).var(axis=(3, 5))
             assert np.mean(var32 == 0) > 0.5
 
     # storage: the deviation field costs at most 1.3x the store without it
@@ -260,4 +263,6 @@ def test_near_constant_field_keeps_its_subgrid_statistics(tmp_path, caplog):
         return sum(x.stat().st_size for x in p.rglob("*") if x.is_file())
 
     extra = size(canon / "T_dev") + size(canon / "T_ref")
-    assert size(canon) / (size(canon) - extra) <= 1.3
+    ratio = size(canon) / (size(canon) - extra)
+    print(f"canonical store with T_dev and T_ref / without: {ratio:.3f}")
+    assert ratio <= 1.3

@@ -24,6 +24,7 @@ import pandas as pd
 
 from lesprep.errors import ConfigError, GridError, InputError, TimeAxisError, UnitError
 from lesprep.raw.checks import value_extent
+from lesprep.raw.chunks import chunk_layout, read_chunked
 from lesprep.raw.timeaxis import (
     DuplicateResolver,
     TimeAxisReport,
@@ -52,11 +53,28 @@ def resolve_files(pattern: str, *, case: str) -> list[Path]:
 class RawVariable:
     """One variable of a raw file: dims, attributes and values (read on demand)."""
 
-    def __init__(self, var: netCDF4.Variable) -> None:
+    def __init__(self, var: netCDF4.Variable, path: str | None = None) -> None:
         self._var = var
+        self._path = path
         self.dims: tuple[str, ...] = tuple(var.dimensions)
         self.attrs: dict[str, Any] = {k: var.getncattr(k) for k in var.ncattrs()}
         self.shape: tuple[int, ...] = tuple(var.shape)
+
+    def _threaded(self, index: dict[str, int] | None) -> np.ndarray | None:
+        """Values through :mod:`lesprep.raw.chunks` when the variable is deflate-compressed
+        and the selection is the whole variable or one index of its first dimension."""
+        if self._path is None or not self.dims:
+            return None
+        filters = self._var.filters() or {}
+        if not filters.get("zlib") or filters.get("fletcher32"):
+            return None
+        sel = index or {}
+        if any(d != self.dims[0] for d in sel):
+            return None
+        layout = chunk_layout(self._path, self._var.name)
+        if layout is None:
+            return None
+        return read_chunked(self._path, layout, lead=sel.get(self.dims[0]))
 
     def read(self, index: dict[str, int] | None = None, *, native: bool = False) -> np.ndarray:
         """Values with scale/offset applied and invalid values as NaN, optionally with one
@@ -93,12 +111,14 @@ class RawVariable:
         if self._packed():
             values = self.read(index)
             return values, value_extent(values)
-        sel = self._selection(index)
-        self._var.set_auto_maskandscale(False)
-        try:
-            values = np.asarray(self._var[sel] if sel else self._var[...])
-        finally:
-            self._var.set_auto_maskandscale(True)
+        values = self._threaded(index)
+        if values is None:
+            sel = self._selection(index)
+            self._var.set_auto_maskandscale(False)
+            try:
+                values = np.asarray(self._var[sel] if sel else self._var[...])
+            finally:
+                self._var.set_auto_maskandscale(True)
         return self._checked(values)
 
     def _checked(self, values: np.ndarray) -> tuple[np.ndarray, tuple[int, float, float]]:
@@ -145,7 +165,8 @@ class RawFile:
 
     def __init__(self, nc: netCDF4.Dataset) -> None:
         self._nc = nc
-        self.variables = {str(k): RawVariable(v) for k, v in nc.variables.items()}
+        path = nc.filepath() if nc.file_format.startswith("NETCDF4") else None
+        self.variables = {str(k): RawVariable(v, path) for k, v in nc.variables.items()}
         self.attrs: dict[str, Any] = {k: nc.getncattr(k) for k in nc.ncattrs()}
 
     def close(self) -> None:

@@ -25,6 +25,8 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from lesprep._jit import HAVE_NUMBA, njit
+
 _SHUFFLE, _DEFLATE = 2, 1  # HDF5 filter ids (H5Z_FILTER_SHUFFLE, H5Z_FILTER_DEFLATE)
 THREADS = max(1, min(4, os.cpu_count() or 1))
 """Threads that inflate chunks."""
@@ -55,32 +57,79 @@ class ChunkLayout:
 
 
 def chunk_layout(path: str | Path, variable: str) -> ChunkLayout | None:
-    """The chunk table of a deflate-compressed variable, or None (not that pipeline)."""
+    """The chunk table of a deflate-compressed variable, or None (not that pipeline).
+
+    The tables of every variable of a file are read in one pass and kept while the file's
+    size and modification time stay the same.
+    """
+    st = os.stat(path)
+    return _file_layouts(str(path), st.st_size, st.st_mtime_ns).get(variable)
+
+
+@lru_cache(maxsize=16)
+def _file_layouts(path: str, size: int, mtime_ns: int) -> dict[str, ChunkLayout | None]:
+    out: dict[str, ChunkLayout | None] = {}
     try:
         with h5py.File(path, "r") as f:
-            ds = f[variable]
-            if ds.chunks is None or ds.compression != "gzip":
-                return None
-            plist = ds.id.get_create_plist()
-            filters = [plist.get_filter(i)[0] for i in range(plist.get_nfilters())]
-            if filters not in ([_DEFLATE], [_SHUFFLE, _DEFLATE]):
-                return None
-            table = []
-            for i in range(ds.id.get_num_chunks()):
-                info = ds.id.get_chunk_info(i)
-                if info.filter_mask != 0:
-                    return None
-                table.append(_Chunk(tuple(info.chunk_offset), info.byte_offset, info.size))
-            return ChunkLayout(
-                shape=tuple(ds.shape),
-                chunks=tuple(ds.chunks),
-                dtype=ds.dtype,
-                shuffle=filters[0] == _SHUFFLE,
-                table=tuple(table),
-                fill=float(ds.fillvalue),
-            )
-    except (OSError, KeyError, ValueError, TypeError):
+            for name, ds in f.items():
+                if isinstance(ds, h5py.Dataset):
+                    out[name] = _layout_of(ds)
+    except (OSError, ValueError, TypeError):
+        pass
+    return out
+
+
+def _layout_of(ds: h5py.Dataset) -> ChunkLayout | None:
+    """The chunk table of one dataset, or None when it is not deflate (+ shuffle)."""
+    if ds.chunks is None or ds.compression != "gzip":
         return None
+    plist = ds.id.get_create_plist()
+    filters = [plist.get_filter(i)[0] for i in range(plist.get_nfilters())]
+    if filters not in ([_DEFLATE], [_SHUFFLE, _DEFLATE]):
+        return None
+    table = []
+    for i in range(ds.id.get_num_chunks()):
+        info = ds.id.get_chunk_info(i)
+        if info.filter_mask != 0:
+            return None
+        table.append(_Chunk(tuple(info.chunk_offset), info.byte_offset, info.size))
+    return ChunkLayout(
+        shape=tuple(ds.shape),
+        chunks=tuple(ds.chunks),
+        dtype=ds.dtype,
+        shuffle=filters[0] == _SHUFFLE,
+        table=tuple(table),
+        fill=float(ds.fillvalue),
+    )
+
+
+def unshuffle(raw: np.ndarray, item: int) -> np.ndarray:
+    """Undo HDF5's byte shuffle: byte ``b`` of element ``i`` is at ``b * n + i``.
+
+    Compiled (releasing the GIL, so chunks unshuffle in parallel) where numba is present;
+    the numpy transpose gives the same bytes.
+
+    Examples
+    --------
+    >>> unshuffle(np.array([1, 3, 2, 4], dtype=np.uint8), 2).tolist()
+    [1, 2, 3, 4]
+    """
+    if HAVE_NUMBA:
+        out = np.empty_like(raw)
+        _nb_unshuffle(raw, item, out)
+        return out
+    return raw.reshape(item, -1).T.copy().reshape(-1)
+
+
+if HAVE_NUMBA:
+
+    @njit(nogil=True, cache=True)
+    def _nb_unshuffle(src, item, out):  # pragma: no cover - compiled
+        n = src.size // item
+        for b in range(item):
+            base = b * n
+            for i in range(n):
+                out[i * item + b] = src[base + i]
 
 
 def _inflate(fd: int, c: _Chunk, layout: ChunkLayout) -> np.ndarray:
@@ -88,7 +137,7 @@ def _inflate(fd: int, c: _Chunk, layout: ChunkLayout) -> np.ndarray:
     item = layout.dtype.itemsize
     raw = np.frombuffer(data, dtype=np.uint8)
     if layout.shuffle and item > 1:
-        raw = raw.reshape(item, -1).T.copy()
+        raw = unshuffle(raw, item)
     return raw.view(layout.dtype).reshape(layout.chunks)
 
 

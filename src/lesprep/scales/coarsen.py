@@ -32,6 +32,7 @@ Arithmetic is float64; stored values are float32 unless the config says otherwis
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
@@ -57,6 +58,8 @@ from lesprep.store import (
     create_store,
     open_store,
 )
+
+log = logging.getLogger(__name__)
 
 WRITE_BUFFER_BYTES = 256 * 2**20
 """Time steps buffered for writing, over all scales of a job (one large step is never

@@ -22,7 +22,6 @@ THRESHOLD = "1e-5 kg/kg"
 PATCH_LENGTHS_M = (1600.0, 6400.0)
 PATCH_SIZE = 16
 CANON_READ = ("qc", "qv", "T", "w", "rh", "cloud_mask", "lwp", "p")  # what coarsening reads
-RAW_VARS = ("liq", "vap", "tempc", "pres", "wf")
 TARGETS = {
     "xarray_speedup": 20.0,  # xarray script time / lesprep time >= this
     "coarsen_floor": 1.5,  # lesprep coarsen time / I/O floor time <= this

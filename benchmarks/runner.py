@@ -197,8 +197,8 @@ def code_identity() -> dict[str, Any]:
 
     digest = hashlib.sha256()
     src = ROOT / "src" / "lesprep"
-    for f in sorted(src.glob("*.py")):
-        digest.update(f.name.encode() + b"\0" + f.read_bytes())
+    for f in sorted(src.rglob("*.py")):  # every module, subpackages included
+        digest.update(f.relative_to(src).as_posix().encode() + b"\0" + f.read_bytes())
     out: dict[str, Any] = {"src_sha256": digest.hexdigest()}
     with contextlib.suppress(Exception):
         out["git_head"] = subprocess.run(

@@ -266,3 +266,30 @@ def test_near_constant_field_keeps_its_subgrid_statistics(tmp_path, caplog):
     ratio = size(canon) / (size(canon) - extra)
     print(f"canonical store with T_dev and T_ref / without: {ratio:.3f}")
     assert ratio <= 1.3
+
+
+def test_quiet_blocks_after_the_first_time_are_counted(tmp_path, caplog):
+    # the first kept time is turbulent (no deviation field), the second is quiet: its
+    # T blocks are counted and reported by coarsening instead
+    from lesprep.scales.coarsen import coarsen_case
+    from lesprep.scales.spec import parse_scales
+    from settings_helpers import coarsen_settings
+
+    raw = _quiet_archive(tmp_path / "quiet.nc", np.random.default_rng(5))
+    with netCDF4.Dataset(raw, "a") as nc:
+        nc["ta"][0] = 290.0 + np.random.default_rng(6).normal(0, 0.1, nc["ta"].shape[1:])
+    vm = tmp_path / "quiet.yaml"
+    vm.write_text(QUIET_MAP)
+    canon = ingest_case(
+        case="quiet-2",
+        raw=[raw],
+        varmap=vm,
+        settings=ingest_settings(spinup="0 s"),
+        out=tmp_path / "canonical.zarr",
+    )
+    assert "T_dev" not in open_store(canon)
+    settings = coarsen_settings(scales=tuple(parse_scales([4])), patch_scales=())
+    out = coarsen_case(canon, {"f4": tmp_path / "f4.zarr"}, settings)["f4"]
+    q = _step(out)["quantized_blocks"]
+    assert q["T"]["of"] == 2 * 3 * 8 * 8 and 0 < q["T"]["blocks"] <= 3 * 8 * 8
+    assert "blocks of T at scale f4" in caplog.text

@@ -216,11 +216,13 @@ class StepCoarsener:
         return np.empty(shape, dtype=self.dtype)
 
     def _count_quantized(self, v: str, var: np.ndarray, mean: np.ndarray) -> None:
-        """Count blocks whose spread is above zero but within a few float32 steps of
-        their mean: their variance and skewness describe rounding, not the field."""
+        """Count blocks of a non-zero mean whose spread is within a few float32 steps of
+        that mean (zero included: values that all rounded to one float32 number): their
+        variance and skewness describe rounding, not the field. Blocks of mean zero (clear
+        air in ``qc``) are not counted."""
         step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)
         var64 = np.asarray(var, dtype=np.float64)
-        noisy = (var64 > 0) & (var64 < (QUANTUM_STEPS_BLOCK * step) ** 2)
+        noisy = (np.asarray(mean) != 0) & (var64 < (QUANTUM_STEPS_BLOCK * step) ** 2)
         self.quantized[v] = self.quantized.get(v, 0) + int(np.count_nonzero(noisy))
         self.blocks[v] = self.blocks.get(v, 0) + int(var64.size)
 

@@ -1,1 +1,1 @@
-"""jobs"""
+"""Workflow glue: the settings parsed once, one entry point per rule, and job sizing."""

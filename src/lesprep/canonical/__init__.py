@@ -1,1 +1,3 @@
-"""Canonical fine fields: the ingest of one case's raw archive into its canonical store, with the fused per-cell diagnostics (rh, cloud mask, liquid water path)."""
+"""Canonical fine fields: the ingest of one case's raw archive into its canonical store,
+with the fused per-cell diagnostics (rh, cloud mask, liquid water path).
+"""

@@ -1,1 +1,2 @@
-"""Workflow glue: the settings parsed once, one entry point per rule, and job sizing."""
+"""Workflow glue: the settings parsed once, one entry point per rule, and job sizing.
+"""

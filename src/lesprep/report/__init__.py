@@ -1,1 +1,3 @@
-"""The report: figures, scene and baseline tables, and the skill of the baseline cloud fraction."""
+"""The report: figures, scene and baseline tables, and the skill of the baseline cloud
+fraction.
+"""

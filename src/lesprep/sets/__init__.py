@@ -1,1 +1,3 @@
-"""Sample sets: whole-case splits, training stores per split and scale, and the train-only normalization."""
+"""Sample sets: whole-case splits, training stores per split and scale, and the train-only
+normalization.
+"""

@@ -206,6 +206,18 @@ def _quiet_archive(path, rng, *, nt=2, nz=3, n=32, sigma=2e-6):
     return path
 
 
+def _ingest_quiet(raw, tmp_path):
+    vm = tmp_path / "quiet.yaml"
+    vm.write_text(QUIET_MAP)
+    return ingest_case(
+        case="quiet",
+        raw=[raw],
+        varmap=vm,
+        settings=ingest_settings(spinup="0 s"),
+        out=tmp_path / "canonical.zarr",
+    )
+
+
 def _block_stats(x, f):
     nt, nz, ny, nx = x.shape
     b = x.reshape(nt, nz, ny // f, f, nx // f, f).transpose(0, 1, 2, 4, 3, 5)
@@ -220,17 +232,8 @@ def test_near_constant_field_keeps_its_subgrid_statistics(tmp_path, caplog):
     from lesprep.scales.spec import parse_scales
     from settings_helpers import coarsen_settings
 
-    rng = np.random.default_rng(11)
-    raw = _quiet_archive(tmp_path / "quiet.nc", rng)
-    vm = tmp_path / "quiet.yaml"
-    vm.write_text(QUIET_MAP)
-    canon = ingest_case(
-        case="quiet-1",
-        raw=[raw],
-        varmap=vm,
-        settings=ingest_settings(spinup="0 s"),
-        out=tmp_path / "canonical.zarr",
-    )
+    raw = _quiet_archive(tmp_path / "quiet.nc", np.random.default_rng(11))
+    canon = _ingest_quiet(raw, tmp_path)
     assert "T spans fewer than 16 float32 steps on 3 level(s)" in caplog.text
     fine = open_store(canon)
     assert fine["T"].attrs["units"] == "K" and float(fine["T"].mean()) == pytest.approx(290.0)
@@ -278,15 +281,7 @@ def test_quiet_blocks_after_the_first_time_are_counted(tmp_path, caplog):
     raw = _quiet_archive(tmp_path / "quiet.nc", np.random.default_rng(5))
     with netCDF4.Dataset(raw, "a") as nc:
         nc["ta"][0] = 290.0 + np.random.default_rng(6).normal(0, 0.1, nc["ta"].shape[1:])
-    vm = tmp_path / "quiet.yaml"
-    vm.write_text(QUIET_MAP)
-    canon = ingest_case(
-        case="quiet-2",
-        raw=[raw],
-        varmap=vm,
-        settings=ingest_settings(spinup="0 s"),
-        out=tmp_path / "canonical.zarr",
-    )
+    canon = _ingest_quiet(raw, tmp_path)
     assert "T_dev" not in open_store(canon)
     settings = coarsen_settings(scales=tuple(parse_scales([4])), patch_scales=())
     out = coarsen_case(canon, {"f4": tmp_path / "f4.zarr"}, settings)["f4"]

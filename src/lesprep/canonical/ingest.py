@@ -10,6 +10,7 @@ renamed into place when complete.
 from __future__ import annotations
 
 import logging
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -160,6 +161,25 @@ def _deviation_layout(
             },
         )
     return out
+
+
+def warm_kernels(dtype: np.dtype) -> None:
+    """Load the compiled kernels the ingest calls (from numba's cache) on tiny arrays.
+
+    The first call of a compiled kernel in a process costs a few tenths of a second
+    (numba's target set-up and the cache load); :func:`ingest_case` runs this on a
+    background thread while it indexes the archive, so a small case does not pay it on
+    its first time step.
+    """
+    a = np.ones((2, 4, 4), dtype=np.float32)
+    conv = Conversion(
+        variable="T", raw_variable="t", from_units="degC", to_units="K", factor=1.0, offset=1.0
+    )
+    conv.convert(a, dtype)
+    destagger_vertical(
+        np.ones((3, 4, 4), np.float32), np.arange(3.0), np.arange(2.0) + 0.5, dtype=dtype
+    )
+    cell_diagnostics(a * 9e4, a * 280.0, a * 1e-3, a * 1e-4, np.ones(2), 1e-5, dtype=dtype)
 
 
 def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
@@ -567,6 +587,10 @@ def ingest_case(
         Any problem with the archive; nothing is left at ``out``.
     """
     retain_freed_memory()
+    warming = threading.Thread(
+        target=warm_kernels, args=(np.dtype(settings.dtype),), name="lesprep-warm", daemon=True
+    )
+    warming.start()
     vm = varmap if isinstance(varmap, VariableMap) else load_varmap(varmap)
     files = resolve_files(raw, case=case) if isinstance(raw, str) else [Path(f) for f in raw]
     cat = index_archive(

@@ -601,115 +601,122 @@ def ingest_case(
         duplicate_times=settings.duplicate_times,
         restart_order=settings.restart_order,
     )
-    for note in cat.warnings:
-        log.warning("%s", note)
-    dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
-    faces = vertical_faces(
-        cat.grid.z, z_face=cat.grid.z_face, z_bounds=cat.grid.z_bounds, case=case
-    )
-    keep = kept_times(cat.times, settings.spinup_s, case=case)
-    dropped = [float(t) for t in np.delete(cat.times, keep)]
-    p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
-    conversions = _ConversionLog()
-    clipped = _ClipLog(case=case)
-    dtype = np.dtype(settings.dtype)
+    try:
+        for note in cat.warnings:
+            log.warning("%s", note)
+        dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
+        faces = vertical_faces(
+            cat.grid.z, z_face=cat.grid.z_face, z_bounds=cat.grid.z_bounds, case=case
+        )
+        keep = kept_times(cat.times, settings.spinup_s, case=case)
+        dropped = [float(t) for t in np.delete(cat.times, keep)]
+        p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
+        conversions = _ConversionLog()
+        clipped = _ClipLog(case=case)
+        dtype = np.dtype(settings.dtype)
 
-    def step_fields(ti: int, deviations: frozenset[str]) -> dict[str, np.ndarray]:
-        return canonical_step(
-            cat,
-            ti,
-            faces=faces,
-            settings=settings,
-            conversions=conversions,
-            clipped=clipped,
-            deviations=deviations,
-        )
+        def step_fields(ti: int, deviations: frozenset[str]) -> dict[str, np.ndarray]:
+            return canonical_step(
+                cat,
+                ti,
+                faces=faces,
+                settings=settings,
+                conversions=conversions,
+                clipped=clipped,
+                deviations=deviations,
+            )
 
-    first, deviations, quantized = _first_step(cat, keep, step_fields, clipped)
-    layout = _layout(cat, keep, faces, settings, p_profile)
-    layout.update(_deviation_layout(deviations, keep.size, layout, dtype))
-    out = Path(out)
-    with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
-        group = create_store(tmp, layout, codecs=compressors(settings.store))
-        writer = TimeWriter(group)
-        for j, ti in enumerate(keep):
-            fields = first if j == 0 else step_fields(int(ti), deviations)
-            first = {}
-            step = {
-                n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
-                for n in (*fields_3d(vm), "lwp")
-            }
-            for n in deviations:
-                step[f"{n}_dev"] = fields[f"{n}_dev"]
-                step[f"{n}_ref"] = fields[f"{n}_ref"]
-            if not p_profile:
-                step["p"] = fields["p"].astype(dtype, copy=False)
-            elif j == 0:
-                group["p"][:] = fields["p"].astype(dtype)
-            del fields
-            writer.add(j, step)
-            del step
-        writer.flush()
-        raw_records = hashes.result()
-        conv_records = conversions.records()
-        for name, spec in vm.variables.items():
-            operation = catalogue.get(name).quantities[spec.quantity].description
-            if operation:
-                conv_records.append(
-                    {"variable": name, "raw_variable": spec.raw, "operation": operation}
-                )
-            if spec.staggered(vm.dims):
-                conv_records.append(
-                    {
-                        "variable": name,
-                        "raw_variable": spec.raw,
-                        "operation": "interpolated linearly in height from cell "
-                        "faces to cell centres",
-                    }
-                )
-        step = provenance.new_step(
-            "ingest",
-            case=case,
-            regime=regime,
-            raw_files=raw_records,
-            variable_map=vm.to_dict(),
-            conversions=conv_records,
-            times_dropped_s=dropped,
-            warnings=cat.warnings,
-            times_kept=int(keep.size),
-            time_axis=None if cat.time_report is None else cat.time_report.to_dict(),
-            quantized_levels=quantized,
-            deviation_fields=sorted(deviations),
-            restart_overlaps=cat.overlaps,
-            negatives_clipped=clipped.records,
-            time_origin=cat.origin,
-            settings=settings.to_dict(),
-            saturation_formula=thermo.SATURATION_FORMULA,
-            config_sha256=None if config_record is None else provenance.config_sha(config_record),
-            config=config_record,
+        first, deviations, quantized = _first_step(cat, keep, step_fields, clipped)
+        layout = _layout(cat, keep, faces, settings, p_profile)
+        layout.update(_deviation_layout(deviations, keep.size, layout, dtype))
+        out = Path(out)
+        with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
+            group = create_store(tmp, layout, codecs=compressors(settings.store))
+            writer = TimeWriter(group)
+            for j, ti in enumerate(keep):
+                fields = first if j == 0 else step_fields(int(ti), deviations)
+                first = {}
+                step = {
+                    n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
+                    for n in (*fields_3d(vm), "lwp")
+                }
+                for n in deviations:
+                    step[f"{n}_dev"] = fields[f"{n}_dev"]
+                    step[f"{n}_ref"] = fields[f"{n}_ref"]
+                if not p_profile:
+                    step["p"] = fields["p"].astype(dtype, copy=False)
+                elif j == 0:
+                    group["p"][:] = fields["p"].astype(dtype)
+                del fields
+                writer.add(j, step)
+                del step
+            writer.flush()
+            raw_records = hashes.result()
+            conv_records = conversions.records()
+            for name, spec in vm.variables.items():
+                operation = catalogue.get(name).quantities[spec.quantity].description
+                if operation:
+                    conv_records.append(
+                        {"variable": name, "raw_variable": spec.raw, "operation": operation}
+                    )
+                if spec.staggered(vm.dims):
+                    conv_records.append(
+                        {
+                            "variable": name,
+                            "raw_variable": spec.raw,
+                            "operation": "interpolated linearly in height from cell "
+                            "faces to cell centres",
+                        }
+                    )
+            step = provenance.new_step(
+                "ingest",
+                case=case,
+                regime=regime,
+                raw_files=raw_records,
+                variable_map=vm.to_dict(),
+                conversions=conv_records,
+                times_dropped_s=dropped,
+                warnings=cat.warnings,
+                times_kept=int(keep.size),
+                time_axis=None if cat.time_report is None else cat.time_report.to_dict(),
+                quantized_levels=quantized,
+                deviation_fields=sorted(deviations),
+                restart_overlaps=cat.overlaps,
+                negatives_clipped=clipped.records,
+                time_origin=cat.origin,
+                settings=settings.to_dict(),
+                saturation_formula=thermo.SATURATION_FORMULA,
+                config_sha256=None
+                if config_record is None
+                else provenance.config_sha(config_record),
+                config=config_record,
+            )
+            attrs = provenance.extend(
+                {
+                    "Conventions": "CF-1.12, ACDD-1.3",
+                    "title": f"lesprep canonical fields of case {case}",
+                    "summary": "Fine-grid LES fields in canonical names, units and grid, spin-up "
+                    "removed, with derived relative humidity, cloud mask and liquid water path.",
+                    "source": cat.attrs.get("source", "unknown LES output"),
+                    "references": "Bolton (1980), Mon. Wea. Rev. 108, 1046-1053 (saturation "
+                    "vapour pressure)",
+                    "case": case,
+                    "regime": regime,
+                    "dx": dx,
+                    "dy": dx,
+                    "cloud_threshold": settings.threshold,
+                    "spinup_s": settings.spinup_s,
+                    "time_origin": cat.origin,
+                },
+                step,
+                f"ingested {len(files)} raw file(s) of case {case}; kept {keep.size} of "
+                f"{cat.times.size} output times",
+            )
+            group.attrs.update(attrs)
+            consolidate(tmp)
+        log.info(
+            "case %s: wrote %s (%d times kept, %d dropped)", case, out, keep.size, len(dropped)
         )
-        attrs = provenance.extend(
-            {
-                "Conventions": "CF-1.12, ACDD-1.3",
-                "title": f"lesprep canonical fields of case {case}",
-                "summary": "Fine-grid LES fields in canonical names, units and grid, spin-up "
-                "removed, with derived relative humidity, cloud mask and liquid water path.",
-                "source": cat.attrs.get("source", "unknown LES output"),
-                "references": "Bolton (1980), Mon. Wea. Rev. 108, 1046-1053 (saturation "
-                "vapour pressure)",
-                "case": case,
-                "regime": regime,
-                "dx": dx,
-                "dy": dx,
-                "cloud_threshold": settings.threshold,
-                "spinup_s": settings.spinup_s,
-                "time_origin": cat.origin,
-            },
-            step,
-            f"ingested {len(files)} raw file(s) of case {case}; kept {keep.size} of "
-            f"{cat.times.size} output times",
-        )
-        group.attrs.update(attrs)
-        consolidate(tmp)
-    log.info("case %s: wrote %s (%d times kept, %d dropped)", case, out, keep.size, len(dropped))
+    finally:
+        cat.close()
     return out

@@ -314,6 +314,23 @@ class ArchiveIndex:
     warnings: list[str] = field(default_factory=list)
     time_report: TimeAxisReport | None = None
     overlaps: list[dict[str, Any]] = field(default_factory=list)
+    _open: tuple[Path, RawFile] | None = field(default=None, repr=False)
+
+    def raw_file(self, path: Path) -> RawFile:
+        """The raw file ``path``, opened read-only; the last one opened stays open, so the
+        variables of one file at one time cost one open."""
+        if self._open is not None and self._open[0] == path:
+            return self._open[1]
+        self.close()
+        ds = open_raw(path, case=self.case)
+        self._open = (path, ds)
+        return ds
+
+    def close(self) -> None:
+        """Close the raw file kept open by :meth:`raw_file`."""
+        if self._open is not None:
+            self._open[1].close()
+            self._open = None
 
 
 def _coord_values(
@@ -629,14 +646,13 @@ def read_field(
     locs = cat.where[name]
     fi, k = locs[0] if len(locs) == 1 and locs[0][1] == -1 else locs[time_index]
     path = cat.files[fi]
-    ds = open_raw(path, case=cat.case)
+    ds = cat.raw_file(path)
     try:
         var = ds.variables[spec.raw]
         time_dim = cat.varmap.raw_dim("time")
         values, extent = var.read_with_extent({time_dim: k} if k >= 0 else None)
         units = var.attrs.get("units")
     except Exception as exc:
+        cat.close()
         raise incomplete_file_error(path, exc, case=cat.case, variable=spec.raw) from None
-    finally:
-        ds.close()
     return values, str(path), units, extent

@@ -124,15 +124,6 @@ class Variable:
         attrs.update(self.extra_attrs)
         return attrs
 
-    def target_units(self, quantity: str) -> str:
-        """Units a raw field of ``quantity`` is converted to (ConfigError if not allowed)."""
-        if quantity not in self.quantities:
-            raise ConfigError(
-                f"variable {self.name!r} cannot be given as quantity {quantity!r}; "
-                f"allowed: {sorted(self.quantities)}"
-            )
-        return self.quantities[quantity].units
-
 
 _TOKEN = re.compile(r"^([A-Za-z]+)(-?\d+)?$")
 
@@ -224,8 +215,7 @@ BUILTIN: tuple[Variable, ...] = (
                 units="K",
                 convert=_theta_to_t,
                 needs=("p",),
-                description="T = theta * (p / 1000 hPa) ** (Rd/cp), "
-                f"Rd/cp = {thermo.KAPPA:.6f}",
+                description=f"T = theta * (p / 1000 hPa) ** (Rd/cp), Rd/cp = {thermo.KAPPA:.6f}",
             ),
         },
         plausible=(150.0, 340.0),

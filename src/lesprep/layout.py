@@ -29,7 +29,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 SPLITS = ("train", "validation", "test")
-"""Split names, in the order they are listed."""
+"""Split names, in the order they are listed (and of the hash intervals of
+:mod:`lesprep.sets.splits`)."""
 
 CASE_FIGURES = ("timeseries", "profiles", "lwp_map")
 """Figures drawn for every case."""

@@ -103,9 +103,7 @@ from types import MappingProxyType
 from typing import Any, Literal, get_args
 
 from lesprep.errors import ConfigError, InputError
-
-SPLITS: tuple[str, ...] = ("train", "validation", "test")
-"""Split names in the fixed order of the cumulative hash intervals."""
+from lesprep.layout import SPLITS  # split names, in the order of the cumulative hash intervals
 
 _Reason = Literal["pinned", "hash", "stratified"]
 _REASONS: tuple[str, ...] = get_args(_Reason)

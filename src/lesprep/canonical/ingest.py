@@ -239,6 +239,7 @@ class _ConversionLog:
 class _ClipLog:
     """Negative values within the tolerance that were set to zero, per variable and time."""
 
+    case: str = ""
     records: list[dict[str, Any]] = field(default_factory=list)
 
     def clip(
@@ -276,8 +277,6 @@ class _ClipLog:
                 rec["tolerance"],
                 rec["mass_kg_m2"],
             )
-
-    case: str = ""
 
 
 QUANTUM_STEPS = 16

@@ -1,6 +1,8 @@
 """Keep freed memory in the process for reuse (glibc only).
 
-Every stage allocates the same large float64 working arrays again for each output time.
+Coarsening and set assembly call it (ingest does not: see
+:func:`lesprep.canonical.ingest.ingest_case`). They allocate the same large float64
+working arrays again for each output time.
 By default glibc hands blocks above 32 MiB straight back to the operating system, so
 each time step pays for fresh pages again (on virtual machines that back memory lazily
 this costs more than the arithmetic). Disabling mmap for large blocks and trimming of

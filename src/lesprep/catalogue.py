@@ -14,6 +14,9 @@ An entry (:class:`Variable`) says everything the stages need to know about a var
 * for a quantity that cannot be negative, how far below zero raw values may go before the
   archive is refused (``negative_tolerance``; values in between are numerics of advection
   schemes that are not positive-definite, set to zero and recorded);
+* whether it is a water species (``water``: its mass counts in total water and in the
+  exact conversion between mass fractions and mixing ratios) and whether it is
+  precipitating (``precipitating``: rain, kept out of total water ``qt``);
 * for a derived variable, the variables it is computed from and its formula;
 * whether it may get sub-grid moments and fine patches at coarse scales.
 
@@ -98,6 +101,8 @@ class Variable:
     moments: bool = True
     patches: bool = True
     required: bool = False
+    water: bool = False
+    precipitating: bool = False
     extra_attrs: Mapping[str, str] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -184,6 +189,7 @@ BUILTIN: tuple[Variable, ...] = (
         plausible=(0.0, 0.02),
         negative_tolerance=1e-6,
         required=True,
+        water=True,
     ),
     Variable(
         name="qv",
@@ -202,6 +208,7 @@ BUILTIN: tuple[Variable, ...] = (
         plausible=(0.0, 0.05),
         negative_tolerance=1e-6,
         required=True,
+        water=True,
     ),
     Variable(
         name="T",
@@ -229,6 +236,47 @@ BUILTIN: tuple[Variable, ...] = (
         label="vertical velocity",
         plausible=(-60.0, 60.0),
         required=True,
+    ),
+    Variable(
+        name="qi",
+        units=_KG,
+        standard_name="cloud_ice_mixing_ratio",
+        long_name="cloud ice mixing ratio",
+        label="cloud ice mixing ratio",
+        quantities={"mixing_ratio": Quantity(units=_KG)},
+        plausible=(0.0, 0.02),
+        negative_tolerance=1e-6,
+        water=True,
+    ),
+    Variable(
+        name="qr",
+        units=_KG,
+        standard_name="rain_water_mixing_ratio",
+        long_name="rain water mixing ratio",
+        label="rain water mixing ratio",
+        quantities={"mixing_ratio": Quantity(units=_KG)},
+        plausible=(0.0, 0.02),
+        negative_tolerance=1e-5,
+        water=True,
+        precipitating=True,
+    ),
+    Variable(
+        name="u",
+        units="m s-1",
+        standard_name="eastward_wind",
+        long_name="x component of the wind at cell centres",
+        label="x wind",
+        plausible=(-150.0, 150.0),
+        extra_attrs={"comment": "along the grid's x axis, taken as eastward"},
+    ),
+    Variable(
+        name="v",
+        units="m s-1",
+        standard_name="northward_wind",
+        long_name="y component of the wind at cell centres",
+        label="y wind",
+        plausible=(-150.0, 150.0),
+        extra_attrs={"comment": "along the grid's y axis, taken as northward"},
     ),
     Variable(
         name="rh",
@@ -343,7 +391,9 @@ def negative_tolerances() -> dict[str, float]:
     qc and qv: 1e-6 kg kg-1, about 0.1 % of a typical in-cloud water content of 1 g/kg.
     This is common practice for screening LES output, not a published value; undershoots
     of non-positive-definite advection are usually orders of magnitude smaller (-1e-9 kg/kg
-    in a few cells). Precipitating species run more negative and get larger tolerances.
+    in a few cells). Precipitating species run more negative and get larger tolerances:
+    rain water ``qr`` 1e-5 kg kg-1 (common practice, from memory: rain fields of
+    sedimentation schemes undershoot by more than cloud water; not a published value).
     """
     return {v.name: v.negative_tolerance for v in variables() if v.negative_tolerance is not None}
 

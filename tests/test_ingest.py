@@ -107,7 +107,10 @@ def test_rh_and_lwp_against_metpy(ingested):
     ).magnitude
     # MetPy uses Ambaum (2020) e_s; Bolton (1980) differs by < 0.3 % in this range
     np.testing.assert_allclose(ds["rh"].values, ref, rtol=5e-3)
-    rho = mpcalc.density(p * units.Pa, t * units.K, qv * units("kg/kg")).to("kg/m^3").magnitude
+    # dry-air density: MetPy's density of the dry air's partial pressure p - e
+    pa = p * units.Pa
+    e = mpcalc.vapor_pressure(pa, qv * units("kg/kg"))
+    rho = mpcalc.density(pa - e, t * units.K, 0 * units("kg/kg")).to("kg/m^3").magnitude
     dz = np.diff(np.r_[ds.z_bounds.values[:, 0], ds.z_bounds.values[-1, 1]])
     lwp = (rho * qc * dz[:, None, None]).sum(axis=0)
     np.testing.assert_allclose(ds["lwp"].values, lwp, rtol=1e-4, atol=1e-9)

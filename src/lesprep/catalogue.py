@@ -75,12 +75,17 @@ class Quantity:
         Variables ``convert`` reads, converted before this one.
     description
         The conversion as recorded in provenance.
+    mass_fraction
+        The raw field is a mass fraction of a water species (kg per kg of moist air,
+        condensate included). All such fields of a time are converted to mixing ratios
+        together, exactly (:func:`lesprep.thermo.mixing_ratios_from_mass_fractions`).
     """
 
     units: str
     convert: Convert | None = None
     needs: tuple[str, ...] = ()
     description: str = ""
+    mass_fraction: bool = False
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -163,11 +168,14 @@ def _theta_to_t(values: NDArray, fields: Mapping[str, NDArray]) -> NDArray:
     return thermo.temperature_from_potential_temperature(values, p)
 
 
-def _q_to_r(values: NDArray, fields: Mapping[str, NDArray]) -> NDArray:
-    return thermo.mixing_ratio_from_specific_humidity(values)
-
-
 _KG = "kg kg-1"
+_MASS_FRACTION = Quantity(
+    units=_KG,
+    mass_fraction=True,
+    description="mixing ratio r = q (1 + R) / (1 - S) from mass fraction q, with S the sum "
+    "of the water species given as mass fractions and R the sum of those given as mixing "
+    "ratios (exact; S = q and R = 0 gives r = q / (1 - q))",
+)
 BUILTIN: tuple[Variable, ...] = (
     Variable(
         name="p",
@@ -185,7 +193,7 @@ BUILTIN: tuple[Variable, ...] = (
         standard_name="cloud_liquid_water_mixing_ratio",
         long_name="cloud liquid water mixing ratio",
         label="cloud liquid water mixing ratio",
-        quantities={"mixing_ratio": Quantity(units=_KG)},
+        quantities={"mixing_ratio": Quantity(units=_KG), "mass_fraction": _MASS_FRACTION},
         plausible=(0.0, 0.02),
         negative_tolerance=1e-6,
         required=True,
@@ -199,11 +207,7 @@ BUILTIN: tuple[Variable, ...] = (
         label="water vapour mixing ratio",
         quantities={
             "mixing_ratio": Quantity(units=_KG),
-            "specific_humidity": Quantity(
-                units=_KG,
-                convert=_q_to_r,
-                description="mixing ratio r = q / (1 - q) from specific humidity q",
-            ),
+            "specific_humidity": _MASS_FRACTION,
         },
         plausible=(0.0, 0.05),
         negative_tolerance=1e-6,
@@ -243,7 +247,7 @@ BUILTIN: tuple[Variable, ...] = (
         standard_name="cloud_ice_mixing_ratio",
         long_name="cloud ice mixing ratio",
         label="cloud ice mixing ratio",
-        quantities={"mixing_ratio": Quantity(units=_KG)},
+        quantities={"mixing_ratio": Quantity(units=_KG), "mass_fraction": _MASS_FRACTION},
         plausible=(0.0, 0.02),
         negative_tolerance=1e-6,
         water=True,
@@ -254,7 +258,7 @@ BUILTIN: tuple[Variable, ...] = (
         standard_name="rain_water_mixing_ratio",
         long_name="rain water mixing ratio",
         label="rain water mixing ratio",
-        quantities={"mixing_ratio": Quantity(units=_KG)},
+        quantities={"mixing_ratio": Quantity(units=_KG), "mass_fraction": _MASS_FRACTION},
         plausible=(0.0, 0.02),
         negative_tolerance=1e-5,
         water=True,
@@ -401,6 +405,35 @@ def negative_tolerances() -> dict[str, float]:
 def plausible_ranges() -> dict[str, tuple[float, float]]:
     """Default plausibility range of every variable that has one (canonical units)."""
     return {v.name: v.plausible for v in variables() if v.plausible is not None}
+
+
+def from_map(
+    name: str, *, units: str, long_name: str, standard_name: str | None = None
+) -> Variable:
+    """An entry for a raw field a variable map adds under a name the catalogue does not
+    know: it keeps its own units, may get moments and patches, and has no plausible range
+    or negative tolerance (nothing is known about it). Not registered."""
+    return Variable(
+        name=name,
+        units=units,
+        long_name=long_name,
+        label=long_name,
+        standard_name=standard_name,
+    )
+
+
+def from_attrs(name: str, attrs: Mapping[str, object]) -> Variable:
+    """The entry of a stored variable: the catalogue's when it knows ``name``, else one
+    made from the store's CF attributes (``units``, ``long_name``, ``standard_name``)."""
+    if known(name):
+        return get(name)
+    std = attrs.get("standard_name")
+    return from_map(
+        name,
+        units=str(attrs.get("units", "1")),
+        long_name=str(attrs.get("long_name", name)),
+        standard_name=None if std is None else str(std),
+    )
 
 
 def check_names(names: list[str] | tuple[str, ...], *, what: str, use: str) -> tuple[str, ...]:

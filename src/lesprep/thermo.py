@@ -122,6 +122,35 @@ def mixing_ratio_from_specific_humidity(specific_humidity: ArrayLike) -> NDArray
     return q / (1.0 - q)
 
 
+def mixing_ratios_from_mass_fractions(
+    mass_fractions: dict[str, ArrayLike], mixing_ratios: dict[str, ArrayLike] | None = None
+) -> dict[str, NDArray[np.float64]]:
+    """Mixing ratios of water species given as mass fractions, exactly.
+
+    A mass fraction ``q_x`` is per kg of moist air (dry air plus every water species), a
+    mixing ratio ``r_x`` per kg of dry air: ``q_x = r_x / (1 + r_t)`` with ``r_t`` the sum
+    of all species' mixing ratios. With ``S`` the sum of the species given as mass
+    fractions and ``R`` the sum of those given as mixing ratios (``mixing_ratios``),
+    ``r_t = (R + S) / (1 - S)`` and
+
+        ``r_x = q_x (1 + R) / (1 - S)``.
+
+    Only vapour gives ``r = q / (1 - q)``; leaving out condensate of 1 g/kg changes the
+    vapour by about 0.1 %, and a condensate mass fraction taken as a mixing ratio is off
+    by ``r_t`` (1-2 %).
+
+    Examples
+    --------
+    >>> r = mixing_ratios_from_mass_fractions({"qv": 0.01}, {"qc": 0.001})
+    >>> round(float(r["qv"]), 12)
+    0.010111111111
+    """
+    s = sum(np.asarray(q, dtype=np.float64) for q in mass_fractions.values())
+    r = sum(np.asarray(v, dtype=np.float64) for v in (mixing_ratios or {}).values())
+    scale = (1.0 + r) / (1.0 - s)
+    return {k: np.asarray(q, dtype=np.float64) * scale for k, q in mass_fractions.items()}
+
+
 def exner(pressure: ArrayLike) -> NDArray[np.float64]:
     """Exner function ``(p / 1000 hPa) ** (Rd / cp)`` for pressure in Pa."""
     return (np.asarray(pressure, dtype=np.float64) / P0) ** KAPPA
@@ -147,6 +176,19 @@ def air_density(
     return np.asarray(pressure, dtype=np.float64) / (
         RD * virtual_temperature(temperature, mixing_ratio)
     )
+
+
+def dry_air_density(
+    pressure: ArrayLike, temperature: ArrayLike, mixing_ratio: ArrayLike
+) -> NDArray[np.float64]:
+    """Dry-air density (kg m-3): ``rho_d = (p - e) / (Rd T)`` with ``e = p r / (eps + r)``.
+
+    A mixing ratio is mass of water per mass of dry air, so ``rho_d * r`` is the mass of
+    water per volume (the moist density would count the vapour twice).
+    """
+    p = np.asarray(pressure, dtype=np.float64)
+    r = np.asarray(mixing_ratio, dtype=np.float64)
+    return p * EPS / ((EPS + r) * RD * np.asarray(temperature, dtype=np.float64))
 
 
 def saturation_adjustment(

@@ -11,10 +11,15 @@ compiled one.
 Conventions (those of :mod:`lesprep.thermo`):
 
 * ``rh = e / e_s``, ``e = p r / (eps + r)``, ``e_s`` from Bolton (1980) over liquid water;
-* ``rho = p / (Rd Tv)``, ``Tv = T (1 + r/eps) / (1 + r)``;
-* ``lwp = sum_k dz_k rho_k qc_k`` over the column (kg m-2), accumulated in float64;
-* ``cloud_mask = qc > threshold``, evaluated on the values as given (the stored ones), so
-  a mask recomputed from the stored cloud water gives the same cells.
+* dry-air density ``rho_d = (p - e) / (Rd T) = p eps / ((eps + r) Rd T)``: mixing ratios
+  are kg of water per kg of dry air, so the mass of water per volume is ``rho_d * r``
+  (the moist density of :func:`lesprep.thermo.air_density` would count the vapour twice
+  and give a liquid water path about 1 % high);
+* ``lwp = sum_k dz_k rho_d,k qc_k`` over the column (kg m-2), accumulated in float64;
+* ``cloud_mask``: ``qc > threshold`` for a mixing-ratio threshold, ``rho_d qc >
+  threshold`` for a mass concentration (:mod:`lesprep.canonical.mask`), evaluated on the
+  values as given (the stored ones), so a mask recomputed from the stored fields gives
+  the same cells.
 """
 
 from __future__ import annotations
@@ -69,6 +74,7 @@ def cell_diagnostics(
     dz: npt.ArrayLike,
     threshold: float,
     *,
+    threshold_units: str = "kg kg-1",
     dtype: npt.DTypeLike = np.float64,
     engine: Engine = "auto",
 ) -> CellDiagnostics:
@@ -82,8 +88,8 @@ def cell_diagnostics(
         T (K), vapour and cloud-water mixing ratios (kg kg-1), ``(z, y, x)``.
     dz
         Layer thicknesses (m), ``(z,)``.
-    threshold
-        Cloud threshold on ``qc``, kg kg-1.
+    threshold, threshold_units
+        Cloud threshold: on ``qc`` (``"kg kg-1"``) or on ``rho_d qc`` (``"kg m-3"``).
     dtype
         dtype of ``rh`` (arithmetic is float64 regardless).
     engine
@@ -102,13 +108,15 @@ def cell_diagnostics(
     eng = resolve_engine(engine)
     if eng == "numpy" or t.ndim != 3 or dt.char not in "fd":
         rh = thermo.relative_humidity(pp, t, r).astype(dt)
-        rho = thermo.air_density(pp, t, r)
-        lwp = np.tensordot(dzs, np.asarray(q, dtype=np.float64) * rho, axes=(0, 0))
-        return CellDiagnostics(rh, cloud_mask(q, threshold).astype(np.int8), lwp)
+        rho_d = thermo.dry_air_density(pp, t, r)
+        lwp = np.tensordot(dzs, np.asarray(q, dtype=np.float64) * rho_d, axes=(0, 0))
+        mask = cloud_mask(q, threshold, units=threshold_units, dry_density=rho_d)
+        return CellDiagnostics(rh, mask.astype(np.int8), lwp)
     rh = np.empty(t.shape, dtype=dt)
     mask = np.empty(t.shape, dtype=np.int8)
     lwp = np.empty(t.shape[1:], dtype=np.float64)
-    _nb_cells(pp, t, r, q, dzs, float(threshold), rh, mask, lwp)
+    by_density = threshold_units == "kg m-3"
+    _nb_cells(pp, t, r, q, dzs, float(threshold), by_density, rh, mask, lwp)
     return CellDiagnostics(rh, mask, lwp)
 
 
@@ -154,7 +162,7 @@ if HAVE_NUMBA:
         return e / (611.2 * np.exp(17.67 * tc / (tc + 243.5)))
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
-    def _nb_cells(p, t, r, q, dz, threshold, rh, mask, lwp):  # pragma: no cover - compiled
+    def _nb_cells(p, t, r, q, dz, threshold, by_density, rh, mask, lwp):  # pragma: no cover
         nz, ny, nx = t.shape
         for j in prange(ny):
             for i in range(nx):
@@ -167,9 +175,10 @@ if HAVE_NUMBA:
                     rk = np.float64(r[k, j, i])
                     qk = np.float64(q[k, j, i])
                     rh[k, j, i] = _nb_rh_cell(pk, tk, rk)
-                    tv = tk * (1.0 + rk / _EPS) / (1.0 + rk)
-                    lwp[j, i] += dzk * (qk * (pk / (_RD * tv)))
-                    mask[k, j, i] = 1 if qk > threshold else 0
+                    rho_d = pk * _EPS / ((_EPS + rk) * _RD * tk)
+                    lwp[j, i] += dzk * (qk * rho_d)
+                    amount = qk * rho_d if by_density else qk
+                    mask[k, j, i] = 1 if amount > threshold else 0
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_rh(p, t, r, out):  # pragma: no cover - compiled

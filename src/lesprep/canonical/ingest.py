@@ -19,8 +19,9 @@ import numpy as np
 
 from lesprep import catalogue, provenance, thermo
 from lesprep.canonical.derived import cell_diagnostics
+from lesprep.canonical.mask import describe_threshold
 from lesprep.canonical.settings import IngestSettings
-from lesprep.errors import TimeAxisError
+from lesprep.errors import TimeAxisError, UnitError
 from lesprep.raw.archive import ArchiveIndex, index_archive, read_field, resolve_files
 from lesprep.raw.checks import (
     check_finite,
@@ -65,13 +66,20 @@ def _deviation(
 
 
 def mapped_names(vm: VariableMap) -> tuple[str, ...]:
-    """The variable map's variables in catalogue order (``p`` first: others may need it)."""
-    return tuple(v.name for v in catalogue.variables(kind="mapped") if v.name in vm.variables)
+    """The variable map's variables: the catalogue's in catalogue order (``p`` first: others
+    may need it), then those the map adds, in map order."""
+    known = [v.name for v in catalogue.variables(kind="mapped") if v.name in vm.variables]
+    return (*known, *(n for n in vm.variables if n not in known))
 
 
 def fields_3d(vm: VariableMap) -> tuple[str, ...]:
     """Stored (time, z, y, x) fields of a case: mapped ones except ``p``, then derived."""
-    return (*(n for n in mapped_names(vm) if n != "p"), *DERIVED_3D)
+    return (*(n for n in mapped_names(vm) if n != "p" and not vm.is_2d(n)), *DERIVED_3D)
+
+
+def fields_2d(vm: VariableMap) -> tuple[str, ...]:
+    """Mapped (time, y, x) fields of a case (surface fields)."""
+    return tuple(n for n in mapped_names(vm) if n != "p" and vm.is_2d(n))
 
 
 def _first_step(
@@ -305,6 +313,34 @@ def quantized_levels(values: np.ndarray) -> np.ndarray:
     return np.nonzero((hi - lo < QUANTUM_STEPS * step) & (top > 0))[0]
 
 
+def _quantity(
+    vm: VariableMap, name: str, units: str | None, *, case: str, file: str
+) -> catalogue.Quantity:
+    """What the raw field of ``name`` is converted to: the catalogue's quantity for a known
+    variable, the field's own units for one the map adds."""
+    spec = vm.variables[name]
+    if catalogue.known(name):
+        return catalogue.get(name).quantities[spec.quantity]
+    own = units if units is not None and str(units).strip() else spec.units
+    if own is None:
+        raise UnitError(
+            "has no units attribute and the variable map assumes none; a variable the "
+            f"catalogue does not know ({name!r}) keeps its own units, so they must be known",
+            hint=f"add 'units: <unit>' to {name!r} in the variable map",
+            case=case,
+            file=file,
+            variable=spec.raw,
+        )
+    return catalogue.Quantity(units=str(own))
+
+
+def _destagger_horizontal(
+    cat: ArchiveIndex, name: str, values: np.ndarray, *, axis: int, face_axis: str, file: str
+) -> np.ndarray:
+    """Centre values of a field on the faces of a periodic horizontal axis."""
+    return destagger_periodic(values, axis=axis)
+
+
 def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.ndarray, list[str]]:
     """Drop time (already selected) and transpose to (z, y, x) order."""
     axes = tuple(a for a in axes if a != "time")
@@ -345,11 +381,22 @@ def canonical_step(
     extents: dict[str, tuple[float, float]] = {}
     names = mapped_names(vm)
     clipped_now: dict[str, np.ndarray] = {}
+    fractions: list[str] = []  # water species given as mass fractions: converted together
+    exact: dict[str, np.ndarray] = {}  # their float64 values, for deviation fields
+
+    def clip(name: str) -> None:
+        if name in settings.negative_tolerance:
+            extents[name], amounts = clipped.clip(
+                out[name], extents[name], name=name, tol=settings.negative_tolerance[name], t=t
+            )
+            if amounts is not None:
+                clipped_now[name] = amounts
+
     for name in names:
         spec = vm.variables[name]
-        quantity = catalogue.get(name).quantities[spec.quantity]
         raw, file, units, raw_extent = read_field(cat, name, time_index)
         files[name] = file
+        quantity = _quantity(vm, name, units, case=cat.case, file=file)
         axes = tuple(a for a in spec.axes(vm.dims) if a != "time")
         raw_dims = [d for d in spec.dims if vm.dims[d] != "time"]
         conv = conversions.get(
@@ -368,9 +415,15 @@ def canonical_step(
         raw_dtype = raw.dtype
         if name in deviations:
             v64, _ = _to_canonical_axes(conv.convert(raw, np.float64), axes)
-            out[f"{name}_dev"], out[f"{name}_ref"] = _deviation(
-                v64, faces=faces, z=z, quantity=quantity, fields=out, dtype=dtype
-            )
+            if quantity.mass_fraction:  # after the joint conversion below
+                if v64.shape[0] == faces.size:
+                    v64 = destagger_vertical(np.ascontiguousarray(v64), faces, z, axis=0)
+                exact[name] = v64
+            else:
+                out[f"{name}_dev"], out[f"{name}_ref"] = _deviation(
+                    v64, faces=faces, z=z, quantity=quantity, fields=out, dtype=dtype
+                )
+            del v64
         values = conv.convert(raw, dtype, out=raw if reuse else None)  # in place if it can
         del raw
         # Rounding is monotonic, so the converted extremes are the converted raw extremes
@@ -392,18 +445,31 @@ def canonical_step(
                     dtype=dtype,
                 )
             elif a in ("y_face", "x_face"):
-                values = destagger_periodic(values, axis=i).astype(dtype)
+                values = _destagger_horizontal(cat, name, values, axis=i, face_axis=a, file=file)
+                values = values.astype(dtype)
         if quantity.convert is not None:
             extent = None
             values = quantity.convert(values, out).astype(dtype)
         out[name] = np.ascontiguousarray(values)
         extents[name] = value_extent(out[name])[1:] if extent is None else extent
-        if name in settings.negative_tolerance:
-            extents[name], amounts = clipped.clip(
-                out[name], extents[name], name=name, tol=settings.negative_tolerance[name], t=t
-            )
-            if amounts is not None:
-                clipped_now[name] = amounts
+        if quantity.mass_fraction:
+            fractions.append(name)
+        else:
+            clip(name)
+    if fractions:
+        ratios = {n: out[n] for n in names if catalogue.known(n) and catalogue.get(n).water}
+        given = {n: ratios.pop(n) for n in fractions}
+        for name, r in thermo.mixing_ratios_from_mass_fractions(given, ratios).items():
+            out[name] = r.astype(dtype)
+            extents[name] = value_extent(out[name])[1:]
+            clip(name)
+        if exact:
+            given = {n: exact.get(n, given[n]) for n in given}
+            for name, r in thermo.mixing_ratios_from_mass_fractions(given, ratios).items():
+                if name in exact:
+                    ref = r.mean(axis=(1, 2))
+                    out[f"{name}_dev"] = (r - ref[:, None, None]).astype(dtype)
+                    out[f"{name}_ref"] = ref
     for name in names:
         spec = vm.variables[name]
         if name not in settings.ranges:
@@ -412,7 +478,7 @@ def canonical_step(
             out[name],
             name=name,
             bounds=settings.ranges[name],
-            units=catalogue.get(name).units,
+            units=vm.entry(name).units,
             case=cat.case,
             file=files[name],
             raw_variable=spec.raw,
@@ -425,7 +491,7 @@ def canonical_step(
         )
     if clipped_now:
         p = out["p"] if out["p"].ndim == 3 else out["p"][:, None, None]
-        rho = thermo.air_density(p, out["T"], out["qv"])
+        rho = thermo.dry_air_density(p, out["T"], out["qv"])
         clipped.add_mass(clipped_now, np.asarray(rho, dtype=np.float64), layer_thickness(faces))
     diag = cell_diagnostics(
         out["p"],
@@ -434,6 +500,7 @@ def canonical_step(
         out["qc"],
         layer_thickness(faces),
         settings.threshold,
+        threshold_units=settings.threshold_units,
         dtype=dtype,
     )
     out["rh"] = diag.rh
@@ -453,21 +520,40 @@ def _layout(
     faces: np.ndarray,
     settings: IngestSettings,
     p_profile: bool,
+    units: dict[str, str],
 ) -> dict[str, ArraySpec]:
     nt, nz, ny, nx = keep.size, cat.grid.z.size, cat.grid.y.size, cat.grid.x.size
     dtype = np.dtype(settings.dtype)
     zc = _z_chunk(nz, ny, nx, dtype.itemsize, settings.chunk_mib)
     dims4 = ("time", "z", "y", "x")
     out: dict[str, ArraySpec] = {}
-    for name in fields_3d(cat.varmap):
+    vm = cat.varmap
+    for name in fields_3d(vm):
         is_mask = name == "cloud_mask"
+        attrs = (
+            vm.entry(name, units=units.get(name)) if name in vm.variables else catalogue.get(name)
+        ).cf_attrs()
+        if is_mask:
+            attrs["long_name"] = (
+                "cloudy cell ("
+                + describe_threshold(settings.threshold, settings.threshold_units)
+                + ")"
+            )
         out[name] = ArraySpec(
             dims=dims4,
             shape=(nt, nz, ny, nx),
             chunks=(1, zc, ny, nx),
             dtype="int8" if is_mask else dtype,
-            attrs=catalogue.get(name).cf_attrs(),
+            attrs=attrs,
             fill_value=0 if is_mask else (0.0 if name == "qc" else None),
+        )
+    for name in fields_2d(vm):
+        out[name] = ArraySpec(
+            dims=("time", "y", "x"),
+            shape=(nt, ny, nx),
+            chunks=(1, ny, nx),
+            dtype=dtype,
+            attrs=vm.entry(name, units=units.get(name)).cf_attrs(),
         )
     if p_profile:
         out["p"] = ArraySpec(
@@ -628,7 +714,8 @@ def ingest_case(
             )
 
         first, deviations, quantized = _first_step(cat, keep, step_fields, clipped)
-        layout = _layout(cat, keep, faces, settings, p_profile)
+        units = {c.variable: c.to_units for c in conversions.items.values()}
+        layout = _layout(cat, keep, faces, settings, p_profile, units)
         layout.update(_deviation_layout(deviations, keep.size, layout, dtype))
         out = Path(out)
         with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
@@ -639,7 +726,7 @@ def ingest_case(
                 first = {}
                 step = {
                     n: fields[n].astype("int8" if n == "cloud_mask" else dtype, copy=False)
-                    for n in (*fields_3d(vm), "lwp")
+                    for n in (*fields_3d(vm), *fields_2d(vm), "lwp")
                 }
                 for n in deviations:
                     step[f"{n}_dev"] = fields[f"{n}_dev"]
@@ -706,6 +793,7 @@ def ingest_case(
                     "dx": dx,
                     "dy": dx,
                     "cloud_threshold": settings.threshold,
+                    "cloud_threshold_units": settings.threshold_units,
                     "spinup_s": settings.spinup_s,
                     "time_origin": cat.origin,
                 },

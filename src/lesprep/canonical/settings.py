@@ -13,6 +13,7 @@ from types import MappingProxyType
 from typing import Any, Literal
 
 from lesprep import catalogue
+from lesprep.canonical.mask import ThresholdUnits, parse_threshold
 from lesprep.errors import ConfigError
 from lesprep.store import StoreSettings
 from lesprep.units import parse_quantity
@@ -64,8 +65,10 @@ class IngestSettings:
     ----------
     spinup_s
         Spin-up dropped from the case's first output time (s).
-    threshold
-        Cloud-water mixing ratio above which a fine cell is cloudy (kg kg-1).
+    threshold, threshold_units
+        Cloud-water amount above which a fine cell is cloudy: a mixing ratio
+        (``"kg kg-1"``) or a mass concentration (``"kg m-3"``, compared with dry-air
+        density times ``qc``); see :mod:`lesprep.canonical.mask`.
     ranges
         Plausibility range per variable, canonical units.
     dtype
@@ -85,6 +88,7 @@ class IngestSettings:
 
     spinup_s: float
     threshold: float
+    threshold_units: ThresholdUnits
     ranges: Mapping[str, tuple[float, float]]
     dtype: Dtype
     chunk_mib: float
@@ -101,16 +105,24 @@ class IngestSettings:
         object.__setattr__(self, "negative_tolerance", MappingProxyType(tol))
 
     def __hash__(self) -> int:
-        return hash((self.spinup_s, self.threshold, tuple(self.ranges.items()), self.dtype))
+        return hash(
+            (
+                self.spinup_s,
+                self.threshold,
+                self.threshold_units,
+                tuple(self.ranges.items()),
+                self.dtype,
+            )
+        )
 
     @classmethod
     def from_config(cls, ingest: Mapping[str, Any], store: StoreSettings) -> IngestSettings:
         """Parse the validated ``ingest`` section once."""
+        threshold, threshold_units = parse_threshold(ingest["cloud_threshold"])
         return cls(
             spinup_s=parse_quantity(ingest["spinup"], "s", name="ingest.spinup"),
-            threshold=parse_quantity(
-                ingest["cloud_threshold"], "kg kg-1", name="ingest.cloud_threshold"
-            ),
+            threshold=threshold,
+            threshold_units=threshold_units,  # type: ignore[arg-type]
             ranges=parse_ranges(ingest["plausible_ranges"]),
             dtype=ingest["dtype"],
             chunk_mib=float(ingest["chunk_mib"]),
@@ -130,6 +142,7 @@ class IngestSettings:
         return {
             "spinup_s": self.spinup_s,
             "threshold": self.threshold,
+            "threshold_units": self.threshold_units,
             "ranges": {k: list(v) for k, v in self.ranges.items()},
             "dtype": self.dtype,
             "chunk_mib": self.chunk_mib,
@@ -146,6 +159,7 @@ class IngestSettings:
         return cls(
             spinup_s=float(d["spinup_s"]),
             threshold=float(d["threshold"]),
+            threshold_units=d["threshold_units"],
             ranges={k: (float(v[0]), float(v[1])) for k, v in d["ranges"].items()},
             dtype=d["dtype"],
             chunk_mib=float(d["chunk_mib"]),

@@ -202,7 +202,8 @@ def _write_beta(spec: DemoCase, folder: Path, compress: bool) -> list[str]:
             p = state["p"]
             values = {
                 "cloudwater": state["qc"],
-                "sphum": state["qv"] / (1.0 + state["qv"]),
+                # mass fraction of vapour in moist air that holds cloud water too
+                "sphum": state["qv"] / (1.0 + state["qv"] + state["qc"]),
                 "theta": state["T"] / thermo.exner(p),
                 "wc": state["w"],
             }

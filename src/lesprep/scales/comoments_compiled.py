@@ -17,11 +17,26 @@ from lesprep._jit import HAVE_NUMBA, njit, prange
 from lesprep.scales.moments_compiled import _ROWWISE_MAX
 
 if HAVE_NUMBA:
+    from lesprep.scales.moments_compiled import nb_mean4
 
     @njit(inline="always")
     def nb_cofinish(s1x, s1y, sxy, n):  # pragma: no cover - compiled
         """Shift correction: ``sum((x - mx)(y - my))`` from sums about any centres."""
         return sxy - s1x * (s1y / n)
+
+    @njit(inline="always")
+    def nb_co4(x0, x1, x2, x3, y0, y1, y2, y3, cx, cy):  # pragma: no cover - compiled
+        """Co-moment of a 2 x 2 block about the centres ``cx``, ``cy``."""
+        s1x = 0.0
+        s1y = 0.0
+        sxy = 0.0
+        for xv, yv in ((x0, y0), (x1, y1), (x2, y2), (x3, y3)):
+            dx = xv - cx
+            dy = yv - cy
+            s1x += dx
+            s1y += dy
+            sxy += dx * dy
+        return nb_cofinish(s1x, s1y, sxy, 4)
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_comoment(x, y, f, mx, my, given, out):  # pragma: no cover - compiled
@@ -44,37 +59,27 @@ if HAVE_NUMBA:
                 xb = x[p, r0 + 1]
                 ya = y[p, r0]
                 yb = y[p, r0 + 1]
-                for bj in range(nbx):
-                    i0 = 2 * bj
-                    i1 = i0 + 1
-                    x0, x1, x2, x3 = xa[i0], xa[i1], xb[i0], xb[i1]
-                    y0, y1, y2, y3 = ya[i0], ya[i1], yb[i0], yb[i1]
-                    if given:
-                        cx = mx[p, bi, bj]
-                        cy = my[p, bi, bj]
-                    else:
-                        cx = 0.0
-                        cx += x0
-                        cx += x1
-                        cx += x2
-                        cx += x3
-                        cx = cx / n
-                        cy = 0.0
-                        cy += y0
-                        cy += y1
-                        cy += y2
-                        cy += y3
-                        cy = cy / n
-                    s1x = 0.0
-                    s1y = 0.0
-                    sxy = 0.0
-                    for xv, yv in ((x0, y0), (x1, y1), (x2, y2), (x3, y3)):
-                        dx = xv - cx
-                        dy = yv - cy
-                        s1x += dx
-                        s1y += dy
-                        sxy += dx * dy
-                    o[bj] = nb_cofinish(s1x, s1y, sxy, n)
+                if given:  # (two loops without a branch inside, so both vectorise)
+                    mxr = mx[p, bi]
+                    myr = my[p, bi]
+                    for bj in range(nbx):
+                        i0 = 2 * bj
+                        i1 = i0 + 1
+                        o[bj] = nb_co4(
+                            xa[i0], xa[i1], xb[i0], xb[i1],
+                            ya[i0], ya[i1], yb[i0], yb[i1],
+                            mxr[bj], myr[bj],
+                        )  # fmt: skip
+                else:
+                    for bj in range(nbx):
+                        i0 = 2 * bj
+                        i1 = i0 + 1
+                        x0, x1, x2, x3 = xa[i0], xa[i1], xb[i0], xb[i1]
+                        y0, y1, y2, y3 = ya[i0], ya[i1], yb[i0], yb[i1]
+                        o[bj] = nb_co4(
+                            x0, x1, x2, x3, y0, y1, y2, y3,
+                            nb_mean4(x0, x1, x2, x3, 4), nb_mean4(y0, y1, y2, y3, 4),
+                        )  # fmt: skip
             elif f <= _ROWWISE_MAX:
                 if given:
                     ux = mx[p, bi]

@@ -369,4 +369,9 @@ def test_invalid_inputs():
     with pytest.raises(InputError, match="count"):  # moments of other blocks
         hierarchical_comoments(x, x, [4], {4: mom[2]}, {4: mom[2]})
     assert hierarchical_comoments(x, x, [], {}, {}) == {}
+    # factor 1: single cells have no deviations (numpy.cov of one point, bias=True, is 0)
+    x, y = pair((2, 8, 8), seed=0)
+    res = hierarchical_comoments(x, y, [1, 4], {4: block_moments(x, 4)}, {4: block_moments(y, 4)})
+    assert res[1].count == 1 and np.all(res[1].cov_sum == 0.0) and res[1].shape == x.shape
+    np.testing.assert_allclose(res[4].covariance(), numpy_cov_per_block(x, y, 4), rtol=1e-12)
     assert block_comoment(np.zeros((0, 4, 4)), np.zeros((0, 4, 4)), 2).shape == (0, 2, 2)

@@ -384,7 +384,7 @@ def merge_comoments(
     >>> x = np.arange(16.0).reshape(4, 4)
     >>> y = x**2
     >>> child = BlockComoments(4, block_comoment(x, y, 2))
-    >>> means = [x.reshape(2, 2, 2, 2).mean(axis=(1, 3)) for x in (x, y)]
+    >>> means = [a.reshape(2, 2, 2, 2).mean(axis=(1, 3)) for a in (x, y)]
     >>> merged = merge_comoments(child, *means, 2)
     >>> merged.count, bool(np.isclose(merged.cov_sum[0, 0], block_comoment(x, y, 4)[0, 0]))
     (16, True)
@@ -435,8 +435,8 @@ def hierarchical_comoments(
         Block factors; every one must divide ``ny`` and ``nx``.
     moments_x, moments_y
         ``{factor: BlockMoments}`` of ``x`` and ``y`` holding at least every factor in
-        ``factors`` (what :func:`~lesprep.scales.moments.hierarchical_moments` returns).
-        Only the means are read.
+        ``factors`` except 1 (what :func:`~lesprep.scales.moments.hierarchical_moments`
+        returns). Only the means are read.
     engine
         ``"auto"``, ``"numba"`` or ``"numpy"``.
 
@@ -487,6 +487,7 @@ def hierarchical_comoments(
                 (*lead, ny // f, nx // f),
             )
             for f in plan
+            if f > 1  # (1 x 1 blocks have no deviations: their co-moments are zero)
         }
         for what, moments in (("moments_x", moments_x), ("moments_y", moments_y))
     ]
@@ -496,7 +497,9 @@ def hierarchical_comoments(
         sl = slice(offset, offset + xc.shape[0])
         xp = yp = None
         for f, parent in plan.items():
-            if parent is None:
+            if f == 1:
+                out[f][sl] = 0.0
+            elif parent is None:
                 if xp is None:
                     xp, yp = _prepare(xc, eng), _prepare(yc, eng)
                 _first_level(xp, yp, f, eng, means[0][f][sl], means[1][f][sl], out[f][sl])

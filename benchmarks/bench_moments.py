@@ -3,6 +3,7 @@
 Run from the repository root, e.g.::
 
     python benchmarks/bench_moments.py --shape 12 160 512 512 --json /tmp/bench.json
+    python benchmarks/bench_moments.py --shape 32 512 512 --comoments 4 --repeat 3
 
 Prints a table (wall seconds of the first and of the best run, process CPU seconds and
 input throughput of the best run, peak memory traced by ``tracemalloc`` beyond the outputs)
@@ -21,15 +22,16 @@ import platform
 import sys
 import time
 import tracemalloc
+from functools import partial
 from pathlib import Path
 
 import numpy as np
 
 try:
-    from lesprep.scales import moments
+    from lesprep.scales import comoments, moments
 except ImportError:  # running from a checkout without an installed package
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
-    from lesprep.scales import moments
+    from lesprep.scales import comoments, moments
 
 METHODS = ("hierarchical", "direct")
 
@@ -52,6 +54,14 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     )
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--json", type=Path, default=None, help="write the rows here as JSON")
+    parser.add_argument(
+        "--comoments",
+        type=int,
+        default=0,
+        metavar="PAIRS",
+        help="instead of the table: time the block co-moments of PAIRS pairs of fields "
+        "against hierarchical_moments of one field (see bench_comoments)",
+    )
     return parser.parse_args(argv)
 
 
@@ -104,11 +114,95 @@ def output_bytes(shape: tuple[int, ...], factors: list[int]) -> int:
     return sum(3 * 8 * lead * (shape[-2] // f) * (shape[-1] // f) for f in factors)
 
 
+def _best_seconds(call, repeat: int) -> tuple[float, float]:
+    """Wall seconds of the first and of the best of ``repeat`` calls."""
+    times = []
+    for _ in range(max(1, repeat)):
+        start = time.perf_counter()
+        call()
+        times.append(time.perf_counter() - start)
+    return times[0], min(times)
+
+
+def _all_hierarchical_comoments(w, others, factors, mom, engine) -> list:
+    return [
+        comoments.hierarchical_comoments(w, o, factors, mom[0], m, engine=engine)
+        for o, m in zip(others, mom[1:], strict=True)
+    ]
+
+
+def _all_block_comoments(w, others, factors, engine) -> list:
+    return [comoments.block_comoment(w, o, f, engine=engine) for o in others for f in factors]
+
+
+def bench_comoments(
+    shape: tuple[int, ...] = (32, 512, 512),
+    pairs: int = 4,
+    factors: list[int] | None = None,
+    engines: tuple[str, ...] = ("numba", "numpy"),
+    dtype: str = "float32",
+    repeat: int = 3,
+) -> list[dict]:
+    """Time the sub-grid co-moments of ``pairs`` pairs of fields, relative to moments.
+
+    The pairs share one field, as sub-grid fluxes do (``w`` with ``pairs`` others). The
+    baseline is ``hierarchical_moments`` of one field (mean, M2, M3 for every factor). The
+    co-moments are timed with the ``BlockMoments`` of both fields already computed (what a
+    caller has after the moments), as ``hierarchical_comoments`` for all pairs, and, for
+    comparison, as ``block_comoment`` per factor computing its own block means (fused first
+    pass, no merges). Prints the best of ``repeat`` runs and returns the rows.
+    """
+    factors = factors or default_factors(shape[-2], shape[-1])
+    engines = tuple(e for e in engines if e != "numba" or moments.HAVE_NUMBA)
+    fields = [make_field(shape, dtype, seed) for seed in range(pairs + 1)]
+    w, others = fields[0], fields[1:]
+    if "numba" in engines:  # compile (or load the cache) outside the timings
+        small = [f[:1, : max(factors), : max(factors)] for f in fields[:2]]
+        mom = [moments.hierarchical_moments(f, factors, engine="numba") for f in small]
+        comoments.hierarchical_comoments(*small, factors, *mom, engine="numba")
+        comoments.block_comoment(*small, factors[0], engine="numba")
+    print(f"co-moments: {pairs} pairs, {dtype} {shape}, factors {factors}, repeat {repeat}")
+    header = f"{'engine':<6} {'what':<40} {'best s':>8} {'first s':>8} {'x moments':>10}"
+    print(header)
+    print("-" * len(header))
+    rows = []
+    for engine in engines:
+        mom = [moments.hierarchical_moments(f, factors, engine=engine) for f in fields]
+        cases = {
+            "hierarchical_moments, 1 field": partial(
+                moments.hierarchical_moments, w, factors, engine=engine
+            ),
+            f"hierarchical_comoments, {pairs} pairs": partial(
+                _all_hierarchical_comoments, w, others, factors, mom, engine
+            ),
+            f"block_comoment per factor, {pairs} pairs": partial(
+                _all_block_comoments, w, others, factors, engine
+            ),
+        }
+        base = None
+        for what, call in cases.items():
+            first, best = _best_seconds(call, repeat)
+            base = best if base is None else base
+            rows.append(
+                {"engine": engine, "what": what, "best_seconds": best, "first_seconds": first}
+            )
+            print(f"{engine:<6} {what:<40} {best:8.3f} {first:8.3f} {best / base:10.2f}")
+    return rows
+
+
 def main(argv: list[str] | None = None) -> int:
     args = parse_args(argv)
     shape = tuple(args.shape)
     factors = args.factors or default_factors(shape[-2], shape[-1])
     engines = [e for e in args.engines if e != "numba" or moments.HAVE_NUMBA]
+    if args.comoments:
+        rows = bench_comoments(
+            shape, args.comoments, factors, tuple(engines), args.dtype, max(1, args.repeat)
+        )
+        if args.json is not None:
+            args.json.parent.mkdir(parents=True, exist_ok=True)
+            args.json.write_text(json.dumps({"shape": list(shape), "rows": rows}, indent=2))
+        return 0
 
     print(f"making a {args.dtype} field of shape {shape} ...", flush=True)
     a = make_field(shape, args.dtype, args.seed)

@@ -145,8 +145,9 @@ def test_quantities_of_the_beta_flavour(archives):
 
 def write_archive(path: Path, *, nt: int = 3, nz: int = 10, n: int = 8) -> Path:
     """An invented layout: dims recognised only by CF attributes, CF standard names,
-    w on faces, and distractors that must not be taken (rain, RH in %, liquid-water
-    potential temperature, a pressure perturbation, u and v, w variance, cloud fraction).
+    w on faces, and distractors that must not be taken for the required five (rain, RH
+    in %, liquid-water potential temperature, a pressure perturbation, u and v, w
+    variance, cloud fraction); rain, u and v are the optional qr, u and v.
     """
     rng = np.random.default_rng(7)
     dz = 50.0
@@ -230,6 +231,9 @@ variables:
   T: {raw: ta, dims: [t, k, j, i], quantity: temperature}
   p: {raw: pa, dims: [t, k, j, i]}
   w: {raw: wa, dims: [t, kw, j, i]}
+  qr: {raw: qr, dims: [t, k, j, i]}
+  u: {raw: u, dims: [t, k, j, i]}
+  v: {raw: v, dims: [t, k, j, i]}
 """
 
 
@@ -245,6 +249,10 @@ def test_unseen_layout_by_cf_attributes(tmp_path):
         "T": ("ta", "temperature"),
         "p": ("pa", "direct"),
         "w": ("wa", "direct"),
+        # the optional ones, found by short name and long name
+        "qr": ("qr", "direct"),
+        "u": ("u", "direct"),
+        "v": ("v", "direct"),
     }
     assert report.time is not None and report.time.origin == "2030-01-01T00:00:00"
     hand = tmp_path / "hand.yaml"
@@ -273,7 +281,7 @@ def test_velocity_on_the_staggered_vertical_is_proposed_as_w(tmp_path):
     assert (w.raw, w.quantity) == ("wvel", "direct")
     assert any("staggered vertical" in r for r in w.reasons)
     # u and v (velocities at cell centres) are not taken for it
-    assert {p.raw for p in report.proposals.values()} & {"u", "v"} == set()
+    assert (report.proposals["u"].raw, report.proposals["v"].raw) == ("u", "v")
 
 
 def test_bare_q_without_units_is_flagged(tmp_path):

@@ -277,6 +277,8 @@ class RawGrid:
     z: np.ndarray
     z_face: np.ndarray | None = None
     z_bounds: np.ndarray | None = None
+    y_face: np.ndarray | None = None
+    x_face: np.ndarray | None = None
 
 
 @dataclass
@@ -612,7 +614,11 @@ def _read_grid(ds: RawFile, varmap: VariableMap, *, case: str, file: str) -> Raw
         if "units" not in bspec and "units" not in ds.variables[bspec["raw"]].attrs:
             bspec["units"] = str(ds.variables[specs["z"]["raw"]].attrs.get("units", "m"))
         zb = _coord_values(ds, bspec, axis="z_bounds", case=case, file=file)
-    return RawGrid(x=vals["x"], y=vals["y"], z=vals["z"], z_face=zf, z_bounds=zb)
+    hf: dict[str, np.ndarray | None] = {"y_face": None, "x_face": None}
+    for key in hf:
+        if key in specs and specs[key]["raw"] in ds.variables:
+            hf[key] = _coord_values(ds, specs[key], axis=key, case=case, file=file)
+    return RawGrid(x=vals["x"], y=vals["y"], z=vals["z"], z_face=zf, z_bounds=zb, **hf)
 
 
 def _same_grid(a: RawGrid, b: RawGrid, *, case: str, file: str, ref_file: str) -> None:

@@ -11,7 +11,12 @@ axis. It then guesses
   coordinates the report says whether the faces bracket the centres;
 * which raw variable gives each canonical variable (qc, qv, T, p, w) and what it
   measures (``quantity``), from the CF ``standard_name``, common short and long names and
-  the units' dimensionality.
+  the units' dimensionality;
+* the optional catalogue variables cloud ice ``qi``, rain water ``qr`` and the wind
+  components ``u`` and ``v``, proposed only on good evidence (a standard name, an exact
+  short name, or a partial name with a long-name match; or, for u and v, a velocity on
+  the staggered x or y dimension), never in place of a required variable; for a field on
+  horizontal faces, which side of the centres its faces lie on, from the face coordinate.
 
 :func:`draft_varmap` turns the report into a variable map in the format of
 ``config/varmaps/*.yaml``, validated with :func:`lesprep.raw.varmap.parse_varmap`.
@@ -27,7 +32,10 @@ Conventions
   ``cloud_liquid_water_mixing_ratio``, ``mass_fraction_of_cloud_liquid_water_in_air``,
   ``humidity_mixing_ratio``, ``specific_humidity``,
   ``mass_fraction_of_water_vapor_in_air``, ``air_temperature``,
-  ``air_potential_temperature``, ``air_pressure``, ``upward_air_velocity``.
+  ``air_potential_temperature``, ``air_pressure``, ``upward_air_velocity``,
+  ``cloud_ice_mixing_ratio``, ``mass_fraction_of_cloud_ice_in_air``,
+  ``rain_water_mixing_ratio``, ``mass_fraction_of_rain_in_air``, ``eastward_wind``,
+  ``x_wind``, ``northward_wind``, ``y_wind``.
 * A bare ``q`` without other hints is taken for specific humidity, the usual meaning of
   the symbol in meteorology (from memory); the report says so.
 * Units missing from the file are written to the draft as the canonical units with a
@@ -36,7 +44,7 @@ Conventions
 
 from lesprep.raw.survey.draft import draft_varmap
 from lesprep.raw.survey.guess import inspect_files
-from lesprep.raw.survey.hints import CANONICAL, MIN_SCORE
+from lesprep.raw.survey.hints import CANONICAL, MIN_SCORE, OPTIONAL
 from lesprep.raw.survey.records import (
     DimInfo,
     InspectReport,
@@ -48,6 +56,7 @@ from lesprep.raw.survey.records import (
 __all__ = [
     "CANONICAL",
     "MIN_SCORE",
+    "OPTIONAL",
     "DimInfo",
     "InspectReport",
     "Proposal",

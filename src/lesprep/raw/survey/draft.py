@@ -25,7 +25,9 @@ def _scalar(value: str) -> str:
 def _flow(items: dict[str, Any]) -> str:
     parts = []
     for k, v in items.items():
-        if isinstance(v, (list, tuple)):
+        if isinstance(v, dict):
+            parts.append(f"{k}: {_flow(v)}")
+        elif isinstance(v, (list, tuple)):
             parts.append(f"{k}: [{', '.join(_scalar(str(x)) for x in v)}]")
         else:
             parts.append(f"{k}: {_scalar(str(v))}")
@@ -47,9 +49,10 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
     str
         YAML in the layout of ``config/varmaps/*.yaml``: comment lines, ``flavour``,
         ``description``, ``dims`` (every raw dimension with a role), ``coords`` and
-        ``variables`` (qc, qv, T, p, w). Assumptions are flagged with ``# CHECK``
-        comments; a canonical variable with no candidate gets ``raw: "<not found>"`` so
-        ingest names it. The text is validated with
+        ``variables`` (qc, qv, T, p, w, then any of qi, qr, u, v that were found; a
+        field on horizontal faces with ``faces: {x: low|high}`` when the face coordinate
+        tells). Assumptions are flagged with ``# CHECK`` comments; a required variable
+        with no candidate gets ``raw: "<not found>"`` so ingest names it. The text is validated with
         :func:`lesprep.raw.varmap.parse_varmap`.
 
     Raises
@@ -85,7 +88,7 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
     ]
     lines += [f"  {_scalar(name)}: {role}" for name, role in roles.items()]
     lines.append("coords:")
-    for key in ("time", "z", "z_face", "z_bounds", "y", "x"):
+    for key in ("time", "z", "z_face", "z_bounds", "y", "x", "y_face", "x_face"):
         raw = report.coords.get(key)
         if raw is None:
             if key in ("time", "z", "y", "x"):
@@ -100,7 +103,7 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
         lines.append(f"  {key}: {_flow(spec)}{comment}")
     lines.append("variables:")
     centre_dims = [next(d for d, r in roles.items() if r == a) for a in ("time", "z", "y", "x")]
-    for name in CANONICAL:
+    for name in (*CANONICAL, *(n for n in report.proposals if n not in CANONICAL)):
         p = report.proposals.get(name)
         if p is None or p.raw is None:
             spec = {"raw": "<not found>", "dims": centre_dims}
@@ -109,12 +112,23 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
         spec = {"raw": p.raw, "dims": list(p.dims)}
         if p.quantity != "direct":
             spec["quantity"] = p.quantity
+        if p.faces:
+            spec["faces"] = dict(p.faces)
         comment = ""
         if p.assumed_units is not None:
             spec["units"] = p.assumed_units
             comment = "  # CHECK: the file has no units"
         elif p.units is not None:
             comment = f"  # units in the file: {p.units}"
+        unstated = [
+            roles[d].removesuffix("_face")
+            for d in p.dims
+            if roles.get(d) in ("x_face", "y_face")
+            and roles[d].removesuffix("_face") not in p.faces
+        ]
+        if unstated:
+            sides = ", ".join(f"{a}: low|high" for a in unstated)
+            comment += f"  # CHECK: add faces: {{{sides}}}"
         lines.append(f"  {name}: {_flow(spec)}{comment}")
     text = "\n".join(lines) + "\n"
     parse_varmap(text, path="<drafted variable map>")

@@ -7,7 +7,11 @@ import re
 from collections.abc import Sequence
 from pathlib import Path
 
+import numpy as np
+
 from lesprep import catalogue
+from lesprep.errors import GridError
+from lesprep.raw.grid import face_offset
 from lesprep.raw.survey.hints import (
     _EXCLUDE_LONG,
     _EXCLUDE_NAME,
@@ -17,6 +21,9 @@ from lesprep.raw.survey.hints import (
     _STANDARD,
     CANONICAL,
     MIN_SCORE,
+    OPTIONAL,
+    OPTIONAL_MIN_SCORE,
+    PROPOSED,
 )
 from lesprep.raw.survey.records import DimInfo, InspectReport, Proposal, VariableInfo
 from lesprep.raw.survey.scan import (
@@ -40,7 +47,7 @@ def _units_ok(canonical: str, units: str | None) -> bool | None:
     """True/False for (in)compatible units, None when the file has none or unparsable."""
     if units is None:
         return None
-    if canonical in ("qc", "qv") and units.strip() in ("%", "percent"):
+    if canonical in ("qc", "qv", "qi", "qr") and units.strip() in ("%", "percent"):
         return False
     try:
         found = ureg.Unit(units.strip())
@@ -104,6 +111,8 @@ def _quantity(canonical: str, v: VariableInfo, from_names: str | None) -> str:
         if "potential" in long:
             return "potential_temperature"
         return from_names or "temperature"
+    if canonical in ("qi", "qr") and "mass fraction" in long:
+        return "mass_fraction"
     return from_names or "direct"
 
 
@@ -112,7 +121,7 @@ def _score(canonical: str, v: VariableInfo) -> tuple[float, str, list[str]] | No
     if _excluded(canonical, v):
         return None
     score, from_names, reasons = _evidence(canonical, v)
-    if score < MIN_SCORE:
+    if score < (OPTIONAL_MIN_SCORE if canonical in OPTIONAL else MIN_SCORE):
         return None
     if _units_ok(canonical, v.units):
         score += 1.0
@@ -145,14 +154,30 @@ def _fits(canonical: str, axes: tuple[str, ...]) -> bool:
 _Scored = tuple[float, str, str, list[str]]  # score, raw name, quantity, reasons
 
 
+_OWN_FACE = {"w": "z_face", "u": "x_face", "v": "y_face"}
+"""The staggered dimension a velocity component is usually stored on (C-grid)."""
+
+
 def _staggered_velocity(
-    v: VariableInfo, axes: tuple[str, ...]
+    canonical: str, v: VariableInfo, axes: tuple[str, ...]
 ) -> tuple[float, str, list[str]] | None:
-    """A field in velocity units on the staggered vertical dimension is almost always w,
-    whatever its name: evidence just above :data:`MIN_SCORE` (a named candidate wins)."""
-    if "z_face" not in axes or _excluded("w", v) or not _units_ok("w", v.units):
+    """A field in velocity units on the staggered dimension of one axis alone is almost
+    always the velocity component along that axis (w on z faces, u on x faces, v on y
+    faces), whatever its name: evidence just above :data:`MIN_SCORE` (a named candidate
+    wins)."""
+    own = _OWN_FACE.get(canonical)
+    faces = {a for a in axes if a.endswith("_face")}
+    if (
+        own is None
+        or own not in faces
+        or _excluded(canonical, v)
+        or not _units_ok(canonical, v.units)
+    ):
         return None
-    reasons = [f"units {v.units!r} (a velocity) on the staggered vertical dimension"]
+    if canonical != "w" and faces != {own}:
+        return None  # on the faces of two axes: not a plain C-grid component
+    where = "vertical" if canonical == "w" else own.removesuffix("_face")
+    reasons = [f"units {v.units!r} (a velocity) on the staggered {where} dimension"]
     return MIN_SCORE + 1.0, "direct", reasons
 
 
@@ -160,15 +185,15 @@ def _candidates(
     variables: dict[str, VariableInfo], dims: dict[str, DimInfo], skip: set[str]
 ) -> dict[str, list[_Scored]]:
     """Every fitting raw variable of each canonical one, best first."""
-    scored: dict[str, list[_Scored]] = {c: [] for c in CANONICAL}
+    scored: dict[str, list[_Scored]] = {c: [] for c in PROPOSED}
     for v in variables.values():
         axes = None if v.name in skip else _axes(v, dims)
         if axes is None:
             continue
-        for c in CANONICAL:
+        for c in PROPOSED:
             found = _score(c, v) if _fits(c, axes) else None
-            if found is None and c == "w" and _fits(c, axes):
-                found = _staggered_velocity(v, axes)
+            if found is None and c in _OWN_FACE and _fits(c, axes):
+                found = _staggered_velocity(c, v, axes)
             if found is None:
                 continue
             score, quantity, reasons = found
@@ -177,20 +202,22 @@ def _candidates(
             if c == "w" and not any(a.endswith("_face") for a in axes):
                 score, reasons = score + 0.5, [*reasons, "at cell centres"]
             scored[c].append((score, v.name, quantity, reasons))
-    for c in CANONICAL:
+    for c in PROPOSED:
         scored[c].sort(key=lambda s: (-s[0], s[1]))
     return scored
 
 
 def _assign(scored: dict[str, list[_Scored]]) -> dict[str, str]:
-    """Canonical -> raw, greedily by score; each raw variable used once."""
-    pairs = sorted(
-        ((s[0], c, s[1]) for c in CANONICAL for s in scored[c]), key=lambda p: (-p[0], p[1], p[2])
-    )
+    """Canonical -> raw, greedily by score; each raw variable used once. The required
+    variables are assigned first, so an optional one never takes their raw variable."""
     chosen: dict[str, str] = {}
-    for _, c, raw in pairs:
-        if c not in chosen and raw not in chosen.values():
-            chosen[c] = raw
+    for group in (CANONICAL, OPTIONAL):
+        pairs = sorted(
+            ((s[0], c, s[1]) for c in group for s in scored[c]), key=lambda p: (-p[0], p[1], p[2])
+        )
+        for _, c, raw in pairs:
+            if c not in chosen and raw not in chosen.values():
+                chosen[c] = raw
     return chosen
 
 
@@ -220,17 +247,52 @@ def _proposal_notes(c: str, v: VariableInfo) -> list[str]:
     return notes
 
 
+def face_sides(
+    dims: dict[str, DimInfo],
+    staggered: dict[str, str],
+    coord_values: dict[str, np.ndarray],
+    notes: list[str],
+) -> dict[str, str]:
+    """Side (``low``/``high``) of each horizontal face dimension whose coordinate tells.
+
+    A face dimension with a coordinate that is not at half-cell offsets from the centres
+    gets no side and a note (:func:`lesprep.raw.grid.face_offset` says what is wrong).
+    """
+    out: dict[str, str] = {}
+    for f, c in staggered.items():
+        role = dims[f].role
+        if role not in ("x_face", "y_face"):
+            continue
+        axis = role.removesuffix("_face")
+        fc, cc = dims[f].coordinate, dims[c].coordinate
+        if fc is None or cc is None or fc not in coord_values or cc not in coord_values:
+            notes.append(
+                f"dimension {f!r} holds {axis} faces but the files do not say where they "
+                f"lie; state 'faces: {{{axis}: low}}' or 'faces: {{{axis}: high}}' on the "
+                "variables that use it -- CHECK"
+            )
+            continue
+        try:
+            out[f] = face_offset(coord_values[fc], coord_values[cc], axis_name=axis, variable=fc)
+        except GridError as exc:
+            notes.append(f"face coordinate {fc!r}: {exc.message} -- CHECK")
+    return out
+
+
 def _propose(
     variables: dict[str, VariableInfo],
     dims: dict[str, DimInfo],
     skip: set[str],
     notes: list[str],
+    sides: dict[str, str] | None = None,
 ) -> dict[str, Proposal]:
     scored = _candidates(variables, dims, skip)
     chosen = _assign(scored)
     out: dict[str, Proposal] = {}
-    for c in CANONICAL:
+    for c in PROPOSED:
         raw = chosen.get(c)
+        if raw is None and c in OPTIONAL:
+            continue  # optional: proposed only when found
         if raw is None:
             notes.append(f"no raw variable looks like {c}; fill in 'variables: {c}:' by hand")
             out[c] = Proposal(canonical=c, raw=None)
@@ -238,6 +300,11 @@ def _propose(
         score, _, quantity, reasons = next(s for s in scored[c] if s[1] == raw)
         v = variables[raw]
         notes.extend(_proposal_notes(c, v))
+        faces = {
+            dims[d].role.removesuffix("_face"): (sides or {})[d]  # type: ignore[union-attr]
+            for d in v.dims
+            if d in (sides or {})
+        }
         out[c] = Proposal(
             canonical=c,
             raw=raw,
@@ -248,6 +315,7 @@ def _propose(
             score=score,
             reasons=tuple(reasons),
             alternatives=tuple(f"{s[1]} ({s[0]:g})" for s in scored[c] if s[1] != raw),
+            faces=faces,
         )
     return out
 
@@ -314,9 +382,11 @@ def inspect_files(paths: Sequence[str | Path]) -> InspectReport:
     coords: dict[str, str] = {}
     coord_units: dict[str, str] = {}
     for d in dims.values():
-        if d.role is None or d.role in ("y_face", "x_face"):
+        if d.role is None:
             continue
         key = d.role
+        if key in ("y_face", "x_face") and d.coordinate is None:
+            continue  # the note on where the faces lie comes from face_sides
         if d.coordinate is None:
             notes.append(
                 f"dimension {d.name!r} ({d.role}) has no coordinate variable; lesprep needs "
@@ -334,7 +404,8 @@ def inspect_files(paths: Sequence[str | Path]) -> InspectReport:
         coords["z_bounds"] = str(variables[zc].bounds)
     skip = set(coords.values()) | {v.bounds for v in variables.values() if v.bounds}
     skip |= {d.coordinate for d in dims.values() if d.coordinate}
-    proposals = _propose(variables, dims, {s for s in skip if s}, notes)
+    sides = face_sides(dims, staggered, scan.coord_values, notes)
+    proposals = _propose(variables, dims, {s for s in skip if s}, notes, sides)
     return InspectReport(
         files=tuple(str(f) for f in files),
         dims=dims,

@@ -104,7 +104,8 @@ class Proposal:
     Attributes
     ----------
     canonical
-        ``qc``, ``qv``, ``T``, ``p`` or ``w``.
+        ``qc``, ``qv``, ``T``, ``p`` or ``w`` (required), or ``qi``, ``qr``, ``u`` or
+        ``v`` (optional, proposed only when found).
     raw
         Raw variable name, or None when nothing fits.
     dims
@@ -121,6 +122,9 @@ class Proposal:
         What the score is made of.
     alternatives
         Other candidates, best first, as ``"name (score)"``.
+    faces
+        For a field on horizontal faces, the side of each face axis the face coordinate
+        shows (``{"x": "low"}``); empty when not staggered or when the files do not tell.
     """
 
     canonical: str
@@ -132,6 +136,7 @@ class Proposal:
     score: float = 0.0
     reasons: tuple[str, ...] = ()
     alternatives: tuple[str, ...] = ()
+    faces: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -152,11 +157,12 @@ class InspectReport:
         Face dimension -> the centre dimension it is staggered against.
     coords
         Variable-map coordinate key (``time``, ``z``, ``z_face``, ``z_bounds``, ``y``,
-        ``x``) -> raw variable.
+        ``x``, ``y_face``, ``x_face``) -> raw variable.
     coord_units
         Coordinate key -> units to declare because the file has none.
     proposals
-        Canonical name -> :class:`Proposal`.
+        Canonical name -> :class:`Proposal`: every required variable (``raw`` None when
+        nothing fits), then the optional ones that were found.
     notes
         Things the user should check.
     """
@@ -223,12 +229,13 @@ class InspectReport:
                 + ", ".join(f"{f} holds the faces of {c}" for f, c in self.staggered.items())
             )
         lines.append("proposed mapping:")
-        for name in CANONICAL:
+        for name in (*CANONICAL, *(n for n in self.proposals if n not in CANONICAL)):
             p = self.proposals.get(name)
             if p is None or p.raw is None:
                 lines.append(f"  {name:<2} <- (nothing found)")
                 continue
             extra = f", quantity {p.quantity}" if p.quantity != "direct" else ""
+            extra += "".join(f", {a} faces on the {side} side" for a, side in p.faces.items())
             units = p.units if p.units is not None else f"(no units; assumed {p.assumed_units})"
             lines.append(
                 f"  {name:<2} <- {p.raw} ({', '.join(p.dims)}) {units}{extra}; score "

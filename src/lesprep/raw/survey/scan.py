@@ -175,6 +175,35 @@ def _brackets(faces: np.ndarray | None, centres: np.ndarray | None) -> bool | No
     return bool(np.all(f[:-1] < c) and np.all(c < f[1:]))
 
 
+def _half_cell_apart(a: np.ndarray | None, b: np.ndarray | None) -> bool:
+    """Same size, uniform, same spacing and offset by half a cell (1 % of dx)."""
+    if a is None or b is None or a.size != b.size or a.size < 2:
+        return False
+    da, db = np.diff(a), np.diff(b)
+    dx = float(np.mean(da))
+    tol = 0.01 * abs(dx)
+    return bool(
+        dx > 0
+        and np.all(np.abs(da - dx) <= tol)
+        and np.all(np.abs(db - dx) <= tol)
+        and abs(abs(float(b[0] - a[0])) - 0.5 * dx) <= tol
+    )
+
+
+def _periodic_faces(
+    group: list[str], coords: dict[str, str | None], scan: Scan, used: dict[str, int]
+) -> list[tuple[str, str]]:
+    """(centres, faces) for two horizontal dims of one size half a cell apart: n faces of
+    a periodic axis. The dim more fields use holds the centres; a tie decides nothing."""
+    if len(group) != 2:
+        return []
+    a, b = group
+    va, vb = (scan.coord_values.get(coords[d] or "") for d in (a, b))
+    if not _half_cell_apart(va, vb) or used.get(a, 0) == used.get(b, 0):
+        return []
+    return [(a, b)] if used.get(a, 0) > used.get(b, 0) else [(b, a)]
+
+
 def _usage(scan: Scan) -> dict[str, int]:
     used: dict[str, int] = {}
     for v in scan.vars.values():
@@ -200,6 +229,8 @@ def dimension_roles(
         if len(group) < 2:
             continue
         pairs = [(c, f) for c in group for f in group if sizes[f] == sizes[c] + 1]
+        if axis in ("y", "x") and not pairs:
+            pairs = _periodic_faces(group, coords, scan, used)
         if axis != "time" and len(pairs) == 1:
             c, f = pairs[0]
             role[f] = f"{axis}_face"
@@ -212,7 +243,13 @@ def dimension_roles(
                 False: "; CHECK: its points do not bracket the centres",
                 None: "",
             }[check]
-            reason[f] += f"; one more point than {c} ({sizes[f]} vs {sizes[c]}): faces{tail}"
+            if sizes[f] == sizes[c] + 1:
+                reason[f] += f"; one more point than {c} ({sizes[f]} vs {sizes[c]}): faces{tail}"
+            else:
+                reason[f] += (
+                    f"; as many points as {c} ({sizes[f]}), half a cell off, used by fewer "
+                    "fields: the faces of a periodic axis"
+                )
             rest = [d for d in group if d not in (c, f)]
         else:
             keep = max(group, key=lambda d: (used.get(d, 0), -group.index(d)))

@@ -49,7 +49,7 @@ Conventions
 
 Constants (SI; standard values quoted from memory, matching those used by MetPy):
 ``Rd = 287.04749`` J kg-1 K-1 (R* / M_d, M_d = 28.96546 g mol-1), ``Rv = 461.52311``
-J kg-1 K-1 (M_w = 18.01528 g mol-1), ``cp = Rd / (2/7)``, ``Lv = 2.501e6`` J kg-1
+J kg-1 K-1 (M_w = 18.015268 g mol-1), ``cp = Rd / (2/7)``, ``Lv = 2.501e6`` J kg-1
 (latent heat of vaporisation at 0 degC, held constant), ``Ls = 2.834e6`` J kg-1 (latent
 heat of sublimation at 0 degC, held constant; from memory, about ``Lv`` plus a latent
 heat of fusion of 3.33e5 J kg-1).

@@ -45,9 +45,11 @@ Conventions
   the exact tangent of the ``q_s`` the rest of lesprep uses.
 * ``s`` is positive when supersaturated. ``sigma_s**2`` carries no factor 1/2 (some
   authors define the variance of ``s`` with one); it is the plain variance of ``s_i``.
-* ``sigma_s**2`` that comes out negative by round-off (at most 1e-10 of the sum of the
-  magnitudes of its terms) is taken as 0; more negative, or a negative input variance,
-  means the statistics are not a covariance, and gives NaN.
+* The second moments must be a covariance: ``var(q_t) >= 0``, ``var(theta_l) >= 0`` and
+  ``cov**2 <= var(q_t) var(theta_l) * (1 + 1e-6)`` (the slack admits round-off, also of
+  statistics accumulated in float32); otherwise ``sigma_s`` and the cloud fraction are NaN.
+  ``sigma_s**2`` is then non-negative up to round-off, and a round-off negative is taken
+  as 0.
 * ``sigma_s == 0`` (no sub-grid variability) is the all-or-nothing limit: C = 1 where
   ``s > 0``, C = 0 where ``s <= 0``. At ``s == 0`` the value 0 is chosen to agree with
   :func:`lesprep.thermo.saturation_adjustment`, which forms cloud only where
@@ -296,9 +298,9 @@ def saturation_excess_std(
     """Standard deviation of the saturation excess, ``sigma_s``, kg kg-1.
 
     ``sigma_s**2 = a**2 var(q_t) - 2 a b cov(q_t, theta_l) + b**2 var(theta_l)``, with no
-    factor 1/2. Round-off negatives become 0; statistics that are not a covariance
-    (a negative variance, or ``sigma_s**2`` below ``-1e-10`` times the sum of the
-    magnitudes of its terms) give NaN.
+    factor 1/2. Statistics that are not a covariance (a negative variance, or
+    ``cov**2 > var(q_t) var(theta_l) (1 + 1e-6)``) give NaN; a round-off negative
+    ``sigma_s**2`` becomes 0.
 
     Parameters
     ----------
@@ -321,12 +323,8 @@ def saturation_excess_std(
     vq = np.asarray(var_qt, dtype=np.float64)
     vt = np.asarray(var_thl, dtype=np.float64)
     cv = np.asarray(cov_qt_thl, dtype=np.float64)
-    t1 = a * a * vq
-    t2 = 2.0 * a * b * cv
-    t3 = b * b * vt
-    var_s = t1 - t2 + t3
-    scale = np.abs(t1) + np.abs(t2) + np.abs(t3)
-    invalid = (vq < 0.0) | (vt < 0.0) | (var_s < -1e-10 * scale)
+    var_s = a * a * vq - 2.0 * a * b * cv + b * b * vt
+    invalid = (vq < 0.0) | (vt < 0.0) | (cv * cv > vq * vt * (1.0 + 1e-6))
     return np.where(invalid, np.nan, np.sqrt(np.maximum(var_s, 0.0)))
 
 

@@ -1,11 +1,30 @@
-"""Classical relative-humidity cloud-fraction scheme, the baseline of the report.
+"""Diagnostic cloud-fraction schemes: the baselines of the report.
 
-The baseline is the diagnostic scheme of Sundqvist et al. (1989): cloud fraction grows
-from zero at a critical relative humidity ``RHc`` to one at saturation,
+Relative-humidity scheme
+------------------------
+The diagnostic scheme of Sundqvist et al. (1989): cloud fraction grows from zero at a
+critical relative humidity ``RHc`` to one at saturation,
 
     C = 1 - sqrt((1 - RH) / (1 - RHc))   for RH > RHc,   C = 0 otherwise,
 
 capped to [0, 1], so supersaturated air (RH >= 1) gives C = 1.
+
+Statistical (Gaussian) scheme
+-----------------------------
+After Sommeria and Deardorff (1977) and Mellor (1977): within a grid cell, total water
+``q_t`` and liquid-water potential temperature ``theta_l`` fluctuate about their means;
+linearizing the saturation mixing ratio about the cell's liquid-water temperature gives a
+saturation excess ``s`` that is Gaussian if ``(q_t, theta_l)`` are jointly Gaussian, and
+the cloud fraction is the probability that ``s > 0``:
+
+    T_l    = Pi(p) * mean(theta_l)                     liquid-water temperature
+    q_s    = q_s(p, T_l),   q_s' = dq_s/dT at (p, T_l)
+    a      = 1 / (1 + (Lv / cp) q_s')
+    b      = a * Pi(p) * q_s'          (Pi = T_l / mean(theta_l))
+    s      = a * (mean(q_t) - q_s)                       mean saturation excess
+    s_i    = s + a q_t' - b theta_l'                     excess of one realisation
+    sigma_s**2 = a**2 var(q_t) - 2 a b cov(q_t, theta_l) + b**2 var(theta_l)
+    C      = 0.5 * (1 + erf(Q / sqrt(2))),   Q = s / sigma_s
 
 Conventions
 -----------
@@ -14,20 +33,54 @@ Conventions
   roughly between 0.6 and 0.9 that often depend on height and on grid resolution (from
   memory). ``rh_critical`` must lie in [0, 1).
 * NaN relative humidity gives NaN cloud fraction.
+* Gaussian scheme: ``q_t`` is the total non-precipitating water mixing ratio (kg kg-1, per
+  kg of dry air), ``theta_l`` the first-order liquid-water potential temperature of
+  :mod:`lesprep.thermo` (so ``Pi * theta_l`` is exactly the liquid-water temperature),
+  ``p`` in Pa, variances and the covariance in the squared / product units (kg2 kg-2,
+  K2, kg kg-1 K). Warm phase only: saturation over liquid (Bolton 1980) at all
+  temperatures, ``Lv`` constant.
+* ``q_s'`` is the analytic derivative of Bolton's ``e_s`` carried through
+  ``q_s = eps e_s / (p - e_s)`` (:func:`lesprep.thermo.saturation_mixing_ratio_slope`),
+  not the Clausius-Clapeyron estimate ``Lv q_s / (Rv T**2)``, so that the linearization is
+  the exact tangent of the ``q_s`` the rest of lesprep uses.
+* ``s`` is positive when supersaturated. ``sigma_s**2`` carries no factor 1/2 (some
+  authors define the variance of ``s`` with one); it is the plain variance of ``s_i``.
+* The second moments must be a covariance: ``var(q_t) >= 0``, ``var(theta_l) >= 0`` and
+  ``cov**2 <= var(q_t) var(theta_l) * (1 + 1e-6)`` (the slack admits round-off, also of
+  statistics accumulated in float32); otherwise ``sigma_s`` and the cloud fraction are NaN.
+  ``sigma_s**2`` is then non-negative up to round-off, and a round-off negative is taken
+  as 0.
+* ``sigma_s == 0`` (no sub-grid variability) is the all-or-nothing limit: C = 1 where
+  ``s > 0``, C = 0 where ``s <= 0``. At ``s == 0`` the value 0 is chosen to agree with
+  :func:`lesprep.thermo.saturation_adjustment`, which forms cloud only where
+  ``q_t > q_s`` strictly; ``s == 0`` exactly is a set of measure zero.
+* The erf formula is evaluated as ``0.5 * erfc(-Q / sqrt(2))``, the same function, which
+  keeps full relative precision for small fractions. NaN in any input gives NaN.
+* All arithmetic in float64.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any, overload
 
 import numpy as np
 import xarray as xr
 from numpy.typing import ArrayLike, NDArray
+from scipy.special import erfc
 
+from lesprep import thermo
 from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from lesprep.errors import ConfigError, GridError
 
-__all__ = ["sundqvist_cloud_fraction"]
+__all__ = [
+    "GaussianLinearization",
+    "gaussian_cloud_fraction",
+    "gaussian_cloud_fraction_from_moments",
+    "gaussian_linearization",
+    "saturation_excess_std",
+    "sundqvist_cloud_fraction",
+]
 
 CLOUD_FRACTION_ATTRS: dict[str, str] = {
     "standard_name": "cloud_area_fraction_in_atmosphere_layer",
@@ -159,3 +212,188 @@ def sundqvist_cloud_fraction(
         fraction.attrs = dict(CLOUD_FRACTION_ATTRS)
         fraction.attrs["rh_critical"] = rhc
     return fraction
+
+
+@dataclass(frozen=True)
+class GaussianLinearization:
+    """Linearization of the saturation condition about a cell's mean state.
+
+    All arrays are float64 of the broadcast shape of the inputs of
+    :func:`gaussian_linearization`; the equations are in the module docstring.
+
+    Attributes
+    ----------
+    liquid_water_temperature
+        ``T_l = Pi * mean(theta_l)``, K.
+    saturation_mixing_ratio
+        ``q_s(p, T_l)`` over liquid, kg kg-1.
+    dqs_dT
+        ``dq_s/dT`` at ``(p, T_l)``, kg kg-1 K-1.
+    a
+        ``1 / (1 + (Lv / cp) dq_s/dT)``, dimensionless.
+    b
+        ``a * Pi * dq_s/dT``, kg kg-1 K-1.
+    s
+        Mean saturation excess ``a * (mean(q_t) - q_s)``, kg kg-1, positive when
+        supersaturated.
+    """
+
+    liquid_water_temperature: NDArray[np.float64]
+    saturation_mixing_ratio: NDArray[np.float64]
+    dqs_dT: NDArray[np.float64]
+    a: NDArray[np.float64]
+    b: NDArray[np.float64]
+    s: NDArray[np.float64]
+
+
+def gaussian_linearization(
+    qt_mean: ArrayLike, thl_mean: ArrayLike, p_mean: ArrayLike
+) -> GaussianLinearization:
+    """Coefficients ``a``, ``b`` and the mean saturation excess ``s`` of a grid cell.
+
+    Sommeria and Deardorff (1977); Mellor (1977). See the module docstring for the
+    equations and conventions.
+
+    Parameters
+    ----------
+    qt_mean
+        Cell-mean total water mixing ratio, kg kg-1.
+    thl_mean
+        Cell-mean liquid-water potential temperature, K.
+    p_mean
+        Cell-mean pressure, Pa.
+
+    Returns
+    -------
+    GaussianLinearization
+        ``T_l``, ``q_s``, ``dq_s/dT``, ``a``, ``b`` and ``s`` (float64 arrays).
+    """
+    qt = np.asarray(qt_mean, dtype=np.float64)
+    thl = np.asarray(thl_mean, dtype=np.float64)
+    p = np.asarray(p_mean, dtype=np.float64)
+    qt, thl, p = np.broadcast_arrays(qt, thl, p)
+    pi = thermo.exner(p)
+    tl = thl * pi
+    qs = thermo.saturation_mixing_ratio(p, tl)
+    dqs = thermo.saturation_mixing_ratio_slope(p, tl)
+    a = 1.0 / (1.0 + (thermo.LV / thermo.CP) * dqs)
+    b = a * pi * dqs
+    return GaussianLinearization(
+        liquid_water_temperature=tl,
+        saturation_mixing_ratio=qs,
+        dqs_dT=dqs,
+        a=a,
+        b=b,
+        s=a * (qt - qs),
+    )
+
+
+def saturation_excess_std(
+    a: ArrayLike,
+    b: ArrayLike,
+    var_qt: ArrayLike,
+    var_thl: ArrayLike,
+    cov_qt_thl: ArrayLike,
+) -> NDArray[np.float64]:
+    """Standard deviation of the saturation excess, ``sigma_s``, kg kg-1.
+
+    ``sigma_s**2 = a**2 var(q_t) - 2 a b cov(q_t, theta_l) + b**2 var(theta_l)``, with no
+    factor 1/2. Statistics that are not a covariance (a negative variance, or
+    ``cov**2 > var(q_t) var(theta_l) (1 + 1e-6)``) give NaN; a round-off negative
+    ``sigma_s**2`` becomes 0.
+
+    Parameters
+    ----------
+    a, b
+        Coefficients from :func:`gaussian_linearization` (dimensionless; kg kg-1 K-1).
+    var_qt
+        Variance of total water in the cell, kg2 kg-2.
+    var_thl
+        Variance of theta_l in the cell, K2.
+    cov_qt_thl
+        Covariance of q_t and theta_l in the cell, kg kg-1 K.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``sigma_s`` (float64, >= 0 or NaN).
+    """
+    a = np.asarray(a, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    vq = np.asarray(var_qt, dtype=np.float64)
+    vt = np.asarray(var_thl, dtype=np.float64)
+    cv = np.asarray(cov_qt_thl, dtype=np.float64)
+    var_s = a * a * vq - 2.0 * a * b * cv + b * b * vt
+    invalid = (vq < 0.0) | (vt < 0.0) | (cv * cv > vq * vt * (1.0 + 1e-6))
+    return np.where(invalid, np.nan, np.sqrt(np.maximum(var_s, 0.0)))
+
+
+def gaussian_cloud_fraction(s: ArrayLike, sigma_s: ArrayLike) -> NDArray[np.float64]:
+    """Cloud fraction of a Gaussian saturation excess, ``0.5 * (1 + erf(s / (sqrt(2) sigma_s)))``.
+
+    Parameters
+    ----------
+    s
+        Mean saturation excess, kg kg-1 (positive when supersaturated).
+    sigma_s
+        Its standard deviation, kg kg-1, >= 0. At 0 the result is 1 where ``s > 0`` and 0
+        where ``s <= 0`` (see the module's Conventions); negative gives NaN.
+
+    Returns
+    -------
+    numpy.ndarray
+        Cloud fraction in [0, 1] (float64, broadcast shape); NaN where an input is NaN.
+
+    Examples
+    --------
+    >>> gaussian_cloud_fraction([0.0, 1e-4, -1e-4, 1e-4], [1e-4, 1e-4, 0.0, 0.0]).round(6)
+    array([0.5     , 0.841345, 0.      , 1.      ])
+    """
+    s_arr = np.asarray(s, dtype=np.float64)
+    sig = np.asarray(sigma_s, dtype=np.float64)
+    s_arr, sig = np.broadcast_arrays(s_arr, sig)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = s_arr / sig
+    fraction = 0.5 * erfc(-q / np.sqrt(2.0))
+    # sigma_s == 0: s/0 is +-inf (erfc handles it) or NaN at s == 0, set to 0 here
+    fraction = np.where((sig == 0.0) & (s_arr == 0.0), 0.0, fraction)
+    return np.where(sig < 0.0, np.nan, fraction)
+
+
+def gaussian_cloud_fraction_from_moments(
+    qt_mean: ArrayLike,
+    thl_mean: ArrayLike,
+    p_mean: ArrayLike,
+    var_qt: ArrayLike,
+    var_thl: ArrayLike,
+    cov_qt_thl: ArrayLike,
+) -> NDArray[np.float64]:
+    """Gaussian (statistical) cloud fraction from a cell's first and second moments.
+
+    :func:`gaussian_linearization`, :func:`saturation_excess_std` and
+    :func:`gaussian_cloud_fraction` in one call; all inputs broadcast against each other.
+
+    Parameters
+    ----------
+    qt_mean
+        Mean total water mixing ratio, kg kg-1.
+    thl_mean
+        Mean liquid-water potential temperature, K.
+    p_mean
+        Mean pressure, Pa.
+    var_qt
+        Variance of q_t, kg2 kg-2.
+    var_thl
+        Variance of theta_l, K2.
+    cov_qt_thl
+        Covariance of q_t and theta_l, kg kg-1 K.
+
+    Returns
+    -------
+    numpy.ndarray
+        Cloud fraction in [0, 1] (float64); NaN where any input is NaN or the second
+        moments are not a covariance.
+    """
+    lin = gaussian_linearization(qt_mean, thl_mean, p_mean)
+    sigma = saturation_excess_std(lin.a, lin.b, var_qt, var_thl, cov_qt_thl)
+    return gaussian_cloud_fraction(lin.s, sigma)

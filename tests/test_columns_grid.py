@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from metpy.calc import density
+from metpy.calc import density, vapor_pressure
 from metpy.units import units
 
 from lesprep.canonical.derived import cell_diagnostics
@@ -27,13 +27,15 @@ def test_lwp_of_adiabatic_linear_profile() -> None:
     # LWP = rho * G * (zt - zb)**2 / 2 (closed form); cloud base/top fall on faces and
     # centres are midway between faces, so the midpoint rule is exact.
     # The ingest's fused pass is checked, with uniform p, T, qv so the density is one
-    # number, taken from MetPy (density of moist air from p, T and the mixing ratio).
+    # number: the dry-air density (a mixing ratio is per kg of dry air), from MetPy as the
+    # density of the dry air's partial pressure p - e.
     faces = stretched_faces()
     z = 0.5 * (faces[1:] + faces[:-1])
     zb, zt = faces[20], faces[40]
     gamma = 2.0e-6  # kg kg-1 per m (order of the adiabatic rate)
     p, t, r = 90000.0, 285.0, 0.008
-    rho = density(p * units.Pa, t * units.K, r * units("kg/kg")).to("kg/m^3").magnitude
+    e = vapor_pressure(p * units.Pa, r * units("kg/kg"))
+    rho = density(p * units.Pa - e, t * units.K, 0 * units("kg/kg")).to("kg/m^3").magnitude
     qc = np.where((z > zb) & (z < zt), gamma * (z - zb), 0.0)[:, None, None]
     full = np.ones_like(qc)
     diag = cell_diagnostics(

@@ -364,8 +364,13 @@ def test_beta_layout(case: str, archives: Path) -> None:
                 assert t[0] == pytest.approx(0.25)
                 assert t[i] == pytest.approx(0.25 + i * spec.interval_s / 3600.0)
                 values[name] = var[i].astype(np.float64).transpose(2, 1, 0)  # -> (z, y, x)
-        q_ref = mpcalc.specific_humidity_from_mixing_ratio(truth["qv"] * units("kg/kg"))
-        np.testing.assert_allclose(values["sphum"], q_ref.magnitude, rtol=1e-6)
+        # the mass fraction of vapour in moist air holding cloud water too (by definition,
+        # q_v = r_v / (1 + r_v + r_c)); without cloud water it is MetPy's specific humidity
+        q_ref = truth["qv"] / (1.0 + truth["qv"] + truth["qc"])
+        np.testing.assert_allclose(values["sphum"], q_ref, rtol=1e-6)
+        clear = truth["qc"] == 0
+        q_metpy = mpcalc.specific_humidity_from_mixing_ratio(truth["qv"] * units("kg/kg"))
+        np.testing.assert_allclose(values["sphum"][clear], q_metpy.magnitude[clear], rtol=1e-6)
         theta_ref = mpcalc.potential_temperature(
             pref[:, None, None] * units.Pa, truth["T"] * units.K
         )

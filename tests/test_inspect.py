@@ -26,7 +26,10 @@ from settings_helpers import ingest_settings
 REPO = Path(__file__).resolve().parents[1]
 SIZE = {"nx": 16, "ny": 16, "nz": 16, "ntimes": 4}
 CASES = {"alpha": "sc-ostra-01", "beta": "sc-ostra-02"}
-SETTINGS = ingest_settings(spinup="1 h", cloud_threshold="1e-5 kg/kg", )
+SETTINGS = ingest_settings(
+    spinup="1 h",
+    cloud_threshold="1e-5 kg/kg",
+)
 
 
 @pytest.fixture(scope="module")
@@ -260,7 +263,8 @@ def test_unseen_layout_by_cf_attributes(tmp_path):
     draft = tmp_path / "draft.yaml"
     draft.write_text(draft_varmap(report))
     settings = ingest_settings(
-        spinup="0 s", cloud_threshold="1e-5 kg/kg",
+        spinup="0 s",
+        cloud_threshold="1e-5 kg/kg",
     )
     kw = {"case": "invented-1", "raw": [f], "settings": settings}
     a = ingest_case(varmap=draft, out=tmp_path / "a.zarr", **kw)

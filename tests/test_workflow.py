@@ -157,5 +157,12 @@ def test_report_html(project):
     for part in ("timeseries.png", "cf_vs_rh.png", "scenes.tsv", "baseline.tsv", "Cases"):
         assert part in html
     base = (project.root / "results/baseline.tsv").read_text().splitlines()
-    assert base[0].split("\t") == ["split", "scale", "rmse", "bias", "mae", "n"]
-    assert len(base) == 1 + 2 * 3  # train and test at three scales
+    head = ["split", "scale", "baseline", "target", "rmse", "bias", "mae", "n"]
+    assert base[0].split("\t") == head
+    assert len(base) == 1 + 2 * 3 * 3  # train and test at three scales, three baseline rows
+    rows = [dict(zip(head, line.split("\t"), strict=True)) for line in base[1:]]
+    assert {(r["baseline"], r["target"]) for r in rows} == {
+        ("sundqvist", "cloud_fraction"),
+        ("gaussian", "cloud_fraction"),
+        ("gaussian", "cloud_fraction_zero"),
+    }

@@ -17,7 +17,10 @@ An entry (:class:`Variable`) says everything the stages need to know about a var
 * whether it is a water species (``water``: its mass counts in total water and in the
   exact conversion between mass fractions and mixing ratios) and whether it is
   precipitating (``precipitating``: rain, kept out of total water ``qt``);
-* for a derived variable, the variables it is computed from and its formula;
+* for a derived variable, the variables it is computed from and its formula, and whether
+  it is computed by coarsening from each slab of fine fields (``per_slab``: the conserved
+  and buoyancy variables of :mod:`lesprep.scales.conserved`, never stored on the fine
+  grid) rather than stored by ingest;
 * whether it may get sub-grid moments and fine patches at coarse scales.
 
 The units of a variance are the square of the field's units, those of a covariance the
@@ -108,6 +111,7 @@ class Variable:
     required: bool = False
     water: bool = False
     precipitating: bool = False
+    per_slab: bool = False
     extra_attrs: Mapping[str, str] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -292,6 +296,43 @@ BUILTIN: tuple[Variable, ...] = (
         derived_from=("p", "T", "qv"),
     ),
     Variable(
+        name="qt",
+        kind="derived",
+        units=_KG,
+        long_name="total water mixing ratio qv + qc (+ qi): vapour and cloud condensate, "
+        "precipitating water (qr) excluded",
+        label="total water mixing ratio",
+        derived_from=("qv", "qc"),
+        per_slab=True,
+    ),
+    Variable(
+        name="theta_l",
+        kind="derived",
+        units="K",
+        long_name="liquid water potential temperature (Betts 1973, warm phase)",
+        label="liquid water potential temperature",
+        derived_from=("p", "T", "qc"),
+        per_slab=True,
+    ),
+    Variable(
+        name="theta_il",
+        kind="derived",
+        units="K",
+        long_name="liquid-ice potential temperature (Tripoli and Cotton 1981)",
+        label="liquid-ice potential temperature",
+        derived_from=("p", "T", "qc", "qi"),
+        per_slab=True,
+    ),
+    Variable(
+        name="theta_v",
+        kind="derived",
+        units="K",
+        long_name="virtual potential temperature with condensate loading",
+        label="virtual potential temperature",
+        derived_from=("p", "T", "qv", "qc"),
+        per_slab=True,
+    ),
+    Variable(
         name="cloud_mask",
         kind="derived",
         units="1",
@@ -448,19 +489,20 @@ def check_names(names: list[str] | tuple[str, ...], *, what: str, use: str) -> t
     use
         ``"moments"`` or ``"patches"``: the capability the names must have.
 
+    A name the catalogue does not know passes: a variable map may add it, and the job
+    that uses it checks that the case's store has it.
+
     Raises
     ------
     ConfigError
-        An unknown name, or one that may not get ``use``.
+        A name that is not an identifier, or a known one that may not get ``use``.
     """
     for n in names:
-        var = get(n) if known(n) else None
-        if var is None:
-            raise ConfigError(
-                f"{what} lists {n!r}, which the variable catalogue does not know; "
-                f"known: {sorted(_REGISTRY)}"
-            )
-        if not getattr(var, use):
+        if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", str(n)):
+            raise ConfigError(f"{what} lists {n!r}, which is not a variable name")
+        if not known(n):
+            continue  # a variable a variable map adds: checked against the store when used
+        if not getattr(get(n), use):
             allowed = sorted(v.name for v in variables() if getattr(v, use))
             raise ConfigError(f"{what} lists {n!r}, which cannot get {use}; allowed: {allowed}")
     return tuple(names)

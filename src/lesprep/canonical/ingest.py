@@ -20,6 +20,11 @@ import numpy as np
 from lesprep import catalogue, provenance, thermo
 from lesprep.canonical.derived import cell_diagnostics
 from lesprep.canonical.mask import describe_threshold
+from lesprep.canonical.nearconstant import (
+    deviation_layout,
+    first_step,
+    level_deviation,
+)
 from lesprep.canonical.settings import IngestSettings
 from lesprep.errors import TimeAxisError, UnitError
 from lesprep.raw.archive import ArchiveIndex, index_archive, read_field, resolve_files
@@ -29,8 +34,9 @@ from lesprep.raw.checks import (
     value_extent,
 )
 from lesprep.raw.grid import (
-    destagger_periodic,
+    destagger_horizontal,
     destagger_vertical,
+    face_side,
     horizontal_spacing,
     layer_thickness,
     vertical_faces,
@@ -43,26 +49,6 @@ log = logging.getLogger(__name__)
 
 DERIVED_3D = ("rh", "cloud_mask")
 """Fine-grid derived fields of the fused per-cell pass stored with dims (time, z, y, x)."""
-
-
-def _deviation(
-    values: np.ndarray,
-    *,
-    faces: np.ndarray,
-    z: np.ndarray,
-    quantity: Any,
-    fields: dict[str, np.ndarray],
-    dtype: np.dtype,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Deviation from the per-level horizontal mean (store dtype) and that mean (float64),
-    from canonical-axis values converted in float64 (destaggered and quantity-converted in
-    float64 here)."""
-    if values.shape[0] == faces.size:  # on z faces
-        values = destagger_vertical(np.ascontiguousarray(values), faces, z, axis=0)
-    if quantity.convert is not None:
-        values = np.asarray(quantity.convert(values, fields), dtype=np.float64)
-    ref = values.mean(axis=(1, 2))
-    return (values - ref[:, None, None]).astype(dtype), ref
 
 
 def mapped_names(vm: VariableMap) -> tuple[str, ...]:
@@ -80,94 +66,6 @@ def fields_3d(vm: VariableMap) -> tuple[str, ...]:
 def fields_2d(vm: VariableMap) -> tuple[str, ...]:
     """Mapped (time, y, x) fields of a case (surface fields)."""
     return tuple(n for n in mapped_names(vm) if n != "p" and vm.is_2d(n))
-
-
-def _first_step(
-    cat: ArchiveIndex,
-    keep: np.ndarray,
-    step_fields: Any,
-    clipped: _ClipLog,
-) -> tuple[dict[str, np.ndarray], frozenset[str], dict[str, list[int]]]:
-    """The first kept time's fields, the variables stored with a deviation field, and the
-    quantized levels found (:func:`quantized_levels`) per variable.
-
-    The first kept output time decides: a variable with quantized levels there gets
-    ``<v>_dev`` and ``<v>_ref`` for the whole run (a store's arrays are fixed when it is
-    created). Variables on horizontally staggered grids are only reported.
-    """
-    n_clipped = len(clipped.records)
-    first = step_fields(int(keep[0]), frozenset())
-    vm = cat.varmap
-    quantized: dict[str, list[int]] = {}
-    for name in mapped_names(vm):
-        if name == "p" or first[name].ndim != 3:
-            continue
-        levels = quantized_levels(first[name])
-        if levels.size:
-            quantized[name] = [int(k) for k in levels]
-    eligible = {
-        n
-        for n in quantized
-        if not any(a in ("y_face", "x_face") for a in vm.variables[n].axes(vm.dims))
-    }
-    for name, levels in quantized.items():
-        shown = ", ".join(str(k) for k in levels[:12]) + (" ..." if len(levels) > 12 else "")
-        remedy = (
-            f"stored also as {name}_dev (deviation from the level mean, computed before "
-            f"rounding) and {name}_ref, from which coarsening takes its sub-grid statistics"
-            if name in eligible
-            else "no remedy for a horizontally staggered field; its sub-grid statistics on "
-            "these levels describe the rounding"
-        )
-        log.warning(
-            "case %s: %s spans fewer than %d float32 steps on %d level(s) (indices %s) at "
-            "the first kept time; %s",
-            cat.case,
-            name,
-            QUANTUM_STEPS,
-            len(levels),
-            shown,
-            remedy,
-        )
-    deviations = frozenset(eligible)
-    if deviations:
-        del clipped.records[n_clipped:]
-        first = step_fields(int(keep[0]), deviations)
-    return first, deviations, quantized
-
-
-def _deviation_layout(
-    deviations: frozenset[str], nt: int, layout: dict[str, ArraySpec], dtype: np.dtype
-) -> dict[str, ArraySpec]:
-    """Arrays of the deviation fields: ``<v>_dev`` like ``<v>``, ``<v>_ref`` (time, z)."""
-    out: dict[str, ArraySpec] = {}
-    for name in sorted(deviations):
-        base = layout[name]
-        var = catalogue.get(name)
-        attrs = {
-            "long_name": f"{var.label} minus its horizontal mean on the level ({name}_ref), "
-            "computed in float64 before rounding",
-            "units": var.units,
-            "comment": f"{name} = {name}_ref + {name}_dev; kept because {name} is nearly "
-            "constant on some levels, where its float32 values are quantized",
-        }
-        if var.units == "K":
-            attrs["units_metadata"] = "temperature: difference"
-        out[f"{name}_dev"] = ArraySpec(
-            dims=base.dims, shape=base.shape, chunks=base.chunks, dtype=dtype, attrs=attrs
-        )
-        nz = base.shape[1]
-        out[f"{name}_ref"] = ArraySpec(
-            dims=("time", "z"),
-            shape=(nt, nz),
-            chunks=(1, nz),
-            dtype="float64",
-            attrs={
-                "long_name": f"horizontal mean of {var.label} on each level (float64)",
-                "units": var.units,
-            },
-        )
-    return out
 
 
 def warm_kernels(dtype: np.dtype) -> None:
@@ -286,33 +184,6 @@ class _ClipLog:
             )
 
 
-QUANTUM_STEPS = 16
-"""A level whose values span fewer float32 steps than this is quantized (see
-:func:`quantized_levels`)."""
-
-
-def quantized_levels(values: np.ndarray) -> np.ndarray:
-    """Levels of a stored ``(z, y, x)`` field whose spread is within a few float32 steps.
-
-    A level is quantized when ``max - min < QUANTUM_STEPS * spacing(max |v|)`` in float32
-    and the level is not all zero: its sub-grid variance and skewness would then describe
-    the rounding, not the field (a float32 step is 3e-5 K at 290 K). Levels that are
-    exactly zero everywhere (clear air in ``qc``) are not quantized, they are zero.
-
-    Examples
-    --------
-    >>> a = np.full((2, 4, 4), 290.0, dtype=np.float32)
-    >>> a[1] += np.linspace(0, 1, 16, dtype=np.float32).reshape(4, 4)
-    >>> quantized_levels(a).tolist()
-    [0]
-    """
-    lo = values.min(axis=(1, 2)).astype(np.float64)
-    hi = values.max(axis=(1, 2)).astype(np.float64)
-    top = np.maximum(np.abs(lo), np.abs(hi))
-    step = np.spacing(top.astype(np.float32)).astype(np.float64)
-    return np.nonzero((hi - lo < QUANTUM_STEPS * step) & (top > 0))[0]
-
-
 def _quantity(
     vm: VariableMap, name: str, units: str | None, *, case: str, file: str
 ) -> catalogue.Quantity:
@@ -337,8 +208,23 @@ def _quantity(
 def _destagger_horizontal(
     cat: ArchiveIndex, name: str, values: np.ndarray, *, axis: int, face_axis: str, file: str
 ) -> np.ndarray:
-    """Centre values of a field on the faces of a periodic horizontal axis."""
-    return destagger_periodic(values, axis=axis)
+    """Centre values of a field on the faces of a periodic horizontal axis: the side the
+    faces lie on comes from the face coordinate or the variable map's ``faces:``
+    (:func:`lesprep.raw.grid.face_side`), never from a guess."""
+    spec = cat.varmap.variables[name]
+    base = face_axis.removesuffix("_face")
+    centres = getattr(cat.grid, base)
+    where = {"variable": spec.raw, "file": file, "case": cat.case}
+    side = face_side(
+        stated=spec.faces.get(base),
+        face_coord=getattr(cat.grid, face_axis),
+        centre_coord=centres,
+        axis_name=base,
+        **where,
+    )
+    return destagger_horizontal(
+        values, axis=axis, faces=side, n_centres=centres.size, axis_name=base, **where
+    )
 
 
 def _to_canonical_axes(values: np.ndarray, axes: tuple[str, ...]) -> tuple[np.ndarray, list[str]]:
@@ -363,7 +249,8 @@ def canonical_step(
     For each variable in ``deviations`` two more arrays come back: ``<v>_ref``, the
     horizontal mean of every level computed in float64 before rounding, and ``<v>_dev``,
     the float64 value minus that reference, rounded once to the store dtype: the sub-grid
-    spread of a near-constant field survives in it (:func:`quantized_levels`).
+    spread of a near-constant field survives in it (see
+    :func:`lesprep.canonical.nearconstant.quantized_levels`).
 
     Returns ``qc, qv, T, w, rh`` (z, y, x), ``cloud_mask`` (int8 0/1), ``lwp`` (y, x,
     float64) and ``p`` as (z, y, x) or, for a profile, (z,). Every value is computed in
@@ -420,7 +307,7 @@ def canonical_step(
                     v64 = destagger_vertical(np.ascontiguousarray(v64), faces, z, axis=0)
                 exact[name] = v64
             else:
-                out[f"{name}_dev"], out[f"{name}_ref"] = _deviation(
+                out[f"{name}_dev"], out[f"{name}_ref"] = level_deviation(
                     v64, faces=faces, z=z, quantity=quantity, fields=out, dtype=dtype
                 )
             del v64
@@ -713,10 +600,12 @@ def ingest_case(
                 deviations=deviations,
             )
 
-        first, deviations, quantized = _first_step(cat, keep, step_fields, clipped)
+        first, deviations, quantized = first_step(
+            cat, keep, step_fields, clipped, mapped_names(cat.varmap)
+        )
         units = {c.variable: c.to_units for c in conversions.items.values()}
         layout = _layout(cat, keep, faces, settings, p_profile, units)
-        layout.update(_deviation_layout(deviations, keep.size, layout, dtype))
+        layout.update(deviation_layout(deviations, keep.size, layout, dtype))
         out = Path(out)
         with provenance.FileRecords(files) as hashes, atomic_path(out) as tmp:
             group = create_store(tmp, layout, codecs=compressors(settings.store))
@@ -742,18 +631,24 @@ def ingest_case(
             raw_records = hashes.result()
             conv_records = conversions.records()
             for name, spec in vm.variables.items():
-                operation = catalogue.get(name).quantities[spec.quantity].description
+                operation = vm.entry(name).quantities[spec.quantity].description
                 if operation:
                     conv_records.append(
                         {"variable": name, "raw_variable": spec.raw, "operation": operation}
                     )
-                if spec.staggered(vm.dims):
+                for axis in spec.staggered(vm.dims):
+                    how = (
+                        "in height"
+                        if axis == "z"
+                        else f"along {axis} (faces on the {spec.faces.get(axis, 'coordinate')}"
+                        " side)"
+                    )
                     conv_records.append(
                         {
                             "variable": name,
                             "raw_variable": spec.raw,
-                            "operation": "interpolated linearly in height from cell "
-                            "faces to cell centres",
+                            "operation": f"interpolated linearly {how} from cell faces to "
+                            "cell centres",
                         }
                     )
             step = provenance.new_step(

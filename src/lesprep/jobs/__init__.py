@@ -1,2 +1,1 @@
-"""Workflow glue: the settings parsed once, one entry point per rule, and job sizing.
-"""
+"""Workflow glue: the settings parsed once, one entry point per rule, and job sizing."""

@@ -215,8 +215,7 @@ def incomplete_file_error(
     else:
         hint = "the file may be truncated or corrupt; copy it again from the archive"
     return InputError(
-        f"cannot be read completely ({facts}; the NetCDF library says "
-        f"{type(exc).__name__}: {exc})",
+        f"cannot be read completely ({facts}; the NetCDF library says {type(exc).__name__}: {exc})",
         case=case,
         file=str(path),
         variable=variable,

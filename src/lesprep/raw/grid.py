@@ -165,19 +165,9 @@ if HAVE_NUMBA:
                 out[k, j, i] = lo + (np.float64(a[k + 1, j, i]) - lo) * wk
 
 
-def destagger_periodic(values_on_faces: NDArray[np.float64], *, axis: int) -> NDArray[np.float64]:
-    """Average a field on the faces of a periodic axis to the centres (superseded).
-
-    Accepts n faces (periodic, the last face wraps to the first) or n + 1 faces (the
-    last repeats the first). It guesses: a first and last face of equal value are taken
-    for a duplicated end, and face i is assumed to lie on the low side of cell i. Use
-    :func:`face_side` and :func:`destagger_horizontal`, which know where the faces are.
-    """
-    a = np.asarray(values_on_faces, dtype=np.float64)
-    lo = np.take(a, np.arange(a.shape[axis] - 1), axis=axis)
-    if np.allclose(np.take(a, [0], axis=axis), np.take(a, [-1], axis=axis)):
-        a = lo if a.shape[axis] > 1 else a
-    return 0.5 * (a + np.roll(a, -1, axis=axis))
+def _fmt(values: NDArray[np.float64], k: int = 3) -> str:
+    shown = ", ".join(f"{v:g}" for v in values[:k])
+    return f"[{shown}{', ...' if values.size > k else ''}]"
 
 
 FaceSide = Literal["low", "high"]
@@ -188,11 +178,6 @@ FACE_RTOL = 0.01
 """Tolerance on face positions, as a fraction of the grid spacing. The two sides differ by
 a whole cell, so 1 % of dx tells them apart with a wide margin while absorbing float32
 rounding of coordinates (about 1e-7 of the coordinate value: 0.01 m at 100 km)."""
-
-
-def _fmt(values: NDArray[np.float64], k: int = 3) -> str:
-    shown = ", ".join(f"{v:g}" for v in values[:k])
-    return f"[{shown}{', ...' if values.size > k else ''}]"
 
 
 def face_offset(

@@ -74,13 +74,32 @@ def baseline_errors(predicted: ArrayLike, target: ArrayLike) -> dict[str, float]
     }
 
 
-def baseline_skill(set_store: str | Path, *, chunk: int = SET_CHUNK) -> dict[str, float]:
-    """Error of the Sundqvist baseline ``cf_sundqvist`` against ``cloud_fraction``.
+BASELINES: tuple[tuple[str, str, str], ...] = (
+    ("sundqvist", "cf_sundqvist", "cloud_fraction"),
+    ("gaussian", "cf_gaussian", "cloud_fraction"),
+    ("gaussian", "cf_gaussian", "cloud_fraction_zero"),
+)
+"""``(baseline, predicted, target)`` rows of the baseline table. The Gaussian scheme
+predicts P(s > 0), the fraction of cells holding any condensate, so it is also compared
+with the fraction of cells with ``qc > 0`` (the target counts ``qc`` above the cloud
+threshold)."""
+
+
+def baseline_skill(
+    set_store: str | Path,
+    *,
+    chunk: int = SET_CHUNK,
+    predicted: str = "cf_sundqvist",
+    target: str = "cloud_fraction",
+) -> dict[str, float]:
+    """Error of a baseline cloud fraction (default: Sundqvist's) against a target.
 
     Parameters
     ----------
     set_store
         A training store (any split, one scale).
+    predicted, target
+        Names of the baseline and the target in the store.
     chunk
         Samples read at a time; the per-slice results of
         :func:`lesprep.schemes.baseline_errors` are combined exactly (weighted by their
@@ -101,11 +120,11 @@ def baseline_skill(set_store: str | Path, *, chunk: int = SET_CHUNK) -> dict[str
     sq = bias = mae = 0.0
     n = 0
     with opened_store(set_store) as ds:
-        if "cf_sundqvist" in ds.variables and "cloud_fraction" in ds.variables:
+        if predicted in ds.variables and target in ds.variables:
             for sl in set_slices(ds, chunk):
                 part = baseline_errors(
-                    ds["cf_sundqvist"].isel(sample=sl).values,
-                    ds["cloud_fraction"].isel(sample=sl).values,
+                    ds[predicted].isel(sample=sl).values,
+                    ds[target].isel(sample=sl).values,
                 )
                 if part["n"] == 0:
                     continue
@@ -115,7 +134,7 @@ def baseline_skill(set_store: str | Path, *, chunk: int = SET_CHUNK) -> dict[str
                 mae += k * part["mae"]
                 n += k
         elif int(ds.sizes.get("sample", 0)) > 0:
-            require_names(ds, ("cf_sundqvist", "cloud_fraction"), set_store)
+            require_names(ds, (predicted, target), set_store)
     if n == 0:
         nan = float("nan")
         return {"rmse": nan, "bias": nan, "mae": nan, "n": 0}

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from lesprep.report.scenes import SceneDescriptors, describe_case
-from lesprep.report.skill import baseline_skill
+from lesprep.report.skill import BASELINES, baseline_skill
 from lesprep.report.stores import opened_store
 from lesprep.sets.splits import read_assignment_tsv
 
@@ -164,23 +164,29 @@ def scene_table_rst(
 
 
 def write_baseline_table(sets: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
-    """Skill of the Sundqvist baseline per split and scale, as a TSV.
+    """Skill of the baselines per split and scale, as a TSV.
+
+    One row per split, scale and row of :data:`lesprep.report.skill.BASELINES`: the
+    Sundqvist et al. (1989) scheme against ``cloud_fraction``, the Gaussian-PDF scheme
+    against ``cloud_fraction`` and against ``cloud_fraction_zero``.
 
     Parameters
     ----------
     sets
         ``"<split>/<scale>"`` -> training store.
     out_tsv
-        Table to write (columns split, scale, rmse, bias, mae, n), atomically.
+        Table to write (columns split, scale, baseline, target, rmse, bias, mae, n),
+        atomically.
     """
-    rows = ["split\tscale\trmse\tbias\tmae\tn"]
+    rows = ["split\tscale\tbaseline\ttarget\trmse\tbias\tmae\tn"]
     for key in sorted(sets):
         split, scale = key.split("/", 1)
-        skill = baseline_skill(sets[key])
-        rows.append(
-            f"{split}\t{scale}\t{skill['rmse']:.6g}\t{skill['bias']:.6g}\t"
-            f"{skill['mae']:.6g}\t{int(skill['n'])}"
-        )
+        for name, predicted, target in BASELINES:
+            skill = baseline_skill(sets[key], predicted=predicted, target=target)
+            rows.append(
+                f"{split}\t{scale}\t{name}\t{target}\t{skill['rmse']:.6g}\t"
+                f"{skill['bias']:.6g}\t{skill['mae']:.6g}\t{int(skill['n'])}"
+            )
     out = Path(out_tsv)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(f".{out.name}.tmp")

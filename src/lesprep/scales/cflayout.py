@@ -8,29 +8,84 @@ their own entries here.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
 from lesprep import catalogue
+from lesprep.canonical.mask import describe_threshold
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
-from lesprep.scales.step import z_chunk_levels
+from lesprep.scales.step import GAUSSIAN_INPUTS, covariance_name, z_chunk_levels
 from lesprep.store import (
     ArraySpec,
 )
 
 
-def output_attrs(name: str, s: Scale, threshold: float) -> dict[str, str]:
+def _entry(name: str, canon: xr.Dataset | None) -> catalogue.Variable:
+    attrs = canon[name].attrs if canon is not None and name in canon.variables else {}
+    return catalogue.from_attrs(name, attrs)
+
+
+def _covariance_attrs(a: str, b: str, canon: xr.Dataset | None) -> dict[str, str]:
+    va, vb = _entry(a, canon), _entry(b, canon)
+    attrs = {
+        "long_name": f"sub-grid covariance of {va.label} and {vb.label}",
+        "units": catalogue.product_units(va.units, vb.units),
+        "comment": f"population covariance over the fine cells of the coarse cell: mean of "
+        f"({a} - block mean of {a}) * ({b} - block mean of {b}); CF has no cell method for "
+        "a covariance, so there is no cell_methods",
+    }
+    if "K" in (va.units, vb.units):
+        attrs["units_metadata"] = "temperature: difference"
+    return attrs
+
+
+def output_attrs(
+    name: str,
+    s: Scale,
+    threshold: float,
+    *,
+    threshold_units: str = "kg kg-1",
+    canon: xr.Dataset | None = None,
+    pairs: Sequence[tuple[str, str]] = (),
+) -> dict[str, str]:
+    """CF attributes of one scale-store output (``canon``: the canonical store, whose
+    attributes describe variables the catalogue does not know; ``pairs``: the covariance
+    pairs of the job)."""
+    for a, b in pairs:
+        if name == covariance_name(a, b):
+            return _covariance_attrs(a, b, canon)
     base, _, kind = name.rpartition("_")
     table = {
         "cloud_fraction": {
             "standard_name": "cloud_area_fraction_in_atmosphere_layer",
-            "long_name": f"fraction of fine cells with qc > {threshold:g} kg kg-1",
+            "long_name": "fraction of fine cells with "
+            + describe_threshold(threshold, threshold_units),
             "units": "1",
             "cell_methods": "area: mean",
+        },
+        "cloud_fraction_zero": {
+            "standard_name": "cloud_area_fraction_in_atmosphere_layer",
+            "long_name": "fraction of fine cells with qc > 0 (zero threshold: the fraction a "
+            "statistical scheme's P(s > 0) predicts)",
+            "units": "1",
+            "cell_methods": "area: mean",
+        },
+        "cf_gaussian": {
+            "long_name": "Gaussian-PDF cloud fraction of a statistical scheme (Sommeria and "
+            "Deardorff 1977; Mellor 1977) from the block means of qt, theta_l and p and the "
+            "sub-grid variances and covariance of qt and theta_l",
+            "units": "1",
+            "comment": "the sub-grid (co)variances come from the LES: an upper bound on what a "
+            "climate model could know; compare with cloud_fraction_zero",
+        },
+        "tke_sgs": {
+            "long_name": "sub-grid turbulent kinetic energy 0.5 (u'u' + v'v' + w'w') of the "
+            "coarse cell (population variances)",
+            "units": "m2 s-2",
         },
         "rh_of_means": {
             "long_name": "relative humidity of the coarse means of qv, T and p (Bolton 1980)",
@@ -67,7 +122,7 @@ def output_attrs(name: str, s: Scale, threshold: float) -> dict[str, str]:
     }
     if name in table:
         return table[name]
-    var = catalogue.get(base) if kind in ("mean", "var", "skew", "patch") else None
+    var = _entry(base, canon) if kind in ("mean", "var", "skew", "patch") else None
     if var is not None and kind == "mean":
         a = {"standard_name": var.standard_name} if var.standard_name else {}
         a.update(long_name=f"block mean of {var.label}", units=var.units)
@@ -128,7 +183,14 @@ def scale_layout(
             shape=shape,
             chunks=chunks,
             dtype=dtype,
-            attrs=output_attrs(name, s, threshold),
+            attrs=output_attrs(
+                name,
+                s,
+                threshold,
+                threshold_units=str(canon.attrs.get("cloud_threshold_units", "kg kg-1")),
+                canon=canon,
+                pairs=[*settings.covariances, GAUSSIAN_INPUTS],
+            ),
             fill_value=0.0 if zero_fill else None,
         )
     ny, nx = canon.sizes["y"] // s.factor, canon.sizes["x"] // s.factor
@@ -165,5 +227,3 @@ def scale_layout(
     out["y_bounds"] = coord(("y", "nv"), yb, {"units": "m"})
     out["x_bounds"] = coord(("x", "nv"), xb, {"units": "m"})
     return out
-
-

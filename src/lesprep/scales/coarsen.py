@@ -155,6 +155,8 @@ def coarsen_case(
                 dtype=settings.dtype,
                 p_profile=reader.p_profile,
                 stream=(settings.chunk_mib, reader.levels),
+                stored=reader.stored,
+                surface=reader.surface,
             )
             last = reader.bounds[-1][0]
             rows: list[tuple[int, str, int, dict[str, np.ndarray]]] = []
@@ -177,7 +179,7 @@ def coarsen_case(
                     rows.clear()
                 if z0 != last:
                     continue
-                fields = step.finish(reader.lwp(j))
+                fields = step.finish(reader.lwp(j), reader.surface_fields(j))
                 for s in scales:
                     writers[s.label].add(j, fields.pop(s.label))
             quantized = {

@@ -11,6 +11,8 @@ from typing import Any
 import numpy as np
 import zarr
 
+from lesprep.errors import InputError
+from lesprep.scales.conserved import PER_SLAB
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.step import slab_bounds, slab_inputs
 
@@ -34,8 +36,18 @@ class FineReader:
         self.levels = int(levels or qc.chunks[1])
         p = self.group["p"]
         self.p_profile = np.asarray(p[...], dtype=np.float64) if p.ndim == 1 else None
-        names = list(slab_inputs(settings, p_is_3d=self.p_profile is None))
-        for v in dict.fromkeys([*settings.moments, "qv", "T"]):
+        arrays = dict(self.group.arrays())
+        self.stored = tuple(
+            n for n, a in arrays.items() if a.ndim == 4 and not n.endswith("_dev") and n != "p"
+        )
+        self.surface = tuple(
+            n
+            for n, a in arrays.items()
+            if a.shape == (self.ntimes, self.ny, self.nx) and n != "lwp"
+        )
+        self._check(settings, path)
+        names = list(slab_inputs(settings, p_is_3d=self.p_profile is None, stored=self.stored))
+        for v in list(names):
             if f"{v}_dev" in self.group:  # a near-constant field's deviation and reference
                 names += [f"{v}_dev", f"{v}_ref"]
         self.names = tuple(names)
@@ -65,6 +77,37 @@ class FineReader:
             if pending is not None:
                 with contextlib.suppress(Exception):
                     pending.result()
+
+    def _check(self, settings: CoarsenSettings, path: str | Path) -> None:
+        """Every variable the settings name must be in the store or computable from it."""
+        available = {*self.stored, *self.surface, "p", *PER_SLAB}
+        wanted = {
+            "coarsen.moments": settings.moments,
+            "coarsen.covariances": [v for pair in settings.covariances for v in pair],
+            "coarsen.patches.variables": settings.patch_variables,
+        }
+        for key, names in wanted.items():
+            for n in names:
+                if n not in available:
+                    raise InputError(
+                        f"{key} lists {n!r}, which this case's canonical store does not hold "
+                        f"(it holds {sorted({*self.stored, *self.surface})})",
+                        hint="map the raw field in the case's variable map, or remove "
+                        f"{n!r} from {key}",
+                        file=str(path),
+                        variable=n,
+                    )
+                if key != "coarsen.moments" and n in self.surface:
+                    raise InputError(
+                        f"{key} lists {n!r}, a 2-D surface field: only block moments are "
+                        "computed for surface fields",
+                        file=str(path),
+                        variable=n,
+                    )
+
+    def surface_fields(self, j: int) -> dict[str, np.ndarray]:
+        """The 2-D (surface) fields of time ``j``, by name."""
+        return {n: np.asarray(self.group[n][j]) for n in self.surface}
 
     def lwp(self, j: int) -> np.ndarray:
         """Liquid water path of time ``j``."""

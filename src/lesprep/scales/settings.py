@@ -29,7 +29,11 @@ class CoarsenSettings:
     scales
         The group's scales.
     moments
-        Variables that get block mean, variance and skewness (catalogue names).
+        Variables that get block mean, variance and skewness: stored ones (catalogue
+        names or names a variable map adds, 3-D or 2-D) and the per-slab conserved ones
+        (``qt``, ``theta_l``, ``theta_il``, ``theta_v``).
+    covariances
+        Pairs of 3-D variables whose sub-grid covariance is stored (``cov_<a>_<b>``).
     patch_variables, patch_scales, patch_size, patch_halo
         Fine patches: which variables, at which scale labels, edge P, periodic halo.
     on_misfit
@@ -46,6 +50,7 @@ class CoarsenSettings:
 
     scales: tuple[ScaleSpec, ...]
     moments: tuple[str, ...]
+    covariances: tuple[tuple[str, str], ...]
     patch_variables: tuple[str, ...]
     patch_scales: tuple[str, ...]
     patch_size: int
@@ -58,9 +63,19 @@ class CoarsenSettings:
 
     def __post_init__(self) -> None:
         catalogue.check_names(self.moments, what="coarsen.moments", use="moments")
-        catalogue.check_names(
-            self.patch_variables, what="coarsen.patches.variables", use="patches"
-        )
+        pairs = tuple((str(a), str(b)) for a, b in self.covariances)
+        object.__setattr__(self, "covariances", pairs)
+        for a, b in pairs:
+            if a == b:
+                raise ConfigError(
+                    f"coarsen.covariances lists [{a}, {b}]: the covariance of a variable "
+                    "with itself is its variance",
+                    hint=f"list {a} under coarsen.moments instead",
+                )
+            catalogue.check_names([a, b], what="coarsen.covariances", use="moments")
+        if len(set(pairs)) != len(pairs):
+            raise ConfigError("coarsen.covariances lists a pair twice")
+        catalogue.check_names(self.patch_variables, what="coarsen.patches.variables", use="patches")
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -72,6 +87,7 @@ class CoarsenSettings:
         return {
             "scales": [s.to_dict() for s in self.scales],
             "moments": list(self.moments),
+            "covariances": [list(p) for p in self.covariances],
             "patch_variables": list(self.patch_variables),
             "patch_scales": list(self.patch_scales),
             "patch_size": self.patch_size,
@@ -89,6 +105,7 @@ class CoarsenSettings:
         return cls(
             scales=tuple(ScaleSpec.from_dict(s) for s in d["scales"]),
             moments=tuple(d["moments"]),
+            covariances=tuple((a, b) for a, b in d["covariances"]),
             patch_variables=tuple(d["patch_variables"]),
             patch_scales=tuple(d["patch_scales"]),
             patch_size=int(d["patch_size"]),
@@ -121,6 +138,7 @@ class CoarsenPlan:
         base = CoarsenSettings(
             scales=scales,
             moments=tuple(coarsen["moments"]),
+            covariances=tuple((a, b) for a, b in coarsen["covariances"]),
             patch_variables=tuple(patches["variables"]),
             patch_scales=patch_scales,
             patch_size=int(patches["size"]),

@@ -16,6 +16,8 @@ import numpy as np
 import numpy.typing as npt
 
 from lesprep.canonical import derived
+from lesprep.scales.comoments import hierarchical_comoments, subgrid_tke
+from lesprep.scales.conserved import PER_SLAB, conserved_fields, inputs_of
 from lesprep.scales.moments import (
     block_mean,
     hierarchical_fractions,
@@ -25,7 +27,7 @@ from lesprep.scales.moments import (
 from lesprep.scales.patches import extract_patches, patch_geometry
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
-from lesprep.schemes import sundqvist_cloud_fraction
+from lesprep.schemes import gaussian_cloud_fraction_from_moments, sundqvist_cloud_fraction
 
 
 def vertical_derivative(values: np.ndarray, z: np.ndarray, *, axis: int = 0) -> np.ndarray:
@@ -59,13 +61,40 @@ def hierarchical_means(a: np.ndarray, factors: Sequence[int]) -> dict[int, np.nd
 
 SLAB_INPUTS = ("qc", "qv", "T", "w", "rh", "cloud_mask")
 """Canonical 3-D fields every coarsening reads one z-slab at a time (with ``p`` when it
-is 3-D, and any further variable that gets moments or patches)."""
+is 3-D, and any further variable that gets moments, covariances or patches)."""
+
+GAUSSIAN_INPUTS = ("qt", "theta_l")
+"""Variables whose block means, variances and covariance the Gaussian-PDF baseline takes
+(:func:`lesprep.schemes.gaussian_cloud_fraction_from_moments`)."""
+
+WINDS = ("u", "v", "w")
+"""Wind components: with all three in a store, the sub-grid TKE is computed."""
 
 
-def slab_inputs(settings: CoarsenSettings, *, p_is_3d: bool) -> tuple[str, ...]:
-    """Every canonical 3-D field a job reads per slab: :data:`SLAB_INPUTS`, the moment
-    and patch variables, and ``p`` when it is 3-D."""
-    names = [*SLAB_INPUTS, *settings.moments, *settings.patch_variables]
+def statistic_variables(settings: CoarsenSettings, stored: Sequence[str]) -> tuple[str, ...]:
+    """Every 3-D variable whose block moments a job computes: the moment variables, the
+    covariance pairs' members, ``qv`` and ``T`` (GCM-view relative humidity), the Gaussian
+    baseline's inputs and, where the store has ``u`` and ``v``, the wind components."""
+    names = [*settings.moments, *(v for pair in settings.covariances for v in pair)]
+    names += ["qv", "T", *GAUSSIAN_INPUTS]
+    if all(w in stored for w in WINDS):
+        names += list(WINDS)
+    return tuple(dict.fromkeys(names))
+
+
+def slab_inputs(
+    settings: CoarsenSettings, *, p_is_3d: bool, stored: Sequence[str] = ()
+) -> tuple[str, ...]:
+    """Every canonical 3-D field a job reads per slab: :data:`SLAB_INPUTS`, the stored
+    moment, covariance and patch variables, the inputs of the per-slab conserved variables
+    (:mod:`lesprep.scales.conserved`) and ``p`` when it is 3-D.
+
+    ``stored`` lists the store's 3-D fields (optional species such as ``qi`` are read when
+    a conserved variable uses them).
+    """
+    wanted = [*statistic_variables(settings, stored), *settings.patch_variables]
+    names = [*SLAB_INPUTS, *(n for n in wanted if n not in PER_SLAB)]
+    names += inputs_of(wanted, stored)
     if p_is_3d:
         names.append("p")
     return tuple(n for n in dict.fromkeys(names) if n != "p" or p_is_3d)
@@ -74,6 +103,11 @@ def slab_inputs(settings: CoarsenSettings, *, p_is_3d: bool) -> tuple[str, ...]:
 QUANTUM_STEPS_BLOCK = 4
 """A block whose standard deviation is below this many float32 steps of its mean has a
 quantized spread (counted per variable at the finest factor of a job)."""
+
+
+def covariance_name(a: str, b: str) -> str:
+    """Output name of the sub-grid covariance of ``a`` and ``b``: ``cov_<a>_<b>``."""
+    return f"cov_{a}_{b}"
 
 
 def slab_bounds(nz: int, levels: int) -> list[tuple[int, int]]:
@@ -150,6 +184,8 @@ class StepCoarsener:
     p_profile
         The ``(nz,)`` pressure profile when pressure is 1-D, else None (then every slab
         carries ``p``).
+    stored, surface
+        The canonical store's 3-D and 2-D (surface) fields.
     stream
         None: every output is a whole column, returned by :meth:`finish`. Else
         ``(chunk_mib, slab)``: 3-D and patch outputs whose column needs more than one
@@ -168,6 +204,8 @@ class StepCoarsener:
         dtype: npt.DTypeLike = np.float64,
         p_profile: np.ndarray | None = None,
         stream: tuple[float, int] | None = None,
+        stored: Sequence[str] = (),
+        surface: Sequence[str] = (),
     ) -> None:
         self.stream = stream
         self.rows: list[tuple[str, int, dict[str, np.ndarray]]] = []
@@ -178,7 +216,11 @@ class StepCoarsener:
         self.dtype = np.dtype(dtype)
         self.p_profile = None if p_profile is None else np.asarray(p_profile, np.float64)
         self.factors = sorted({s.factor for s in self.scales})
-        self.need = list(dict.fromkeys([*settings.moments, "qv", "T"]))
+        self.need = list(statistic_variables(settings, stored))
+        self.surface = [v for v in settings.moments if v in surface]
+        self.need = [v for v in self.need if v not in self.surface]
+        self.pairs = list(dict.fromkeys([*settings.covariances, GAUSSIAN_INPUTS]))
+        self.tke = all(w in self.need for w in WINDS)
         self.quantized: dict[str, int] = {}
         self.blocks: dict[str, int] = {}
 
@@ -198,10 +240,16 @@ class StepCoarsener:
                 names.append(f"{v}_mean")
                 if v in st.moments:
                     names += [f"{v}_var", f"{v}_skew"]
-            names += ["p_mean", "cloud_fraction", "rh_of_means", "drh_dz", "cf_sundqvist"]
+            names += [covariance_name(a, b) for a, b in self.pairs]
+            names += ["tke_sgs"] if self.tke else []
+            names += ["p_mean", "cloud_fraction", "cloud_fraction_zero", "rh_of_means"]
+            names += ["drh_dz", "cf_sundqvist", "cf_gaussian"]
             d: dict[str, Any] = {n: self._column(n, c3) for n in names}
             for n in ("lwp_mean", "lwp_var", "cloud_cover"):
                 d[n] = np.empty(c3[1:], dtype=dt)
+            for v in self.surface:
+                for kind in ("mean", "var", "skew"):
+                    d[f"{v}_{kind}"] = np.empty(c3[1:], dtype=dt)
             if s.label in st.patch_scales:
                 _, edge = patch_geometry(f, st.patch_size, st.patch_halo)
                 for v in st.patch_variables:
@@ -240,17 +288,30 @@ class StepCoarsener:
         k = int(np.shape(fine["qc"])[0])
         sl = slice(z0, z0 + k)
         # a near-constant field is coarsened from its deviation from the level mean
-        # (``<v>_dev``, ``<v>_ref``; see lesprep.canonical.ingest.quantized_levels)
+        # (``<v>_dev``, ``<v>_ref``; see lesprep.canonical.nearconstant.quantized_levels)
         refs = {
             v: np.asarray(fine[f"{v}_ref"], np.float64) for v in self.need if f"{v}_ref" in fine
         }
+        p_fine = self.p_profile[sl] if self.p_profile is not None else fine["p"]
+        fine = {**fine, **conserved_fields(fine, self.need + list(st.patch_variables), p_fine)}
         moments = {
             v: hierarchical_moments(fine[f"{v}_dev"] if v in refs else fine[v], factors)
             for v in self.need
         }
+        cov = {
+            (a, b): hierarchical_comoments(
+                fine[f"{a}_dev"] if a in refs else fine[a],
+                fine[f"{b}_dev"] if b in refs else fine[b],
+                factors,
+                moments[a],
+                moments[b],
+            )
+            for a, b in self.pairs
+        }
         mask = np.asarray(fine["cloud_mask"])
         self.column |= np.any(mask, axis=0)
         cf = hierarchical_fractions(mask, factors)
+        cf0 = hierarchical_fractions(np.asarray(fine["qc"]) > 0, factors)
         p_means = None if self.p_profile is not None else hierarchical_means(fine["p"], factors)
         for s in self.scales:
             f = s.factor
@@ -280,9 +341,23 @@ class StepCoarsener:
                 p3 = np.broadcast_to(self.p_profile[sl, None, None], t_mean.shape)
             d["p_mean"][sl] = p3
             d["cloud_fraction"][sl] = cf[f]
+            d["cloud_fraction_zero"][sl] = cf0[f]
             rh = derived.relative_humidity(p3, t_mean, qv_mean, out=self.rh64[f][sl])
             d["rh_of_means"][sl] = rh
             sundqvist_cloud_fraction(rh, st.rh_critical, out=d["cf_sundqvist"][sl])
+            for a, b in self.pairs:
+                d[covariance_name(a, b)][sl] = cov[(a, b)][f].covariance()
+            if self.tke:
+                d["tke_sgs"][sl] = subgrid_tke(*(moments[w][f].variance() for w in WINDS))
+            qt_m, thl_m = (means.get(v, moments[v][f].mean) for v in GAUSSIAN_INPUTS)
+            d["cf_gaussian"][sl] = gaussian_cloud_fraction_from_moments(
+                qt_m,
+                thl_m,
+                p3,
+                moments["qt"][f].variance(),
+                moments["theta_l"][f].variance(),
+                cov[GAUSSIAN_INPUTS][f].covariance(),
+            )
             if s.label in st.patch_scales:
                 ds, _ = patch_geometry(f, st.patch_size, st.patch_halo)
                 for v in st.patch_variables:
@@ -303,11 +378,15 @@ class StepCoarsener:
                         ready.setdefault(zs, {})[name] = piece
             self.rows.extend((s.label, zs, part) for zs, part in sorted(ready.items()))
 
-    def finish(self, lwp: np.ndarray) -> dict[str, dict[str, np.ndarray]]:
-        """Column quantities and ``drh_dz``; returns the step's outputs per scale label."""
+    def finish(
+        self, lwp: np.ndarray, surface: Mapping[str, np.ndarray] | None = None
+    ) -> dict[str, dict[str, np.ndarray]]:
+        """Column quantities, surface-field moments and ``drh_dz``; returns the step's
+        outputs per scale label (``surface``: the 2-D fields of the time, by name)."""
         factors = self.factors
         cover = hierarchical_fractions(self.column, factors)
         lwp_m = hierarchical_moments(lwp, factors)
+        surf = {v: hierarchical_moments((surface or {})[v], factors) for v in self.surface}
         for s in self.scales:
             f = s.factor
             d = self.out[s.label]
@@ -315,6 +394,10 @@ class StepCoarsener:
             d["lwp_mean"][...] = lwp_m[f].mean
             d["lwp_var"][...] = lwp_m[f].variance()
             d["cloud_cover"][...] = cover[f]
+            for v in self.surface:
+                surf[v][f].variance_and_skewness(
+                    out=(d[f"{v}_var"], d[f"{v}_skew"]), mean_out=d[f"{v}_mean"]
+                )
         out = {
             lab: {n: a for n, a in d.items() if not isinstance(a, ZPieces)}
             for lab, d in self.out.items()
@@ -356,11 +439,20 @@ def coarse_fields(
     """
     shape = tuple(np.shape(fine["qc"]))
     p = np.asarray(fine["p"])
+    stored = [v for v in fine if np.ndim(fine[v]) == 3]
+    surface = [v for v in fine if np.ndim(fine[v]) == 2 and v != "lwp"]
     step = StepCoarsener(
-        z, shape, scales, settings, dtype=dtype, p_profile=p if p.ndim == 1 else None
+        z,
+        shape,
+        scales,
+        settings,
+        dtype=dtype,
+        p_profile=p if p.ndim == 1 else None,
+        stored=stored,
+        surface=surface,
     )
     step.begin()
+    names = slab_inputs(settings, p_is_3d=p.ndim == 3, stored=stored)
     for z0, z1 in slab_bounds(shape[0], slab_levels or shape[0]):
-        slab = {v: np.asarray(fine[v])[z0:z1] for v in slab_inputs(settings, p_is_3d=p.ndim == 3)}
-        step.add_slab(z0, slab)
-    return step.finish(np.asarray(fine["lwp"]))
+        step.add_slab(z0, {v: np.asarray(fine[v])[z0:z1] for v in names})
+    return step.finish(np.asarray(fine["lwp"]), {v: np.asarray(fine[v]) for v in surface})

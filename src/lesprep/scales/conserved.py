@@ -1,0 +1,118 @@
+"""Conserved and buoyancy variables, computed per fine cell from each slab of fine fields.
+
+Coarsening derives these from the canonical fields of one z-slab in float64, just before
+the block moments, so they are never rounded to the stored dtype and never stored on the
+fine grid (they are cheap to recompute from the canonical store, see the formulas in
+:mod:`lesprep.thermo`):
+
+* ``qt``: total water mixing ratio, vapour plus cloud condensate, ``qv + qc (+ qi)``.
+  Precipitating water (rain ``qr``) is left out: it falls through the air and is not
+  conserved under the moist-adiabatic processes a statistical cloud scheme assumes;
+* ``theta_l``: liquid-water potential temperature (Betts 1973), warm phase: ice, when
+  mapped, is ignored here;
+* ``theta_il``: liquid-ice potential temperature (Tripoli and Cotton 1981), only for a
+  case whose variable map provides cloud ice ``qi``;
+* ``theta_v``: virtual potential temperature with condensate loading, the buoyancy
+  variable; every mapped water species loads the air (rain included).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+
+from lesprep import catalogue, thermo
+from lesprep.errors import ConfigError
+
+PER_SLAB: tuple[str, ...] = tuple(v.name for v in catalogue.variables() if v.per_slab)
+"""Variables coarsening computes from each slab (``qt``, ``theta_l``, ``theta_il``,
+``theta_v``)."""
+
+
+def inputs_of(names: Sequence[str], stored: Sequence[str]) -> tuple[str, ...]:
+    """Canonical fields the per-slab variables among ``names`` are computed from.
+
+    ``stored`` lists the canonical store's fields: optional water species (``qi``, ``qr``)
+    are used when present.
+
+    Raises
+    ------
+    ConfigError
+        ``theta_il`` for a store without cloud ice.
+    """
+    out: list[str] = []
+    for n in names:
+        if n not in PER_SLAB:
+            continue
+        if n == "theta_il" and "qi" not in stored:
+            raise ConfigError(
+                "theta_il (liquid-ice potential temperature) needs cloud ice qi, which this "
+                "case's variable map does not provide",
+                hint="map qi, or use theta_l for a warm case",
+            )
+        out += [v for v in catalogue.get(n).derived_from if v != "p"]
+        if n in ("qt", "theta_il"):
+            out += [s for s in ("qi",) if s in stored]
+        if n == "theta_v":
+            out += [s for s in ("qi", "qr") if s in stored]
+    return tuple(dict.fromkeys(out))
+
+
+def _f64(a: np.ndarray) -> np.ndarray:
+    return np.asarray(a, dtype=np.float64)
+
+
+def _exact(fine: Mapping[str, np.ndarray], name: str) -> np.ndarray:
+    """A field in float64; a near-constant one from its reference and deviation (stored
+    before rounding, see :func:`lesprep.canonical.nearconstant.quantized_levels`)."""
+    if f"{name}_dev" in fine and f"{name}_ref" in fine:
+        return _f64(fine[f"{name}_ref"])[:, None, None] + _f64(fine[f"{name}_dev"])
+    return _f64(fine[name])
+
+
+def conserved_fields(
+    fine: Mapping[str, np.ndarray], names: Sequence[str], p: np.ndarray
+) -> dict[str, np.ndarray]:
+    """The per-slab variables among ``names``, float64, the shape of ``fine["T"]``.
+
+    Parameters
+    ----------
+    fine
+        Canonical fields of one slab, ``(k, ny, nx)`` (those :func:`inputs_of` lists).
+    names
+        Variables wanted (others are ignored).
+    p
+        Pressure of the slab, Pa: ``(k, ny, nx)`` or a ``(k,)`` profile.
+
+    Examples
+    --------
+    >>> f = {n: np.full((1, 2, 2), v) for n, v in (("qv", 0.01), ("qc", 0.001), ("T", 290.0))}
+    >>> out = conserved_fields(f, ["qt"], np.array([9e4]))
+    >>> float(out["qt"][0, 0, 0])
+    0.011
+    """
+    wanted = [n for n in names if n in PER_SLAB]
+    if not wanted:
+        return {}
+    t = _exact(fine, "T")
+    pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], t.shape)
+    qv, qc = _exact(fine, "qv"), _exact(fine, "qc")
+    qi = _exact(fine, "qi") if "qi" in fine else None
+    out: dict[str, np.ndarray] = {}
+    for n in wanted:
+        if n == "qt":
+            out[n] = thermo.total_water(qv, qc, qi)
+        elif n == "theta_l":
+            out[n] = thermo.liquid_water_potential_temperature(pp, t, qc)
+        elif n == "theta_il":
+            out[n] = thermo.liquid_ice_potential_temperature(
+                pp, t, qc, np.zeros_like(qc) if qi is None else qi
+            )
+        elif n == "theta_v":
+            cond = qc.copy()
+            for s in ("qi", "qr"):
+                if s in fine:
+                    cond += _exact(fine, s)
+            out[n] = thermo.virtual_potential_temperature(pp, t, qv, cond)
+    return out

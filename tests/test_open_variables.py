@@ -195,3 +195,147 @@ def test_a_moment_variable_the_store_lacks_is_named(tmp_path, case_copy):
     with pytest.raises(InputError, match=r"coarsen\.moments lists 'qi'") as err:
         coarsen_case(canon, {"400m": tmp_path / "s.zarr"}, settings)
     assert "variable map" in str(err.value) and not (tmp_path / "s.zarr").exists()
+
+
+# ------------------------------------------------------------ coarsening of the open set
+
+
+@pytest.fixture
+def rich_case(tmp_path, case_copy):
+    """A demo case with u on x faces (low side, from the face coordinate), v on y faces
+    (stated in the map), cloud ice and a surface field, ingested."""
+    raw = case_copy("sc-ostra-01")
+    for f in sorted(glob.glob(str(raw / "*.nc"))):
+        with netCDF4.Dataset(f, "a") as nc:
+            x, y = nc["x"][:], nc["y"][:]
+            nc.createDimension("xf", x.size)
+            nc.createDimension("yf", y.size)
+            xf = nc.createVariable("xf", "f8", ("xf",))
+            xf.units = "m"
+            xf[:] = x - 0.5 * (x[1] - x[0])  # face i on the low side of cell i
+            shape = nc["liq"].shape
+            for name, dims, lo, hi in (
+                ("uf", ("time", "zc", "y", "xf"), 2.0, 8.0),
+                ("vf", ("time", "zc", "yf", "x"), -3.0, 3.0),
+                ("ice", ("time", "zc", "y", "x"), 0.0, 1e-4),
+            ):
+                v = nc.createVariable(name, "f4", dims)
+                v.units = "kg kg-1" if name == "ice" else "m s-1"
+                v[:] = RNG.uniform(lo, hi, shape)
+            s = nc.createVariable("shf", "f4", ("time", "y", "x"))
+            s.units = "W m-2"
+            s[:] = RNG.normal(20.0, 5.0, (1, *shape[2:]))
+    vm = {**ALPHA}
+    vm["dims"] = {**ALPHA["dims"], "xf": "x_face", "yf": "y_face"}
+    vm["coords"] = {**ALPHA["coords"], "x_face": {"raw": "xf"}}
+    vm["variables"] = {
+        **ALPHA["variables"],
+        "u": {"raw": "uf", "dims": ["time", "zc", "y", "xf"]},
+        "v": {"raw": "vf", "dims": ["time", "zc", "yf", "x"], "faces": {"y": "high"}},
+        "qi": {"raw": "ice", "dims": ["time", "zc", "y", "x"]},
+        "shf": {"raw": "shf", "dims": ["time", "y", "x"], "long_name": "sensible heat flux"},
+    }
+    path = tmp_path / "rich.yaml"
+    path.write_text(yaml.safe_dump(vm))
+    return raw, _ingest(raw, tmp_path / "canonical.zarr", str(path))
+
+
+def test_winds_on_faces_are_averaged_to_centres_from_their_side(rich_case):
+    raw, canon = rich_case
+    ds = open_store(canon)
+    with netCDF4.Dataset(sorted(glob.glob(str(raw / "*.nc")))[1]) as nc:
+        t1 = float(nc["time"][0])
+        uf = nc["uf"][0].astype(np.float64)
+        vf = nc["vf"][0].astype(np.float64)
+    j = int(np.argmin(np.abs(ds["time"].values - t1)))
+    # low faces: centre i between faces i and i + 1 (periodic); high: faces i - 1 and i
+    np.testing.assert_allclose(
+        ds["u"].values[j], 0.5 * (uf + np.roll(uf, -1, axis=2)), rtol=2e-7, atol=1e-6
+    )
+    np.testing.assert_allclose(
+        ds["v"].values[j], 0.5 * (vf + np.roll(vf, 1, axis=1)), rtol=2e-7, atol=1e-6
+    )
+
+
+def test_covariances_tke_conserved_and_gaussian_outputs(rich_case, tmp_path):
+    from lesprep import schemes, thermo
+    from lesprep.scales.coarsen import coarsen_case
+    from lesprep.scales.spec import parse_scales
+    from settings_helpers import coarsen_settings
+
+    _, canon = rich_case
+    settings = coarsen_settings(
+        tuple(parse_scales(["400 m"])),
+        moments=("qc", "w", "qt", "theta_l", "theta_il", "theta_v", "shf", "qi"),
+        covariances=(("w", "qt"), ("u", "w"), ("w", "theta_v")),
+        patch_scales=(),
+    )
+    out = coarsen_case(canon, {"400m": tmp_path / "s.zarr"}, settings)["400m"]
+    ds, fine = open_store(out), open_store(canon)
+    f = 8  # 400 m over 50 m cells
+    g = {v: fine[v].values.astype(np.float64) for v in ("qc", "qv", "qi", "T", "p", "u", "v", "w")}
+    nt, nz, ny, nx = g["qc"].shape
+
+    def blocks(a):
+        return a.reshape(nt, nz, ny // f, f, nx // f, f).transpose(0, 1, 2, 4, 3, 5)
+
+    def block_cov(a, b):  # numpy.cov with bias=True (population) per block
+        A = blocks(a).reshape(nt, nz, ny // f, nx // f, f * f)
+        B = blocks(b).reshape(nt, nz, ny // f, nx // f, f * f)
+        out = np.empty(A.shape[:-1])
+        for idx in np.ndindex(*out.shape):
+            out[idx] = np.cov(A[idx], B[idx], bias=True)[0, 1]
+        return out
+
+    # conserved variables from the stored fields, with the published formulas written
+    # out: qt = qv + qc + qi; theta = T (p0/p)^(Rd/cp); theta_l = theta (1 - Lv qc/(cp T))
+    # (Betts 1973, first order); theta_v = theta (1 + qv/eps) / (1 + qv + qc + qi)
+    theta = g["T"] * (1e5 / g["p"]) ** (2.0 / 7.0)
+    qt = g["qv"] + g["qc"] + g["qi"]
+    thl = theta * (1.0 - thermo.LV * g["qc"] / (thermo.CP * g["T"]))
+    thv = theta * (1.0 + g["qv"] / thermo.EPS) / (1.0 + qt)
+    mean = {k: blocks(a).mean(axis=(4, 5)) for k, a in (("qt", qt), ("theta_l", thl))}
+    np.testing.assert_allclose(ds["qt_mean"].values, mean["qt"], rtol=1e-6)
+    np.testing.assert_allclose(ds["theta_l_mean"].values, mean["theta_l"], rtol=1e-6)
+    np.testing.assert_allclose(ds["cov_w_qt"].values, block_cov(g["w"], qt), rtol=1e-4, atol=1e-12)
+    np.testing.assert_allclose(
+        ds["cov_u_w"].values, block_cov(g["u"], g["w"]), rtol=1e-4, atol=1e-9
+    )
+    np.testing.assert_allclose(
+        ds["cov_w_theta_v"].values, block_cov(g["w"], thv), rtol=1e-3, atol=1e-7
+    )
+    var = {k: blocks(g[k]).var(axis=(4, 5)) for k in ("u", "v", "w")}
+    np.testing.assert_allclose(
+        ds["tke_sgs"].values, 0.5 * (var["u"] + var["v"] + var["w"]), rtol=1e-5
+    )
+    # surface field: 2-D block moments
+    shf = fine["shf"].values.astype(np.float64).reshape(nt, ny // f, f, nx // f, f)
+    np.testing.assert_allclose(ds["shf_mean"].values, shf.mean(axis=(2, 4)), rtol=1e-6)
+    np.testing.assert_allclose(ds["shf_var"].values, shf.var(axis=(2, 4)), rtol=1e-5)
+    assert ds["shf_mean"].dims == ("time", "y", "x") and ds["shf_mean"].attrs["units"] == "W m-2"
+    # zero-threshold cloud fraction, and the Gaussian baseline from the stored statistics
+    np.testing.assert_allclose(
+        ds["cloud_fraction_zero"].values, (blocks(g["qc"]) > 0).mean(axis=(4, 5)), rtol=1e-6
+    )
+    cov_qt_thl = block_cov(qt, thl)
+    c = schemes.gaussian_cloud_fraction_from_moments(
+        mean["qt"],
+        mean["theta_l"],
+        blocks(g["p"]).mean(axis=(4, 5)),
+        blocks(qt).var(axis=(4, 5)),
+        blocks(thl).var(axis=(4, 5)),
+        cov_qt_thl,
+    )
+    np.testing.assert_allclose(ds["cov_qt_theta_l"].values, cov_qt_thl, rtol=1e-3, atol=1e-10)
+    np.testing.assert_allclose(ds["cf_gaussian"].values, c, atol=2e-3)
+    assert float(ds["cf_gaussian"].max()) > 0.0
+    # CF: cell_methods only with methods CF lists; units of covariances the products
+    for name, v in ds.data_vars.items():
+        cm = v.attrs.get("cell_methods")
+        assert cm is None or cm in ("area: mean", "area: variance"), (name, cm)
+    assert ds["cov_w_qt"].attrs["units"] == "m s-1 kg kg-1"
+    assert ds["cov_w_theta_v"].attrs["units_metadata"] == "temperature: difference"
+    assert (
+        "cell_methods" not in ds["cov_u_w"].attrs
+        and "covariance" in ds["cov_u_w"].attrs["long_name"]
+    )

@@ -18,6 +18,7 @@ import yaml
 from metpy.calc import density, vapor_pressure
 from metpy.units import units
 
+from archive_edits import add_rich_fields, rich_varmap
 from conftest import REPO
 from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import ConfigError, InputError, UnitError
@@ -203,40 +204,11 @@ def test_a_moment_variable_the_store_lacks_is_named(tmp_path, case_copy):
 @pytest.fixture
 def rich_case(tmp_path, case_copy):
     """A demo case with u on x faces (low side, from the face coordinate), v on y faces
-    (stated in the map), cloud ice and a surface field, ingested."""
+    (high side, stated in the map), cloud ice, rain and a surface field, ingested."""
     raw = case_copy("sc-ostra-01")
-    for f in sorted(glob.glob(str(raw / "*.nc"))):
-        with netCDF4.Dataset(f, "a") as nc:
-            x, y = nc["x"][:], nc["y"][:]
-            nc.createDimension("xf", x.size)
-            nc.createDimension("yf", y.size)
-            xf = nc.createVariable("xf", "f8", ("xf",))
-            xf.units = "m"
-            xf[:] = x - 0.5 * (x[1] - x[0])  # face i on the low side of cell i
-            shape = nc["liq"].shape
-            for name, dims, lo, hi in (
-                ("uf", ("time", "zc", "y", "xf"), 2.0, 8.0),
-                ("vf", ("time", "zc", "yf", "x"), -3.0, 3.0),
-                ("ice", ("time", "zc", "y", "x"), 0.0, 1e-4),
-            ):
-                v = nc.createVariable(name, "f4", dims)
-                v.units = "kg kg-1" if name == "ice" else "m s-1"
-                v[:] = RNG.uniform(lo, hi, shape)
-            s = nc.createVariable("shf", "f4", ("time", "y", "x"))
-            s.units = "W m-2"
-            s[:] = RNG.normal(20.0, 5.0, (1, *shape[2:]))
-    vm = {**ALPHA}
-    vm["dims"] = {**ALPHA["dims"], "xf": "x_face", "yf": "y_face"}
-    vm["coords"] = {**ALPHA["coords"], "x_face": {"raw": "xf"}}
-    vm["variables"] = {
-        **ALPHA["variables"],
-        "u": {"raw": "uf", "dims": ["time", "zc", "y", "xf"]},
-        "v": {"raw": "vf", "dims": ["time", "zc", "yf", "x"], "faces": {"y": "high"}},
-        "qi": {"raw": "ice", "dims": ["time", "zc", "y", "x"]},
-        "shf": {"raw": "shf", "dims": ["time", "y", "x"], "long_name": "sensible heat flux"},
-    }
+    add_rich_fields(raw, RNG)
     path = tmp_path / "rich.yaml"
-    path.write_text(yaml.safe_dump(vm))
+    path.write_text(yaml.safe_dump(rich_varmap()))
     return raw, _ingest(raw, tmp_path / "canonical.zarr", str(path))
 
 
@@ -273,7 +245,10 @@ def test_covariances_tke_conserved_and_gaussian_outputs(rich_case, tmp_path):
     out = coarsen_case(canon, {"400m": tmp_path / "s.zarr"}, settings)["400m"]
     ds, fine = open_store(out), open_store(canon)
     f = 8  # 400 m over 50 m cells
-    g = {v: fine[v].values.astype(np.float64) for v in ("qc", "qv", "qi", "T", "p", "u", "v", "w")}
+    g = {
+        v: fine[v].values.astype(np.float64)
+        for v in ("qc", "qv", "qi", "qr", "T", "p", "u", "v", "w")
+    }
     nt, nz, ny, nx = g["qc"].shape
 
     def blocks(a):
@@ -289,11 +264,12 @@ def test_covariances_tke_conserved_and_gaussian_outputs(rich_case, tmp_path):
 
     # conserved variables from the stored fields, with the published formulas written
     # out: qt = qv + qc + qi; theta = T (p0/p)^(Rd/cp); theta_l = theta (1 - Lv qc/(cp T))
-    # (Betts 1973, first order); theta_v = theta (1 + qv/eps) / (1 + qv + qc + qi)
+    # (Betts 1973, first order); theta_v = theta (1 + qv/eps) / (1 + qv + qc + qi + qr),
+    # every water species loading the air; rain is not part of qt
     theta = g["T"] * (1e5 / g["p"]) ** (2.0 / 7.0)
     qt = g["qv"] + g["qc"] + g["qi"]
     thl = theta * (1.0 - thermo.LV * g["qc"] / (thermo.CP * g["T"]))
-    thv = theta * (1.0 + g["qv"] / thermo.EPS) / (1.0 + qt)
+    thv = theta * (1.0 + g["qv"] / thermo.EPS) / (1.0 + qt + g["qr"])
     mean = {k: blocks(a).mean(axis=(4, 5)) for k, a in (("qt", qt), ("theta_l", thl))}
     np.testing.assert_allclose(ds["qt_mean"].values, mean["qt"], rtol=1e-6)
     np.testing.assert_allclose(ds["theta_l_mean"].values, mean["theta_l"], rtol=1e-6)
@@ -339,3 +315,15 @@ def test_covariances_tke_conserved_and_gaussian_outputs(rich_case, tmp_path):
         "cell_methods" not in ds["cov_u_w"].attrs
         and "covariance" in ds["cov_u_w"].attrs["long_name"]
     )
+
+
+def test_threshold_units():
+    from lesprep.canonical.mask import parse_threshold
+
+    # conversions checked by hand: 0.01 g/kg = 1e-5 kg/kg; 0.001 g m-3 = 1e-6 kg m-3
+    assert parse_threshold("0.01 g/kg") == (pytest.approx(1e-5), "kg kg-1")
+    assert parse_threshold("0.001 g m-3") == (pytest.approx(1e-6), "kg m-3")
+    with pytest.raises(ConfigError, match="mass concentration"):
+        parse_threshold("1 K")
+    with pytest.raises(ConfigError, match="no units"):
+        parse_threshold(1e-5)

@@ -32,7 +32,8 @@ def test_open_variable_set_flows_to_the_sets(tmp_path):
         own = tmp_path / "archive" / c
         shutil.copytree(tmp_path / "resources/demo" / c, own)
         add_rich_fields(own, rng)
-        p.add_case(f"own-{c}", f"archive/{c}/*.nc", "alpha", regime)
+        split = "train" if regime == "stratocumulus" else "test"
+        p.add_case(f"own-{c}", f"archive/{c}/*.nc", "alpha", regime, split=split)
         p.rows[-1]["varmap"] = str(vm)
     p.config["coarsen"] = {
         "scales": ["600 m"],

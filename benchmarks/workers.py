@@ -7,6 +7,7 @@ from __future__ import annotations
 import contextlib
 import json
 import operator
+import os
 import shutil
 import sys
 import time
@@ -159,22 +160,33 @@ def w_extend(*, files: list[str], out: str, copies: int) -> dict[str, Any]:
     return {"time_s": time.perf_counter() - t0, "files": written}
 
 
+EXTENDED_VARIABLES = {
+    "moments": ["qc", "w", "qv", "T", "rh", "qt", "theta_l"],
+    "covariances": [["w", "qt"], ["w", "theta_l"], ["w", "theta_v"], ["w", "qv"]],
+}
+"""``COARSEN_VARIABLES=extended`` (``--worker-env``): two more moment variables and four
+covariance pairs on top of the default coarsening."""
+
+
 def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
     """The workflow's settings for the benchmark case, built as the workflow builds them."""
     from lesprep.jobs.settings import WorkflowSettings
 
+    coarsen: dict[str, Any] = {
+        "scales": list(scales),
+        "patches": {
+            "variables": ["qc", "w"],
+            "scales": list(patch_scales),
+            "size": PATCH_SIZE,
+        },
+    }
+    if os.environ.get("COARSEN_VARIABLES", "default") == "extended":
+        coarsen.update(EXTENDED_VARIABLES)
     return WorkflowSettings.from_config(
         {
             "cases": "unused.tsv",
             "ingest": {"spinup": SPINUP, "cloud_threshold": THRESHOLD},
-            "coarsen": {
-                "scales": list(scales),
-                "patches": {
-                    "variables": ["qc", "w"],
-                    "scales": list(patch_scales),
-                    "size": PATCH_SIZE,
-                },
-            },
+            "coarsen": coarsen,
             "store": dict(STORE),
         }
     )

@@ -492,8 +492,9 @@ def scale_cf_vs_rh(
     -------
     matplotlib.figure.Figure
         One axis: sample counts per bin (log colour scale, empty bins blank), the mean
-        cloud fraction of each RH bin (dots) and the Sundqvist et al. (1989) curve for
-        the store's ``rh_critical`` (:func:`rh_critical_of`).
+        cloud fraction of each RH bin (dots), the mean Gaussian-PDF baseline
+        ``cf_gaussian`` of each bin (squares, when the store has it) and the Sundqvist et
+        al. (1989) curve for the store's ``rh_critical`` (:func:`rh_critical_of`).
 
     Raises
     ------
@@ -520,12 +521,20 @@ def scale_cf_vs_rh(
         cf_edges = np.linspace(0.0, 1.0, int(cf_bins) + 1)
         counts = np.zeros((rh_edges.size - 1, cf_edges.size - 1), dtype=np.float64)
         cf_sum = np.zeros(rh_edges.size - 1, dtype=np.float64)
+        gauss = "cf_gaussian" in ds.variables
+        g_sum = np.zeros(rh_edges.size - 1, dtype=np.float64)
+        g_n = np.zeros(rh_edges.size - 1, dtype=np.float64)
         for sl in set_slices(ds, chunk):
             rh = np.asarray(ds["rh_of_means"].isel(sample=sl).values, dtype=np.float64)
             cf = np.asarray(ds["cloud_fraction"].isel(sample=sl).values, dtype=np.float64)
             ok = np.isfinite(rh) & np.isfinite(cf)
             counts += np.histogram2d(rh[ok], cf[ok], bins=(rh_edges, cf_edges))[0]
             cf_sum += np.histogram(rh[ok], bins=rh_edges, weights=cf[ok])[0]
+            if gauss:
+                g = np.asarray(ds["cf_gaussian"].isel(sample=sl).values, dtype=np.float64)
+                okg = np.isfinite(rh) & np.isfinite(g)
+                g_sum += np.histogram(rh[okg], bins=rh_edges, weights=g[okg])[0]
+                g_n += np.histogram(rh[okg], bins=rh_edges)[0]
     fig = _figure(6.5, 5.0)
     ax = fig.subplots()
     n = int(counts.sum())
@@ -549,6 +558,17 @@ def scale_cf_vs_rh(
         mew=0.6,
         label="mean cloud fraction per RH bin",
     )
+    if gauss and np.any(g_n > 0):
+        ax.plot(
+            centres[g_n > 0],
+            g_sum[g_n > 0] / g_n[g_n > 0],
+            "s",
+            ms=3.5,
+            color="tab:orange",
+            mec="black",
+            mew=0.6,
+            label="mean Gaussian-PDF cloud fraction per RH bin (LES sub-grid statistics)",
+        )
     rh_line = np.linspace(lo, hi, 400)
     ax.plot(
         rh_line,

@@ -10,7 +10,8 @@ import zarr
 
 from lesprep.verify.findings import ResultsTree
 
-CANONICAL_FINITE: tuple[str, ...] = ("qc", "qv", "T", "w", "rh", "lwp", "p")
+COORDINATES: tuple[str, ...] = ("time", "z", "y", "x", "z_bounds", "y_bounds", "x_bounds")
+"""Coordinate arrays of a store (not checked)."""
 _BLOCK_BYTES = 64 * 2**20  # read at most this much per array access when scanning
 
 
@@ -18,10 +19,20 @@ _BLOCK_BYTES = 64 * 2**20  # read at most this much per array access when scanni
 
 
 def _forbidden(kind: str, name: str) -> bool:
+    """Whether NaN is forbidden in an array: every canonical field (ingest refuses NaN in
+    any mapped field and derives the others from them); in a scale store, the moments,
+    covariances, sub-grid TKE and the cloud fractions (``drh_dz`` of a one-level column
+    and the baselines may be NaN)."""
+    if name in COORDINATES:
+        return False
     if kind == "canonical":
-        return name in CANONICAL_FINITE
+        return True
     base, _, suffix = name.rpartition("_")
-    return name == "cloud_fraction" or (bool(base) and suffix in ("mean", "var", "skew"))
+    return (
+        name in ("cloud_fraction", "cloud_fraction_zero", "tke_sgs")
+        or name.startswith("cov_")
+        or (bool(base) and suffix in ("mean", "var", "skew"))
+    )
 
 
 def nonfinite(

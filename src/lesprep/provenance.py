@@ -244,7 +244,8 @@ def summarize(prov: dict[str, Any], *, attrs: dict[str, Any] | None = None, path
             lines.append(
                 f"    spin-up {float(s.get('spinup_s', 'nan')) / 3600:g} h (dropped "
                 f"{len(st.get('times_dropped_s', []))} times, kept {st.get('times_kept')}), "
-                f"cloud threshold {float(s.get('threshold', 'nan')):g} kg kg-1, "
+                f"cloud threshold {float(s.get('threshold', 'nan')):g} "
+                f"{s.get('threshold_units', 'kg kg-1')}, "
                 f"saturation: {st.get('saturation_formula')}"
             )
             lines.append(f"    config sha256 {str(st.get('config_sha256'))[:16]}")

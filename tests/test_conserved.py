@@ -290,3 +290,29 @@ def test_ice_saturation_mixing_ratio_against_metpy() -> None:
     # MetPy 1.7's ice formula (Ambaum 2020) is itself off IAPWS 2011 by up to 0.11 % in
     # 240-273 K and by 3 % at 190 K (measured), so only this range, at 0.2 %.
     np.testing.assert_allclose(thermo.saturation_mixing_ratio_ice(p, t), ref, rtol=2e-3)
+
+
+@pytest.mark.parametrize("species", [(), ("qi",), ("qi", "qr")])
+@pytest.mark.parametrize("profile", [False, True])
+def test_per_slab_conserved_engines_agree(species, profile) -> None:
+    # the compiled pass against the thermo functions above (the numpy engine)
+    from lesprep.scales.conserved import conserved_fields
+
+    rng = np.random.default_rng(4)
+    shape = (3, 5, 6)
+    fine = {
+        "T": rng.uniform(270.0, 295.0, shape).astype(np.float32),
+        "qv": rng.uniform(2e-3, 1.2e-2, shape).astype(np.float32),
+        "qc": rng.uniform(0.0, 1e-3, shape).astype(np.float32),
+    }
+    for s in species:
+        fine[s] = rng.uniform(0.0, 2e-4, shape).astype(np.float32)
+    p = np.array([95000.0, 90000.0, 85000.0])
+    if not profile:
+        p = p[:, None, None] + rng.normal(0.0, 20.0, shape)
+    names = ["qt", "theta_l", "theta_v"] + (["theta_il"] if "qi" in species else [])
+    fast = conserved_fields(fine, names, p, engine="numba")
+    ref = conserved_fields(fine, names, p, engine="numpy")
+    assert set(fast) == set(ref) == set(names)
+    for n in names:
+        np.testing.assert_allclose(fast[n], ref[n], rtol=1e-14, err_msg=n)

@@ -202,3 +202,31 @@ def test_monte_carlo_exact_condition_small_variance() -> None:
         sigma = float(schemes.saturation_excess_std(lin.a, lin.b, stats[3], stats[4], stats[5]))
         curvature = 2.0 * 0.4 * float(lin.a) * 0.5 * d2 * pi * pi * sd_thl**2 / sigma
         assert abs(frac - c) <= 4.0 * se + curvature, (stats, frac, c, curvature)
+
+
+def test_compiled_chain_from_sums_matches_the_reference() -> None:
+    # the compiled per-cell chain against the numpy chain above (same formulas)
+    from lesprep.schemes import gaussian_cloud_fraction_from_sums
+
+    rng = np.random.default_rng(8)
+    shape = (4, 6, 5)
+    n = 16
+    qt = rng.uniform(6e-3, 1.4e-2, shape)
+    thl = rng.uniform(283.0, 292.0, shape)
+    p = rng.uniform(85000.0, 100000.0, shape)
+    sq, st = rng.uniform(0.0, 2e-3, shape), rng.uniform(0.0, 0.6, shape)
+    rho = rng.uniform(-0.9, 0.9, shape)
+    m2q, m2t = n * sq**2, n * st**2
+    c = n * rho * sq * st
+    m2q[0, 0, 0] = 0.0  # sigma_s may be 0 where both variances are
+    m2t[0, 0, 0] = 0.0
+    c[0, 0, 0] = 0.0
+    c[1, 1, 1] = 2.0 * np.sqrt(m2q[1, 1, 1] * m2t[1, 1, 1])  # not a covariance: NaN
+    fast = np.empty(shape, dtype=np.float64)
+    ref = np.empty(shape, dtype=np.float64)
+    args = (qt, thl, p, m2q, m2t, c, n)
+    gaussian_cloud_fraction_from_sums(*args, out=fast, engine="numba")
+    gaussian_cloud_fraction_from_sums(*args, out=ref, engine="numpy")
+    assert np.isnan(fast[1, 1, 1]) and np.isnan(ref[1, 1, 1])
+    np.testing.assert_allclose(fast, ref, rtol=1e-10, atol=1e-14)
+    assert fast[0, 0, 0] in (0.0, 1.0)

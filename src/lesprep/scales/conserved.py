@@ -23,6 +23,7 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 
 from lesprep import catalogue, thermo
+from lesprep._jit import HAVE_NUMBA, Engine, njit, prange, resolve_engine
 from lesprep.errors import ConfigError
 
 PER_SLAB: tuple[str, ...] = tuple(v.name for v in catalogue.variables() if v.per_slab)
@@ -72,7 +73,11 @@ def _exact(fine: Mapping[str, np.ndarray], name: str) -> np.ndarray:
 
 
 def conserved_fields(
-    fine: Mapping[str, np.ndarray], names: Sequence[str], p: np.ndarray
+    fine: Mapping[str, np.ndarray],
+    names: Sequence[str],
+    p: np.ndarray,
+    *,
+    engine: Engine = "auto",
 ) -> dict[str, np.ndarray]:
     """The per-slab variables among ``names``, float64, the shape of ``fine["T"]``.
 
@@ -84,6 +89,11 @@ def conserved_fields(
         Variables wanted (others are ignored).
     p
         Pressure of the slab, Pa: ``(k, ny, nx)`` or a ``(k,)`` profile.
+    engine
+        ``"numba"``: one compiled pass over the cells for every wanted variable, with the
+        Exner function computed once per cell; ``"numpy"``: the reference, the functions
+        of :mod:`lesprep.thermo`; ``"auto"``: numba when available. Both agree to
+        round-off.
 
     Examples
     --------
@@ -99,6 +109,8 @@ def conserved_fields(
     pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], t.shape)
     qv, qc = _exact(fine, "qv"), _exact(fine, "qc")
     qi = _exact(fine, "qi") if "qi" in fine else None
+    if resolve_engine(engine) == "numba" and t.ndim == 3:
+        return _compiled(fine, wanted, t, pp, qv, qc, qi)
     out: dict[str, np.ndarray] = {}
     for n in wanted:
         if n == "qt":
@@ -116,3 +128,84 @@ def conserved_fields(
                     cond += _exact(fine, s)
             out[n] = thermo.virtual_potential_temperature(pp, t, qv, cond)
     return out
+
+
+def _compiled(
+    fine: Mapping[str, np.ndarray],
+    wanted: Sequence[str],
+    t: np.ndarray,
+    pp: np.ndarray,
+    qv: np.ndarray,
+    qc: np.ndarray,
+    qi: np.ndarray | None,
+) -> dict[str, np.ndarray]:
+    zero = np.zeros((1, 1, 1))
+    ice = zero if qi is None else np.ascontiguousarray(qi)
+    rain = np.ascontiguousarray(_exact(fine, "qr")) if "qr" in fine else zero
+    outs = {n: np.empty(t.shape) for n in wanted}
+    dummy = np.empty((1, 1, 1))
+    p3 = pp if pp.strides[-1] != 0 else np.ascontiguousarray(pp)
+    _nb_conserved(
+        np.ascontiguousarray(t),
+        np.ascontiguousarray(p3),
+        np.ascontiguousarray(qv),
+        np.ascontiguousarray(qc),
+        ice,
+        rain,
+        qi is not None,
+        "qr" in fine,
+        outs.get("qt", dummy),
+        outs.get("theta_l", dummy),
+        outs.get("theta_il", dummy),
+        outs.get("theta_v", dummy),
+        "qt" in outs,
+        "theta_l" in outs,
+        "theta_il" in outs,
+        "theta_v" in outs,
+    )
+    return outs
+
+
+if HAVE_NUMBA:
+    _LV_CP = thermo.LV / thermo.CP
+    _LS_CP = thermo.LS / thermo.CP
+    _P0, _KAPPA, _EPS = thermo.P0, thermo.KAPPA, thermo.EPS
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def _nb_conserved(
+        t,
+        p,
+        qv,
+        qc,
+        qi,
+        qr,
+        has_ice,
+        has_rain,
+        o_qt,
+        o_thl,
+        o_thil,
+        o_thv,
+        w_qt,
+        w_thl,
+        w_thil,
+        w_thv,
+    ):  # pragma: no cover - compiled
+        nz, ny, nx = t.shape
+        for kj in prange(nz * ny):
+            k = kj // ny
+            j = kj - k * ny
+            for i in range(nx):
+                tk = t[k, j, i]
+                pi = (p[k, j, i] / _P0) ** _KAPPA
+                rv = qv[k, j, i]
+                rc = qc[k, j, i]
+                ri = qi[k, j, i] if has_ice else 0.0
+                if w_qt:
+                    o_qt[k, j, i] = rv + rc + ri
+                if w_thl:
+                    o_thl[k, j, i] = (tk - _LV_CP * rc) / pi
+                if w_thil:
+                    o_thil[k, j, i] = (tk - (_LV_CP * rc + _LS_CP * ri)) / pi
+                if w_thv:
+                    cond = rc + ri + (qr[k, j, i] if has_rain else 0.0)
+                    o_thv[k, j, i] = tk / pi * (1.0 + rv / _EPS) / (1.0 + rv + cond)

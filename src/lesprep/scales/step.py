@@ -27,7 +27,7 @@ from lesprep.scales.moments import (
 from lesprep.scales.patches import extract_patches, patch_geometry
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
-from lesprep.schemes import gaussian_cloud_fraction_from_moments, sundqvist_cloud_fraction
+from lesprep.schemes import gaussian_cloud_fraction_from_sums, sundqvist_cloud_fraction
 
 
 def vertical_derivative(values: np.ndarray, z: np.ndarray, *, axis: int = 0) -> np.ndarray:
@@ -330,7 +330,8 @@ class StepCoarsener:
                     )
                 else:
                     d[f"{v}_mean"][sl] = m.mean
-                if v in st.moments and f == factors[0] and v not in refs:
+                counted = v in st.moments and v not in refs and v not in PER_SLAB
+                if counted and f == factors[0]:  # per-slab variables are never rounded
                     self._count_quantized(v, d[f"{v}_var"][sl], m.mean)
             t_mean = means["T"] if "T" in means else moments["T"][f].mean
             qv_mean = means["qv"] if "qv" in means else moments["qv"][f].mean
@@ -350,13 +351,15 @@ class StepCoarsener:
             if self.tke:
                 d["tke_sgs"][sl] = subgrid_tke(*(moments[w][f].variance() for w in WINDS))
             qt_m, thl_m = (means.get(v, moments[v][f].mean) for v in GAUSSIAN_INPUTS)
-            d["cf_gaussian"][sl] = gaussian_cloud_fraction_from_moments(
+            gaussian_cloud_fraction_from_sums(
                 qt_m,
                 thl_m,
                 p3,
-                moments["qt"][f].variance(),
-                moments["theta_l"][f].variance(),
-                cov[GAUSSIAN_INPUTS][f].covariance(),
+                moments["qt"][f].m2,
+                moments["theta_l"][f].m2,
+                cov[GAUSSIAN_INPUTS][f].cov_sum,
+                f * f,
+                out=d["cf_gaussian"][sl],
             )
             if s.label in st.patch_scales:
                 ds, _ = patch_geometry(f, st.patch_size, st.patch_halo)

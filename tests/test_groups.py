@@ -27,6 +27,7 @@ from lesprep.sets.splits import (
     write_assignment_tsv,
 )
 from settings_helpers import workflow_settings
+from workflow_project import Project
 
 THREE = {"train": 0.7, "validation": 0.1, "test": 0.2}
 TWO = {"train": 0.8, "test": 0.2}
@@ -459,3 +460,31 @@ def test_shipped_demo_puts_a_group_of_each_regime_in_train_and_in_test():
         groups = {(a.group, a.split) for a in assignments if a.regime == regime}
         assert {s for _, s in groups} == {"train", "test"}
         assert len({g for g, _ in groups}) == 2
+
+
+# ---------------------------------------------------------------- workflow
+
+
+@pytest.mark.workflow
+def test_workflow_splits_whole_groups_and_logs_values_with_too_few_groups(tmp_path):
+    p = Project(tmp_path)
+    sites = {"sc-ostra-01": "sc-ostra", "sc-ostra-02": "sc-ostra", "sc-pelle-01": ""}
+    sites.update({"cu-marro-01": "cu-marro", "cu-marro-02": "cu-marro"})
+    for case, group in sites.items():
+        surface = "land" if case.startswith("cu-") else "ocean"
+        p.add_demo_case(case, group=group, surface=surface)
+    p.config["case_attributes"] = {"surface": ["land", "ocean"]}
+    p.config["splits"]["stratify"] = ["regime", "surface"]
+    p.snakemake("results/splits.tsv")
+    got = {a.case: a for a in read_assignment_tsv(tmp_path / "results/splits.tsv")}
+    assert {c: got[c].group for c in sites} == {c: g or c for c, g in sites.items()}
+    assert got["sc-ostra-01"].split == got["sc-ostra-02"].split
+    assert got["cu-marro-01"].split == got["cu-marro-02"].split
+    log = (tmp_path / "logs/splits.log").read_text(encoding="utf-8")
+    assert "regime 'cumulus' has only 1 group ('cu-marro'" in log
+    assert "surface 'land' has only 1 group ('cu-marro'" in log
+    # a stratify name the config does not declare stops the workflow before any job
+    p.config["splits"]["stratify"] = ["regime", "season"]
+    res = p.snakemake("results/splits.tsv", check=False)
+    assert res.returncode != 0
+    assert "['season'], which case_attributes does not declare" in res.stdout + res.stderr

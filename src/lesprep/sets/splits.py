@@ -64,11 +64,12 @@ absent: no validation split). The fractions must be >= 0 and sum to 1 within 1e-
    candidate is skipped when the move would take away the only train (test) group of
    this stratum or of an earlier stratifiable stratum; the next candidate in the same
    order is tried. Moved groups' cases get reason ``"stratified"`` (a group moved back
-   to its hash split by a later stratum is ``"hash"`` again). Every stratum that is not
-   stratifiable is left as it is and reported, and so is a stratifiable stratum for
-   which every candidate is skipped: one message per such stratum, in processing order,
-   in the second return value of :func:`assign_splits` (the caller logs them); a
-   one-group stratum is always reported.
+   to its hash split by a later stratum is ``"hash"`` again). A stratum that is not
+   stratifiable gets no move of its own (no partial corrections) and one message; a
+   stratifiable stratum for which every candidate of a missing split is skipped gets one
+   message per such split. The messages come in processing order, in the second return
+   value of :func:`assign_splits` (the caller logs them); a one-group stratum is always
+   reported.
 
    *One stratification attribute whose values each group carries one of* (the default
    ``stratify: [regime]`` with groups of one regime): strata are disjoint, no candidate
@@ -183,7 +184,7 @@ class CaseInfo:
         Case id: non-empty, no ASCII control characters (tab, newline, NUL ...).
     regime
         Regime tag for stratification; ``""`` means untagged (the untagged cases form
-        one group).
+        one stratum).
     pinned
         A split the case (and with it its group) must go to, or None to let the rule
         decide.

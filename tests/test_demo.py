@@ -74,6 +74,7 @@ def test_default_cases_match_the_brief() -> None:
     assert sorted(CASES) == [
         "cu-marro-01",
         "cu-marro-02",
+        "cu-varnix-01",
         "sc-ostra-01",
         "sc-ostra-02",
         "sc-pelle-01",
@@ -85,6 +86,7 @@ def test_default_cases_match_the_brief() -> None:
         "sc-pelle-01": "broken",
         "cu-marro-01": "cumulus",
         "cu-marro-02": "cumulus",
+        "cu-varnix-01": "cumulus",
     }
     for case, spec in CASES.items():
         assert spec.regime == ("stratocumulus" if case.startswith("sc-") else "cumulus")
@@ -92,7 +94,7 @@ def test_default_cases_match_the_brief() -> None:
         assert 40 <= spec.nz <= 56 and 2500.0 <= spec.ztop <= 3000.0
         assert 7 <= spec.ntimes <= 9 and 1200.0 <= spec.interval_s <= 1800.0
     assert {s.flavour for s in CASES.values()} == {"alpha", "beta"}
-    assert len({(s.nz, s.ztop, s.ntimes, s.interval_s) for s in CASES.values()}) == 5
+    assert len({(s.nz, s.ztop, s.ntimes, s.interval_s) for s in CASES.values()}) == 6
 
 
 def test_unknown_case_lists_valid_ids() -> None:
@@ -161,6 +163,7 @@ def test_cloud_cover_by_regime(last_fields, first_fields) -> None:
     assert cover["sc-ostra-01"] > 0.9 and cover["sc-ostra-02"] > 0.9
     assert 0.3 < cover["sc-pelle-01"] < 0.9
     assert 0.0 < cover["cu-marro-01"] < 0.4 and 0.0 < cover["cu-marro-02"] < 0.4
+    assert 0.0 < cover["cu-varnix-01"] < 0.4
     for case, fields in first_fields.items():  # spin-up: little cloud at the first output
         assert _cover(fields) < min(0.1, cover[case]), case
 
@@ -237,7 +240,7 @@ def test_stratocumulus_profile(case: str, last_fields) -> None:
     assert z[cloudy[-1]] < zi + 150.0  # cloud capped by the inversion
 
 
-@pytest.mark.parametrize("case", ["cu-marro-01", "cu-marro-02"])
+@pytest.mark.parametrize("case", ["cu-marro-01", "cu-marro-02", "cu-varnix-01"])
 def test_cumulus_layer(case: str) -> None:
     spec = CASES[case]
     tops, bases = [], []

@@ -210,10 +210,10 @@ def test_unstratifiable_regimes_are_reported_and_left_alone():
     assignments, messages = assign_splits(cases, rule)
     assert {a.reason for a in assignments} == {"pinned", "hash"}
     assert len(messages) == 3
-    assert "regime 'lonely' has only 1 case" in messages[0]
+    assert "regime 'lonely' has only 1 group" in messages[0]
     assert "regime 'one-free'" in messages[1]
     assert "regime 'pinned-train'" in messages[2]
-    assert all("train and a test case" in m for m in messages)
+    assert all("train and a test group" in m for m in messages)
 
 
 def test_untagged_cases_form_one_group():
@@ -307,13 +307,21 @@ def test_rule_dict_round_trip_and_errors():
     rule = SplitRule(fractions=THREE, seed="autumn")
     assert SplitRule.from_dict(rule.to_dict()) == rule
     assert hash(SplitRule.from_dict(rule.to_dict())) == hash(rule)
-    assert rule.to_dict() == {"fractions": THREE, "seed": "autumn"}
+    assert rule.to_dict() == {"fractions": THREE, "seed": "autumn", "stratify": ["regime"]}
     with pytest.raises(ConfigError, match="seed"):
-        SplitRule.from_dict({"fractions": TWO})  # the schema gives the default, not the code
+        SplitRule.from_dict({"fractions": TWO, "stratify": []})  # the schema gives defaults
+    with pytest.raises(ConfigError, match="no 'stratify'"):
+        SplitRule.from_dict({"fractions": TWO, "seed": 1})
     with pytest.raises(ConfigError, match="unknown key"):
         SplitRule.from_dict({"fractions": TWO, "sead": 1})
     with pytest.raises(ConfigError, match="no 'fractions'"):
         SplitRule.from_dict({"seed": 1})
+    with_surface = SplitRule(fractions=TWO, seed=1, stratify=["regime", "surface"])
+    assert SplitRule.from_dict(with_surface.to_dict()) == with_surface
+    assert with_surface.stratify == ("regime", "surface")
+    for bad in ("regime", ["regime", "regime"], [""], [3]):
+        with pytest.raises(ConfigError, match="stratify"):
+            SplitRule(fractions=TWO, stratify=bad)
 
 
 def test_cases_in_split():
@@ -339,7 +347,7 @@ def test_tsv_round_trip(tmp_path):
     write_assignment_tsv(assignments, path)
     assert read_assignment_tsv(path) == assignments  # u restored bit for bit
     lines = path.read_text(encoding="utf-8").split("\n")
-    assert lines[0] == "case\tregime\tsplit\treason\tu"
+    assert lines[0] == "case\tgroup\tregime\tsplit\treason\tu"
     assert lines[-1] == ""
     assert len(lines) == len(assignments) + 2
     assert os.listdir(tmp_path) == ["splits.tsv"]  # the temporary file was renamed away
@@ -354,20 +362,23 @@ def test_tsv_write_leaves_nothing_on_failure(tmp_path):
     assert os.listdir(tmp_path) == []
 
 
+HEAD = "case\tgroup\tregime\tsplit\treason\tu\n"
+
+
 @pytest.mark.parametrize(
     ("text", "words"),
     [
         ("", "expected the header"),
         ("case\tsplit\n", "expected the header"),
-        ("case\tregime\tsplit\treason\tu\na\t\ttrain\thash\n", "4 tab-separated fields"),
-        ("case\tregime\tsplit\treason\tu\na\t\tholdout\thash\t0.1\n", "not a split name"),
-        ("case\tregime\tsplit\treason\tu\na\t\ttrain\tguess\t0.1\n", "reason"),
-        ("case\tregime\tsplit\treason\tu\na\t\ttrain\thash\tlots\n", "u is"),
-        ("case\tregime\tsplit\treason\tu\na\t\ttrain\thash\t1.5\n", "u is"),
-        (
-            "case\tregime\tsplit\treason\tu\na\t\ttrain\thash\t0.1\na\t\ttest\thash\t0.9\n",
-            "more than once",
-        ),
+        ("case\tregime\tsplit\treason\tu\na\t\ttrain\thash\t0.1\n", "expected the header"),
+        (HEAD + "a\t\t\ttrain\thash\n", "5 tab-separated fields"),
+        (HEAD + "a\t\t\tholdout\thash\t0.1\n", "not a split name"),
+        (HEAD + "a\t\t\ttrain\tguess\t0.1\n", "reason"),
+        (HEAD + "a\t\t\ttrain\thash\tlots\n", "u is"),
+        (HEAD + "a\t\t\ttrain\thash\t1.5\n", "u is"),
+        (HEAD + "a\t\t\ttrain\thash\t0.1\na\t\t\ttest\thash\t0.9\n", "more than once"),
+        (HEAD + "a\tg\t\ttrain\thash\t0.1\nb\tg\t\ttest\thash\t0.1\n", "of the same group"),
+        (HEAD + "a\tg\t\ttrain\thash\t0.1\nb\tg\t\ttrain\thash\t0.2\n", "line 2"),
     ],
 )
 def test_tsv_read_errors(tmp_path, text, words):

@@ -21,6 +21,7 @@ FLAVOUR = {
     "sc-pelle-01": "alpha",
     "cu-marro-01": "alpha",
     "cu-marro-02": "beta",
+    "cu-varnix-01": "alpha",
 }
 REGIME = {c: ("cumulus" if c.startswith("cu") else "stratocumulus") for c in FLAVOUR}
 
@@ -78,7 +79,8 @@ class Project:
         (self.root / "config").mkdir(parents=True, exist_ok=True)
         (self.root / "config/config.yaml").write_text(yaml.safe_dump(self.config))
         cols = ["case", "regime", "varmap", "raw", "split", "spinup", "demo"]
-        lines = ["\t".join(cols)] + ["\t".join(r[c] for c in cols) for r in self.rows]
+        cols += sorted({c for r in self.rows for c in r} - set(cols))  # group, attributes
+        lines = ["\t".join(cols)] + ["\t".join(r.get(c, "") for c in cols) for r in self.rows]
         (self.root / "config/cases.tsv").write_text("\n".join(lines) + "\n")
 
     def snakemake(

@@ -10,9 +10,10 @@ from __future__ import annotations
 
 import copy
 import csv
-from collections.abc import Mapping
-from dataclasses import dataclass
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any
 
 import jsonschema
@@ -24,7 +25,8 @@ from lesprep.units import parse_quantity
 SCHEMA_DIR = Path(__file__).resolve().parent / "schemas"
 """Folder of the JSON schemas (installed with the package)."""
 
-CASE_COLUMNS = ("case", "regime", "varmap", "raw", "split", "spinup", "demo")
+CASE_COLUMNS = ("case", "group", "regime", "varmap", "raw", "split", "spinup", "demo")
+"""The fixed columns of the case sheet; extra columns must be declared (``case_attributes``)."""
 
 
 def _schema(name: str, schema_dir: Path | None = None) -> dict[str, Any]:
@@ -108,7 +110,15 @@ def prepare_config(
 
 @dataclass(frozen=True, kw_only=True)
 class CaseRow:
-    """One row of the case sheet."""
+    """One row of the case sheet.
+
+    Attributes
+    ----------
+    group
+        The case's site group, resolved: the case id when the sheet leaves it empty.
+    attributes
+        Declared extra columns, name to value (read-only; ``""`` for an empty cell).
+    """
 
     case: str
     regime: str
@@ -117,34 +127,95 @@ class CaseRow:
     split: str = ""
     spinup_s: float | None = None
     demo: bool = False
+    group: str = ""
+    attributes: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "group", self.group or self.case)
+        object.__setattr__(self, "attributes", MappingProxyType(dict(self.attributes)))
 
 
-def read_case_sheet(path: str | Path, *, schema_dir: Path | None = None) -> list[CaseRow]:
+def _check_header(
+    path: Path, fieldnames: Sequence[str], attributes: Mapping[str, Sequence[str]]
+) -> None:
+    unknown = [c for c in fieldnames if c not in CASE_COLUMNS and c not in attributes]
+    if unknown:
+        raise ConfigError(
+            f"case sheet {path}: unknown column(s) {unknown}; expected some of "
+            f"{list(CASE_COLUMNS)} or a column declared in case_attributes "
+            f"(declared: {sorted(attributes)})",
+            hint="check the header row is tab-separated and spelled as documented, or "
+            "declare the extra column under case_attributes in the config",
+        )
+    missing = [name for name in attributes if name not in fieldnames]
+    if missing:
+        raise ConfigError(
+            f"case sheet {path}: the config declares the attribute column(s) {missing} under "
+            f"case_attributes, but the header has only {list(fieldnames)}",
+            hint="add the column to the case sheet (cells may be empty) or remove it from "
+            "case_attributes",
+        )
+
+
+def _check_groups(path: Path, rows: Sequence[CaseRow], linenos: Mapping[str, int]) -> None:
+    """Cases of one group must not be pinned to different splits."""
+    pins: dict[str, CaseRow] = {}
+    for row in rows:
+        if not row.split:
+            continue
+        other = pins.setdefault(row.group, row)
+        if other.split != row.split:
+            raise ConfigError(
+                f"case sheet {path}: rows {linenos[other.case]} (case {other.case!r}, split "
+                f"{other.split!r}) and {linenos[row.case]} (case {row.case!r}, split "
+                f"{row.split!r}) are both in group {row.group!r}; a group goes to one split",
+                hint="pin the cases of one group to the same split, or pin only one of them",
+            )
+
+
+def read_case_sheet(
+    path: str | Path,
+    *,
+    attributes: Mapping[str, Sequence[str]] | None = None,
+    schema_dir: Path | None = None,
+) -> list[CaseRow]:
     """Read and validate the case sheet (tab-separated, one header row).
+
+    Parameters
+    ----------
+    path
+        The sheet.
+    attributes
+        Declared extra columns (the config's ``case_attributes``): name to allowed
+        values, an empty sequence allowing any value. None or empty: no extra column.
+    schema_dir
+        Folder of the schemas; defaults to the package's own.
+
+    Returns
+    -------
+    list of CaseRow
+        In sheet order.
 
     Raises
     ------
     ConfigError
-        Unknown columns, invalid rows, unsafe or duplicate case ids.
+        Unknown or missing columns, invalid rows, unsafe or duplicate case ids, a value
+        not allowed for its column, or two cases of one group pinned to different splits.
     """
     path = Path(path)
+    attributes = {} if attributes is None else attributes
     schema = _schema("cases.schema.yaml", schema_dir)
     rows: list[CaseRow] = []
     seen: dict[str, int] = {}
     with open(path, encoding="utf-8", newline="") as fh:
         lines = [ln for ln in fh if ln.strip() and not ln.lstrip().startswith("#")]
     reader = csv.DictReader(lines, delimiter="\t")
-    unknown = [c for c in (reader.fieldnames or []) if c not in CASE_COLUMNS]
-    if unknown:
-        raise ConfigError(
-            f"case sheet {path}: unknown column(s) {unknown}; "
-            f"expected some of {list(CASE_COLUMNS)}",
-            hint="check the header row is tab-separated and spelled as documented",
-        )
+    _check_header(path, reader.fieldnames or [], attributes)
     for lineno, rec in enumerate(reader, start=2):
         rec = {k: (v or "").strip() for k, v in rec.items() if k is not None}
         if None in rec or any(v is None for v in rec.values()):
             raise ConfigError(f"case sheet {path}: row {lineno} has the wrong number of fields")
+        extra = {name: rec.pop(name) for name in attributes}
         validate(rec, schema, what=f"case sheet {path} row {lineno}")
         cid = rec["case"]
         if cid in seen:
@@ -153,10 +224,20 @@ def read_case_sheet(path: str | Path, *, schema_dir: Path | None = None) -> list
                 hint="case ids must be unique",
             )
         seen[cid] = lineno
+        for name, value in extra.items():
+            allowed = list(attributes[name])
+            if allowed and value not in allowed:
+                raise ConfigError(
+                    f"case sheet {path} row {lineno}: column {name!r} of case {cid!r} is "
+                    f"{value!r}; expected one of {allowed}",
+                    hint="fix the cell or add the value to case_attributes in the config",
+                )
         spinup = rec.get("spinup", "")
         rows.append(
             CaseRow(
                 case=cid,
+                group=rec.get("group", ""),
+                attributes=extra,
                 regime=rec.get("regime", ""),
                 varmap=rec["varmap"],
                 raw=rec["raw"],
@@ -169,4 +250,5 @@ def read_case_sheet(path: str | Path, *, schema_dir: Path | None = None) -> list
         )
     if not rows:
         raise ConfigError(f"case sheet {path} lists no case")
+    _check_groups(path, rows, seen)
     return rows

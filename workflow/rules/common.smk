@@ -3,7 +3,6 @@
 import glob as _glob
 from pathlib import Path
 
-from lesprep.config import read_case_sheet
 from lesprep.jobs.resources import job_resources, job_threads
 from lesprep.jobs.settings import WorkflowSettings
 from lesprep.jobs.steps import stage_code_versions
@@ -12,14 +11,23 @@ from lesprep.sets.splits import CaseInfo, assign_splits
 
 SETTINGS = WorkflowSettings.from_config(config)
 LAYOUT = SETTINGS.results
-CASES = {row.case: row for row in read_case_sheet(SETTINGS.cases)}
+CASES = {row.case: row for row in SETTINGS.case_sheet()}
 CODE = stage_code_versions()
 SCALE_LABELS = list(SETTINGS.coarsen.labels)
 SCALE_GROUPS = dict(SETTINGS.coarsen.groups)
 
 # The split is computed once, here; the splits job writes this assignment and its notes.
 ASSIGNMENT, SPLIT_MESSAGES = assign_splits(
-    [CaseInfo(case=r.case, regime=r.regime, pinned=r.split or None) for r in CASES.values()],
+    [
+        CaseInfo(
+            case=r.case,
+            regime=r.regime,
+            pinned=r.split or None,
+            group=r.group,
+            attributes=r.attributes,
+        )
+        for r in CASES.values()
+    ],
     SETTINGS.split_rule,
 )
 ACTIVE_SPLITS = [s for s in SPLITS if any(a.split == s for a in ASSIGNMENT)]

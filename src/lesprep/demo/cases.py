@@ -353,8 +353,19 @@ DEMO_CASES: tuple[DemoCase, ...] = (
         interval_s=1800.0,
         seed=505,
     ),
+    DemoCase(
+        case="cu-varnix-01",
+        regime="cumulus",
+        kind="cumulus",
+        flavour="alpha",
+        nz=50,
+        ztop=2900.0,
+        ntimes=7,
+        interval_s=1500.0,
+        seed=606,
+    ),
 )
-"""The default demo cases (invented ids)."""
+"""The default demo cases (invented ids; two sites of each regime)."""
 
 
 def demo_case(case_id: str) -> DemoCase:

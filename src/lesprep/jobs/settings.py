@@ -12,10 +12,12 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any
 
 from lesprep.canonical.settings import IngestSettings
-from lesprep.config import CaseRow, prepare_config, read_config
+from lesprep.config import CaseRow, prepare_config, read_case_sheet, read_config
+from lesprep.errors import ConfigError
 from lesprep.jobs.resources import ResourceSettings
 from lesprep.layout import ResultsLayout
 from lesprep.scales.settings import CoarsenPlan
@@ -42,6 +44,8 @@ class WorkflowSettings:
         The results tree.
     cases
         Path of the case sheet.
+    case_attributes
+        Extra case-sheet columns, name to the tuple of allowed values (empty: any value).
     demo
         Demo archive settings.
     ingest
@@ -61,6 +65,7 @@ class WorkflowSettings:
 
     results: ResultsLayout
     cases: Path
+    case_attributes: Mapping[str, tuple[str, ...]]
     demo: DemoSettings
     ingest: IngestSettings
     coarsen: CoarsenPlan
@@ -79,16 +84,26 @@ class WorkflowSettings:
             A schema violation or a value that does not parse (names the key).
         """
         c = prepare_config(dict(cfg), what=what)
+        attributes = {name: tuple(values) for name, values in c["case_attributes"].items()}
+        split_rule = SplitRule.from_dict(c["splits"])
+        undeclared = [a for a in split_rule.stratify if a != "regime" and a not in attributes]
+        if undeclared:
+            raise ConfigError(
+                f"{what}: splits.stratify lists {undeclared}, which case_attributes does not "
+                f"declare (declared: {sorted(attributes)}); expected 'regime' or declared names",
+                hint="declare the column under case_attributes or remove it from the list",
+            )
         store = StoreSettings.from_dict(c["store"])
         ingest = IngestSettings.from_config(c["ingest"], store)
         dtype = ingest.dtype
         return cls(
             results=ResultsLayout(c["results"]),
             cases=Path(c["cases"]),
+            case_attributes=MappingProxyType(attributes),
             demo=DemoSettings(root=Path(c["demo"]["root"]), size=dict(c["demo"]["size"])),
             ingest=ingest,
             coarsen=CoarsenPlan.from_config(c["coarsen"], dtype=dtype, store=store),
-            split_rule=SplitRule.from_dict(c["splits"]),
+            split_rule=split_rule,
             sets=SetSettings.from_config(c["sets"], dtype=dtype, store=store),
             store=store,
             resources=ResourceSettings.from_config(c["resources"]),
@@ -98,6 +113,16 @@ class WorkflowSettings:
     def load(cls, path: str | Path) -> WorkflowSettings:
         """Read a config file (YAML) and parse it."""
         return cls.from_config(read_config(path), what=str(path))
+
+    def case_sheet(self) -> list[CaseRow]:
+        """Read the case sheet with the declared attribute columns.
+
+        Returns
+        -------
+        list of CaseRow
+            See :func:`lesprep.config.read_case_sheet`.
+        """
+        return read_case_sheet(self.cases, attributes=self.case_attributes)
 
     def ingest_for(self, row: CaseRow) -> IngestSettings:
         """Ingest settings of one case (its own spin-up, if the case sheet gives one)."""

@@ -37,10 +37,12 @@ from lesprep.raw.grid import (
     destagger_horizontal,
     destagger_vertical,
     face_side,
+    horizontal_attrs,
     horizontal_spacing,
     layer_thickness,
     vertical_faces,
 )
+from lesprep.raw.timeaxis import cf_time_attrs
 from lesprep.raw.varmap import VariableMap, load_varmap
 from lesprep.store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
 from lesprep.units import Conversion, conversion
@@ -475,12 +477,7 @@ def _layout(
         chunks=(nt,),
         dtype="float64",
         data=cat.times[keep],
-        attrs={
-            "units": "s",
-            "long_name": "time since the time origin",
-            "time_origin": cat.origin,
-            "axis": "T",
-        },
+        attrs=cf_time_attrs(cat.origin),
     )
     out["z"] = ArraySpec(
         dims=("z",),
@@ -513,7 +510,7 @@ def _layout(
             chunks=values.shape,
             dtype="float64",
             data=values,
-            attrs={"units": "m", "long_name": f"{axis} of cell centres", "axis": axis.upper()},
+            attrs=horizontal_attrs(axis, f"{axis} of cell centres"),
         )
     return out
 

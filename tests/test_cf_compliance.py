@@ -34,7 +34,7 @@ from lesprep.raw.timeaxis import NOMINAL_ORIGIN, cf_time_units
 from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import build_set
-from lesprep.store import coordinate_names, export_netcdf, open_store
+from lesprep.store import export_netcdf, open_store
 from settings_helpers import coarsen_settings, ingest_settings, set_settings
 
 REPO = Path(__file__).resolve().parents[1]
@@ -171,9 +171,22 @@ def test_times_decode_to_the_archive_dates(stores, tmp_path, demo_root):
         )
 
 
-def test_set_coordinates_have_no_fill_value(stores):
-    with open_store(stores["set"]) as ds:
-        assert {"time", "z", "y", "x", "case", "regime"} <= coordinate_names(ds)
+def test_set_export(stores, tmp_path):
+    """Per-sample coordinates: no fill value, categorical codes with flag values of their
+    own type, times the per-case stores' numbers (read back with netCDF4)."""
+    nc_path = export_netcdf(stores["set"], tmp_path / "set.nc")
+    with netCDF4.Dataset(nc_path) as nc:
+        for name in ("time", "z", "y", "x", "case", "regime"):
+            assert "_FillValue" not in nc[name].ncattrs(), name
+            assert "bounds" not in nc[name].ncattrs() and "axis" not in nc[name].ncattrs()
+        for name in ("case", "regime"):
+            assert nc[name].flag_values.dtype == nc[name].dtype, name
+        times = np.asarray(nc["time"][:])
+        codes = np.asarray(nc["case"][:])
+        names = str(nc["case"].flag_meanings).split()
+    for code, case in enumerate(names):
+        with open_store(stores[f"scale-{CASES[case]}"]) as ds:
+            assert set(np.unique(times[codes == code])) == set(ds["time"].values)
 
 
 @settings(max_examples=60, deadline=None)

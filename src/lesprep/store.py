@@ -27,6 +27,9 @@ from zarr.codecs import BloscCodec, ZstdCodec
 
 from lesprep.errors import ConfigError
 
+CONVENTIONS = "CF-1.11, ACDD-1.3"
+"""The conventions every store follows: CF 1.11 is the version an independent CF checker
+verifies (``tests/test_cf_compliance.py``)."""
 TMP_TAG = ".tmp-"
 CHUNK_KEYS = {"name": "v2", "separator": "."}
 """Flat chunk file names (``0.3.0.0``): one directory per array instead of one per chunk
@@ -170,6 +173,7 @@ def coordinate_names(ds: xr.Dataset) -> set[str]:
     lesprep, which are never missing) carry a ``_FillValue``.
     """
     names = {str(n) for n in ds.variables if n in ds.dims}
+    names.update(str(n) for n in ds.coords)  # xarray reads ``coordinates`` into coords
     for v in ds.variables.values():
         names.update(str(v.attrs.get("coordinates", "")).split())
         if "bounds" in v.attrs:

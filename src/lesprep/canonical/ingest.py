@@ -44,7 +44,15 @@ from lesprep.raw.grid import (
 )
 from lesprep.raw.timeaxis import cf_time_attrs
 from lesprep.raw.varmap import VariableMap, load_varmap
-from lesprep.store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
+from lesprep.store import (
+    CONVENTIONS,
+    ArraySpec,
+    TimeWriter,
+    atomic_path,
+    compressors,
+    consolidate,
+    create_store,
+)
 from lesprep.units import Conversion, conversion
 
 log = logging.getLogger(__name__)
@@ -500,7 +508,7 @@ def _layout(
         chunks=(nz, 2),
         dtype="float64",
         data=np.stack([faces[:-1], faces[1:]], axis=1),
-        attrs={"units": "m", "long_name": "cell bounds in height"},
+        attrs={"units": "m"},  # CF 7.1: a bounds variable describes its parent
     )
     for axis in ("y", "x"):
         values = getattr(cat.grid, axis)
@@ -673,7 +681,7 @@ def ingest_case(
             )
             attrs = provenance.extend(
                 {
-                    "Conventions": "CF-1.12, ACDD-1.3",
+                    "Conventions": CONVENTIONS,
                     "title": f"lesprep canonical fields of case {case}",
                     "summary": "Fine-grid LES fields in canonical names, units and grid, spin-up "
                     "removed, with derived relative humidity, cloud mask and liquid water path.",

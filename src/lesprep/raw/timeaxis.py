@@ -212,13 +212,15 @@ def cf_time_attrs(origin: str) -> dict[str, str]:
 
     The values are what the archive index gives (seconds since the archive's origin), so
     the stored numbers do not depend on the origin; the ``units`` tell a reader which
-    date time zero is. ``time_origin`` repeats the archive's origin as read.
+    date time zero is. ``time_origin`` repeats the archive's origin as read. A simulation's
+    clock has no leap seconds (CF 1.11 4.4.3: ``units_metadata = "leap_seconds: none"``).
     """
     attrs = {
         "standard_name": "time",
         "long_name": "time",
         "units": cf_time_units(origin),
         "calendar": "standard",
+        "units_metadata": "leap_seconds: none",
         "axis": "T",
         "time_origin": origin,
     }

@@ -35,7 +35,7 @@ from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
 from lesprep.sets.settings import SetSettings
-from lesprep.store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
+from lesprep.store import CHUNK_KEYS, CONVENTIONS, atomic_path, compressors, consolidate, open_store
 
 log = logging.getLogger(__name__)
 
@@ -346,7 +346,7 @@ def build_set(
         )
         root.attrs.update(
             {
-                "Conventions": "CF-1.12, ACDD-1.3",
+                "Conventions": CONVENTIONS,
                 "title": f"lesprep training samples, split {split}, scale {scale}",
                 "summary": "Coarse cells of whole cases stacked along 'sample' with their "
                 "sub-grid statistics, GCM-view inputs and fine patches.",

@@ -37,6 +37,10 @@ from lesprep.sets.assemble import build_set
 from lesprep.store import export_netcdf, open_store
 from settings_helpers import coarsen_settings, ingest_settings, set_settings
 
+pytestmark = pytest.mark.filterwarnings(
+    "ignore:The ioos_sos checker is deprecated:DeprecationWarning"  # a checker plugin we skip
+)
+
 REPO = Path(__file__).resolve().parents[1]
 SUITE = "cf:1.11"
 CASES = {"sc-ostra-01": "alpha", "sc-ostra-02": "beta"}
@@ -240,3 +244,16 @@ def test_durations_use_the_nominal_origin():
 def test_temperature_units_metadata(units, difference, want):
     got = temperature_metadata(units, difference=difference).get("units_metadata")
     assert got == want
+
+
+def test_export_command(stores, tmp_path, capsys):
+    from lesprep.cli import main
+
+    out = tmp_path / "scale.nc"
+    assert main(["export", str(stores["scale-beta"]), str(out)]) == 0
+    with netCDF4.Dataset(out) as nc, open_store(stores["scale-beta"]) as ds:
+        assert set(nc.variables) == {str(v) for v in ds.variables}
+    assert main(["export", str(tmp_path / "absent.zarr"), str(tmp_path / "x.nc")]) == 1
+    err = capsys.readouterr().err
+    assert "absent.zarr" in err and "zarr.json" in err
+    assert not (tmp_path / "x.nc").exists()

@@ -25,7 +25,7 @@ import xarray as xr
 import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
 
-from lesprep.errors import ConfigError
+from lesprep.errors import ConfigError, InputError
 
 CONVENTIONS = "CF-1.11, ACDD-1.3"
 """The conventions every store follows: CF 1.11 is the version an independent CF checker
@@ -247,8 +247,19 @@ def export_netcdf(store: str | Path, out: str | Path) -> Path:
     -------
     pathlib.Path
         ``out``.
+
+    Raises
+    ------
+    lesprep.errors.InputError
+        ``store`` is not a Zarr format 3 group.
     """
     out = Path(out)
+    if not (Path(store) / "zarr.json").is_file():
+        raise InputError(
+            "is not a lesprep store (no zarr.json: expected a Zarr format 3 group)",
+            file=str(store),
+            hint="give a results/cases/<case>/*.zarr or results/sets/<split>/*.zarr folder",
+        )
     with open_store(store) as ds, atomic_path(out) as tmp:
         data, encoding = netcdf_dataset(ds)
         data.to_netcdf(tmp, format="NETCDF4", engine="netcdf4", encoding=encoding)

@@ -73,7 +73,7 @@ def test_flavours_share_canonical_conventions(ingested, small_specs, case):
         "lwp": "kg m-2",
     }
     assert ds["qc"].attrs["standard_name"] == "cloud_liquid_water_mixing_ratio"
-    assert ds.attrs["Conventions"] == "CF-1.12, ACDD-1.3"
+    assert ds.attrs["Conventions"] == "CF-1.11, ACDD-1.3"
     # values equal the generator's own truth after the flavour's units, order and grid
     # are undone (float32 storage in the raw file and in the store: rtol 1e-5)
     times = spec.output_times_s()

@@ -46,7 +46,7 @@ import re
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -112,7 +112,7 @@ class Variable:
     water: bool = False
     precipitating: bool = False
     per_slab: bool = False
-    extra_attrs: Mapping[str, str] = field(default_factory=dict)
+    extra_attrs: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", self.name):
@@ -131,12 +131,45 @@ class Variable:
         """Units of the variance (the square of :attr:`units`)."""
         return variance_units(self.units)
 
-    def cf_attrs(self) -> dict[str, str]:
+    def cf_attrs(self) -> dict[str, Any]:
         """CF attributes of the canonical (fine-grid) field."""
-        attrs = {"standard_name": self.standard_name} if self.standard_name else {}
+        attrs: dict[str, Any] = {"standard_name": self.standard_name} if self.standard_name else {}
         attrs.update(long_name=self.long_name, units=self.units)
+        attrs.update(temperature_metadata(self.units, difference=False))
         attrs.update(self.extra_attrs)
         return attrs
+
+
+_TEMPERATURE = re.compile(r"^(K|degC|deg_C|celsius|degF|deg_F)(-?\d+)?$")
+"""A units token that is a temperature unit (with an optional power)."""
+
+
+def temperature_metadata(units: str, *, difference: bool) -> dict[str, str]:
+    """CF 1.11 ``units_metadata`` of a quantity whose units involve a temperature unit.
+
+    A temperature on its scale (units exactly ``K``, ``degC``, ...) is ``temperature:
+    on_scale`` unless ``difference``; a variance, covariance, deviation, or any unit
+    combining a temperature with other units or powers (``K2``, ``K s-1``, ``K m s-1``)
+    is ``temperature: difference`` (CF 1.11, section 3.1.2). No temperature unit: ``{}``.
+
+    Examples
+    --------
+    >>> temperature_metadata("K", difference=False)
+    {'units_metadata': 'temperature: on_scale'}
+    >>> temperature_metadata("K2", difference=True)
+    {'units_metadata': 'temperature: difference'}
+    >>> temperature_metadata("K s-1", difference=False)
+    {'units_metadata': 'temperature: difference'}
+    >>> temperature_metadata("kg kg-1", difference=False)
+    {}
+    """
+    tokens = str(units).split()
+    matches = [_TEMPERATURE.match(tok) for tok in tokens]
+    if not any(matches):
+        return {}
+    alone = len(tokens) == 1 and matches[0] is not None and matches[0].group(2) in (None, "1")
+    kind = "on_scale" if alone and not difference else "difference"
+    return {"units_metadata": f"temperature: {kind}"}
 
 
 _TOKEN = re.compile(r"^([A-Za-z]+)(-?\d+)?$")
@@ -341,7 +374,7 @@ BUILTIN: tuple[Variable, ...] = (
         derived_from=("qc",),
         moments=False,
         patches=False,
-        extra_attrs={"flag_values": "0 1", "flag_meanings": "clear cloudy"},
+        extra_attrs={"flag_values": [0, 1], "flag_meanings": "clear cloudy"},
     ),
     Variable(
         name="lwp",

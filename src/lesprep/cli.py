@@ -1,4 +1,4 @@
-"""The ``lesprep`` command: demo archives, provenance summaries and checks.
+"""The ``lesprep`` command: demo archives, provenance summaries, NetCDF export and checks.
 
 The workflow itself runs with ``snakemake``; this command holds the tools a user runs
 by hand.
@@ -43,6 +43,13 @@ def _cmd_provenance(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_export(args: argparse.Namespace) -> int:
+    from lesprep.store import export_netcdf
+
+    print(f"wrote {export_netcdf(args.store, args.out)}")
+    return 0
+
+
 def _cmd_verify(args: argparse.Namespace) -> int:
     from lesprep.verify import verify_results
 
@@ -84,6 +91,11 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("store", type=Path, help="a lesprep Zarr store")
     pr.add_argument("--json", action="store_true", help="print the full record as JSON")
     pr.set_defaults(func=_cmd_provenance)
+
+    e = sub.add_parser("export", help="write a store as one CF NetCDF-4 file")
+    e.add_argument("store", type=Path, help="a lesprep Zarr store")
+    e.add_argument("out", type=Path, help="the NetCDF file to write")
+    e.set_defaults(func=_cmd_export)
 
     v = sub.add_parser("verify", help="check a results tree; exit 1 on any failure")
     v.add_argument("results", type=Path, help="the results folder (e.g. results)")

@@ -9,6 +9,7 @@ Stores are Zarr format 3 with consolidated metadata.
 from __future__ import annotations
 
 import contextlib
+import json
 import os
 import shutil
 import uuid
@@ -24,8 +25,11 @@ import xarray as xr
 import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
 
-from lesprep.errors import ConfigError
+from lesprep.errors import ConfigError, InputError
 
+CONVENTIONS = "CF-1.11, ACDD-1.3"
+"""The conventions every store follows: CF 1.11 is the version an independent CF checker
+verifies (``tests/test_cf_compliance.py``)."""
 TMP_TAG = ".tmp-"
 CHUNK_KEYS = {"name": "v2", "separator": "."}
 """Flat chunk file names (``0.3.0.0``): one directory per array instead of one per chunk
@@ -147,6 +151,119 @@ def open_store(path: str | Path, *, chunks: Any = None, **kwargs: Any) -> xr.Dat
             zarr_format=3,
             **kwargs,
         )
+
+
+CF_TYPED_ATTRS = (
+    "flag_values",
+    "flag_masks",
+    "valid_min",
+    "valid_max",
+    "valid_range",
+    "actual_range",
+    "missing_value",
+)
+"""Attributes CF wants of the variable's own type (CF 2.5.1, 3.5); JSON (Zarr attributes)
+keeps only "a number", so :func:`export_netcdf` casts them back."""
+
+
+def coordinate_names(ds: xr.Dataset) -> set[str]:
+    """Coordinate variables, auxiliary coordinates and bounds of a dataset (CF 5, 7.1).
+
+    These may not (coordinate variables, bounds) or need not (auxiliary coordinates of
+    lesprep, which are never missing) carry a ``_FillValue``.
+    """
+    names = {str(n) for n in ds.variables if n in ds.dims}
+    names.update(str(n) for n in ds.coords)  # xarray reads ``coordinates`` into coords
+    for v in ds.variables.values():
+        names.update(str(v.attrs.get("coordinates", "")).split())
+        if "bounds" in v.attrs:
+            names.add(str(v.attrs["bounds"]))
+    return {n for n in names if n in ds.variables}
+
+
+def _netcdf_attr(name: str, value: Any, dtype: np.dtype | None) -> Any:
+    """One attribute as NetCDF can hold it (None: leave it out)."""
+    if value is None:
+        return None
+    if dtype is not None and name in CF_TYPED_ATTRS:
+        return np.asarray(value, dtype=dtype)
+    if isinstance(value, bool | np.bool_):
+        return int(value)
+    if isinstance(value, Mapping) or (
+        isinstance(value, list | tuple)
+        and not all(isinstance(v, int | float) and not isinstance(v, bool) for v in value)
+    ):
+        return json.dumps(value, sort_keys=True, default=str)
+    if isinstance(value, list | tuple):
+        return np.asarray(value)
+    return value
+
+
+def netcdf_dataset(ds: xr.Dataset) -> tuple[xr.Dataset, dict[str, dict[str, Any]]]:
+    """A store's dataset as a CF NetCDF file holds it, and the encoding to write it with.
+
+    Zarr encodings (codecs, chunk keys) are dropped; attributes a JSON document holds
+    differently (typed flag values, lists, mappings, booleans) are converted
+    (:data:`CF_TYPED_ATTRS` get the variable's type, other lists of non-numbers and
+    mappings become JSON text); coordinates, auxiliary coordinates and bounds get no
+    ``_FillValue``; data variables get deflate compression (level 4).
+    """
+    out = ds.drop_encoding()
+    out.attrs = {k: a for k, v in ds.attrs.items() if (a := _netcdf_attr(k, v, None)) is not None}
+    for name, var in out.variables.items():
+        var.attrs = {
+            k: a
+            for k, v in ds[name].attrs.items()
+            if (a := _netcdf_attr(k, v, var.dtype)) is not None
+        }
+    coords = coordinate_names(out)
+    encoding: dict[str, dict[str, Any]] = {}
+    for name, var in out.variables.items():
+        enc: dict[str, Any] = {}
+        if name in coords:
+            enc["_FillValue"] = None
+        elif var.ndim:
+            enc.update(zlib=True, complevel=4)
+        encoding[str(name)] = enc
+    return out, encoding
+
+
+def export_netcdf(store: str | Path, out: str | Path) -> Path:
+    """Write a lesprep store as one NetCDF-4 file, for tools that read NetCDF only.
+
+    Times keep their stored numbers and CF ``units`` (``seconds since <origin>``); see
+    :func:`netcdf_dataset` for what changes between Zarr and NetCDF attributes. Each
+    variable is read whole while it is written: meant for stores that fit in memory one
+    variable at a time.
+
+    Parameters
+    ----------
+    store
+        A canonical, scale or set store.
+    out
+        The NetCDF file to write (replaced atomically).
+
+    Returns
+    -------
+    pathlib.Path
+        ``out``.
+
+    Raises
+    ------
+    lesprep.errors.InputError
+        ``store`` is not a Zarr format 3 group.
+    """
+    out = Path(out)
+    if not (Path(store) / "zarr.json").is_file():
+        raise InputError(
+            "is not a lesprep store (no zarr.json: expected a Zarr format 3 group)",
+            file=str(store),
+            hint="give a results/cases/<case>/*.zarr or results/sets/<split>/*.zarr folder",
+        )
+    with open_store(store) as ds, atomic_path(out) as tmp:
+        data, encoding = netcdf_dataset(ds)
+        data.to_netcdf(tmp, format="NETCDF4", engine="netcdf4", encoding=encoding)
+    return out
 
 
 def dir_size_bytes(path: str | Path) -> int:

@@ -37,12 +37,22 @@ from lesprep.raw.grid import (
     destagger_horizontal,
     destagger_vertical,
     face_side,
+    horizontal_attrs,
     horizontal_spacing,
     layer_thickness,
     vertical_faces,
 )
+from lesprep.raw.timeaxis import cf_time_attrs
 from lesprep.raw.varmap import VariableMap, load_varmap
-from lesprep.store import ArraySpec, TimeWriter, atomic_path, compressors, consolidate, create_store
+from lesprep.store import (
+    CONVENTIONS,
+    ArraySpec,
+    TimeWriter,
+    atomic_path,
+    compressors,
+    consolidate,
+    create_store,
+)
 from lesprep.units import Conversion, conversion
 
 log = logging.getLogger(__name__)
@@ -475,12 +485,7 @@ def _layout(
         chunks=(nt,),
         dtype="float64",
         data=cat.times[keep],
-        attrs={
-            "units": "s",
-            "long_name": "time since the time origin",
-            "time_origin": cat.origin,
-            "axis": "T",
-        },
+        attrs=cf_time_attrs(cat.origin),
     )
     out["z"] = ArraySpec(
         dims=("z",),
@@ -503,7 +508,7 @@ def _layout(
         chunks=(nz, 2),
         dtype="float64",
         data=np.stack([faces[:-1], faces[1:]], axis=1),
-        attrs={"units": "m", "long_name": "cell bounds in height"},
+        attrs={"units": "m"},  # CF 7.1: a bounds variable describes its parent
     )
     for axis in ("y", "x"):
         values = getattr(cat.grid, axis)
@@ -513,7 +518,7 @@ def _layout(
             chunks=values.shape,
             dtype="float64",
             data=values,
-            attrs={"units": "m", "long_name": f"{axis} of cell centres", "axis": axis.upper()},
+            attrs=horizontal_attrs(axis, f"{axis} of cell centres"),
         )
     return out
 
@@ -676,7 +681,7 @@ def ingest_case(
             )
             attrs = provenance.extend(
                 {
-                    "Conventions": "CF-1.12, ACDD-1.3",
+                    "Conventions": CONVENTIONS,
                     "title": f"lesprep canonical fields of case {case}",
                     "summary": "Fine-grid LES fields in canonical names, units and grid, spin-up "
                     "removed, with derived relative humidity, cloud mask and liquid water path.",

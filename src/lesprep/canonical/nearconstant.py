@@ -141,8 +141,7 @@ def deviation_layout(
             "comment": f"{name} = {name}_ref + {name}_dev; kept because {name} is nearly "
             "constant on some levels, where its float32 values are quantized",
         }
-        if var.units == "K":
-            attrs["units_metadata"] = "temperature: difference"
+        attrs.update(catalogue.temperature_metadata(var.units, difference=True))
         out[f"{name}_dev"] = ArraySpec(
             dims=base.dims, shape=base.shape, chunks=base.chunks, dtype=dtype, attrs=attrs
         )
@@ -155,6 +154,7 @@ def deviation_layout(
             attrs={
                 "long_name": f"horizontal mean of {var.label} on each level (float64)",
                 "units": var.units,
+                **catalogue.temperature_metadata(var.units, difference=False),
             },
         )
     return out

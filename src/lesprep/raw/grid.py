@@ -450,3 +450,22 @@ def destagger_horizontal(
 def layer_thickness(z_faces: NDArray[np.float64]) -> NDArray[np.float64]:
     """Thickness of each cell (m) from its faces."""
     return np.diff(np.asarray(z_faces, dtype=np.float64))
+
+
+def horizontal_attrs(axis: str, long_name: str) -> dict[str, str]:
+    """CF attributes of the ``x`` or ``y`` coordinate of an LES grid (metres).
+
+    The domain is a Cartesian plane (doubly periodic, idealized): ``projection_x_coordinate``
+    / ``projection_y_coordinate`` say so (without a standard name, CF checkers take an
+    ``X``/``Y`` axis for longitude/latitude). CF would describe the projection with a
+    ``grid_mapping`` variable, but such a domain is no projection of the Earth's surface:
+    there is no grid mapping and no latitude or longitude to give, and the ``comment`` says so.
+    """
+    return {
+        "standard_name": f"projection_{axis}_coordinate",
+        "long_name": long_name,
+        "units": "m",
+        "axis": axis.upper(),
+        "comment": "Cartesian coordinate of the LES domain (doubly periodic); the domain is "
+        "not placed on the Earth, so there is no grid_mapping, latitude or longitude",
+    }

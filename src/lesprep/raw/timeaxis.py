@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Literal
 
 import numpy as np
+import pandas as pd
 
 _REL = 1e-3
 
@@ -162,3 +163,72 @@ class DuplicateResolver:
             f"{len(self.overlaps)} output time(s) appear in two files (a restart overlap); "
             f"kept the copy of the file {rule}: " + "; ".join(parts)
         )
+
+
+NOMINAL_ORIGIN = "1970-01-01 00:00:00"
+"""Reference time of the stores of an archive whose times are plain durations since the
+start of the run (units ``s``, no calendar date): CF 4.4 needs ``<unit> since <date>``,
+so those stores count from this nominal date, which stands for the start of the run and
+is not a real date."""
+
+RUN_START = "start of run"
+"""The origin an archive index reports for plain durations (see :data:`NOMINAL_ORIGIN`)."""
+
+
+def cf_time_units(origin: str) -> str:
+    """CF time units of times in seconds since an archive's origin (CF 4.4).
+
+    Parameters
+    ----------
+    origin
+        ISO date of the archive's time origin, or ``"start of run"`` when the archive's
+        times are plain durations (then :data:`NOMINAL_ORIGIN` stands in for it).
+
+    Returns
+    -------
+    str
+        ``"seconds since YYYY-MM-DD hh:mm:ss"`` (UTC; fractional seconds when there are).
+
+    Examples
+    --------
+    >>> cf_time_units("2031-06-01T06:30:00")
+    'seconds since 2031-06-01 06:30:00'
+    >>> cf_time_units("start of run")
+    'seconds since 1970-01-01 00:00:00'
+    """
+    if origin == RUN_START:
+        return f"seconds since {NOMINAL_ORIGIN}"
+    ts = pd.Timestamp(origin)
+    if ts.tzinfo is not None:
+        ts = ts.tz_convert("UTC").tz_localize(None)
+    text = ts.strftime("%Y-%m-%d %H:%M:%S")
+    if ts.microsecond or ts.nanosecond:
+        text += f".{ts.microsecond:06d}{ts.nanosecond:03d}".rstrip("0")
+    return f"seconds since {text}"
+
+
+def cf_time_attrs(origin: str) -> dict[str, str]:
+    """CF attributes of a store's ``time`` coordinate (seconds since ``origin``).
+
+    The values are what the archive index gives (seconds since the archive's origin), so
+    the stored numbers do not depend on the origin; the ``units`` tell a reader which
+    date time zero is. ``time_origin`` repeats the archive's origin as read. A simulation's
+    clock has no leap seconds (CF 1.11 4.4.3: ``units_metadata = "leap_seconds: none"``).
+    """
+    attrs = {
+        "standard_name": "time",
+        "long_name": "time",
+        "units": cf_time_units(origin),
+        "calendar": "standard",
+        "units_metadata": "leap_seconds: none",
+        "axis": "T",
+        "time_origin": origin,
+    }
+    if origin == RUN_START:
+        attrs["long_name"] = "time since the start of the run"
+        attrs["comment"] = (
+            "the raw archive gives its times as durations since the start of the run, with "
+            f"no calendar date; CF needs a reference date, so {NOMINAL_ORIGIN} stands for "
+            "the start of the run: it is a nominal date, not when the simulated day was"
+        )
+    return attrs

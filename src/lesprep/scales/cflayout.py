@@ -16,6 +16,7 @@ import xarray as xr
 
 from lesprep import catalogue
 from lesprep.canonical.mask import describe_threshold
+from lesprep.raw.grid import horizontal_attrs
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
 from lesprep.scales.step import GAUSSIAN_INPUTS, covariance_name, z_chunk_levels
@@ -38,8 +39,7 @@ def _covariance_attrs(a: str, b: str, canon: xr.Dataset | None) -> dict[str, str
         f"({a} - block mean of {a}) * ({b} - block mean of {b}); CF has no cell method for "
         "a covariance, so there is no cell_methods",
     }
-    if "K" in (va.units, vb.units):
-        attrs["units_metadata"] = "temperature: difference"
+    attrs.update(catalogue.temperature_metadata(attrs["units"], difference=True))
     return attrs
 
 
@@ -127,6 +127,7 @@ def output_attrs(
         a = {"standard_name": var.standard_name} if var.standard_name else {}
         a.update(long_name=f"block mean of {var.label}", units=var.units)
         a["cell_methods"] = "area: mean"
+        a.update(catalogue.temperature_metadata(var.units, difference=False))
         return a
     if var is not None and kind == "var":
         a = {
@@ -134,8 +135,7 @@ def output_attrs(
             "units": var.variance_units,
             "cell_methods": "area: variance",
         }
-        if var.units == "K":
-            a["units_metadata"] = "temperature: difference"
+        a.update(catalogue.temperature_metadata(var.variance_units, difference=True))
         return a
     if var is not None and kind == "skew":
         return {
@@ -148,6 +148,7 @@ def output_attrs(
             "long_name": f"fine-grid {var.label} under the coarse cell "
             f"({s.factor} x {s.factor} fine cells)",
             "units": var.units,
+            **catalogue.temperature_metadata(var.units, difference=False),
         }
     raise KeyError(f"no attributes for output {name!r}")
 
@@ -214,16 +215,11 @@ def scale_layout(
     out["time"] = coord(("time",), canon.time.values, canon.time.attrs)
     out["z"] = coord(("z",), canon.z.values, canon.z.attrs)
     out["z_bounds"] = coord(("z", "nv"), canon.z_bounds.values, canon.z_bounds.attrs)
-    out["y"] = coord(
-        ("y",),
-        yb.mean(axis=1),
-        {"units": "m", "long_name": "y of coarse-cell centres", "axis": "Y", "bounds": "y_bounds"},
-    )
-    out["x"] = coord(
-        ("x",),
-        xb.mean(axis=1),
-        {"units": "m", "long_name": "x of coarse-cell centres", "axis": "X", "bounds": "x_bounds"},
-    )
-    out["y_bounds"] = coord(("y", "nv"), yb, {"units": "m"})
-    out["x_bounds"] = coord(("x", "nv"), xb, {"units": "m"})
+    for axis, bounds in (("y", yb), ("x", xb)):
+        attrs = {
+            **horizontal_attrs(axis, f"{axis} of coarse-cell centres"),
+            "bounds": f"{axis}_bounds",
+        }
+        out[axis] = coord((axis,), bounds.mean(axis=1), attrs)
+        out[f"{axis}_bounds"] = coord((axis, "nv"), bounds, {"units": "m"})
     return out

@@ -35,7 +35,7 @@ from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
 from lesprep.sets.settings import SetSettings
-from lesprep.store import CHUNK_KEYS, atomic_path, compressors, consolidate, open_store
+from lesprep.store import CHUNK_KEYS, CONVENTIONS, atomic_path, compressors, consolidate, open_store
 
 log = logging.getLogger(__name__)
 
@@ -159,6 +159,29 @@ def _case_pieces(
             yield out
 
 
+def sample_attrs(
+    name: str, attrs: Mapping[str, Any], stores: Mapping[str, xr.Dataset]
+) -> dict[str, Any]:
+    """Attributes of a set variable from those of the per-case variable it stacks.
+
+    Per-sample coordinates lose ``bounds`` (a set has no cell bounds) and ``axis`` (CF
+    gives an axis to coordinate variables, and ``sample`` is the only axis of a set).
+    ``time`` stays the number of its per-case store, seconds since its case's time origin;
+    cases have their own origins (a date, or the start of the run), so one set's ``time``
+    is a duration in ``s`` and names each case's origin in its ``comment``.
+    """
+    out = {k: v for k, v in attrs.items() if name not in COORDS or k not in ("bounds", "axis")}
+    if name != "time":
+        return out
+    origins = "; ".join(f"{c}: {ds['time'].attrs.get('units', 's')}" for c, ds in stores.items())
+    return {
+        "long_name": "time of the sample since its case's time origin",
+        "units": "s",
+        "comment": "seconds since the time origin of the sample's case, the same numbers as "
+        f"in its per-case store, whose time units are: {origins}",
+    }
+
+
 def build_set(
     inputs: Mapping[str, str | Path],
     regimes: Mapping[str, str],
@@ -268,8 +291,7 @@ def build_set(
                 chunk_key_encoding=CHUNK_KEYS,
             )
             if name in first:
-                attrs = dict(first[name].attrs)
-                arrays[name].attrs.update(attrs)
+                arrays[name].attrs.update(sample_attrs(name, first[name].attrs, stores))
         arrays["case"].attrs.update(
             {
                 "long_name": "case of the sample",
@@ -324,7 +346,7 @@ def build_set(
         )
         root.attrs.update(
             {
-                "Conventions": "CF-1.12, ACDD-1.3",
+                "Conventions": CONVENTIONS,
                 "title": f"lesprep training samples, split {split}, scale {scale}",
                 "summary": "Coarse cells of whole cases stacked along 'sample' with their "
                 "sub-grid statistics, GCM-view inputs and fine patches.",

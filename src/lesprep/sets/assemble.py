@@ -265,12 +265,10 @@ def label_vocabulary(
 
 def _codes(vocab: Mapping[str, Mapping[str, str]]) -> tuple[dict[str, np.ndarray], dict]:
     """(label -> its sorted distinct strings, case -> label -> code into them)."""
-    names = {
-        k: np.asarray(sorted(set(v.values())), dtype=np.dtypes.StringDType())
-        for k, v in vocab.items()
-    }
-    cases = next(iter(vocab.values())).keys()
-    codes = {c: {k: int(np.searchsorted(names[k], vocab[k][c])) for k in vocab} for c in cases}
+    distinct = {k: sorted(set(v.values())) for k, v in vocab.items()}
+    index = {k: {text: i for i, text in enumerate(v)} for k, v in distinct.items()}
+    codes = {c: {k: index[k][vocab[k][c]] for k in vocab} for c in vocab["case"]}
+    names = {k: np.asarray(v, dtype=np.dtypes.StringDType()) for k, v in distinct.items()}
     return names, codes
 
 
@@ -314,8 +312,7 @@ def build_set(
         Cases coarsened differently, filters leaving no sample, an unusable case
         attribute or lagged feature.
     TimeAxisError
-        With ``settings.lag_features``: a case whose output interval is not regular, or
-        cases of the set with different intervals.
+        With ``settings.lag_features``: a case whose output interval is not regular.
     """
     retain_freed_memory()
     if not inputs:
@@ -342,14 +339,17 @@ def build_set(
     where = f"split {split} at scale {scale}"
     kinds = {str(n): feature_kind(tuple(v.dims)) or "other" for n, v in first.data_vars.items()}
     lags = plan_lags(settings.lag_features, settings.lag_steps, kinds, where=where)
-    interval = None
-    if lags:
-        interval = common_interval(
-            {
-                c: output_interval(ds.time.values, case=c, file=str(inputs[c]))
-                for c, ds in stores.items()
-            },
-            where=where,
+    intervals = {
+        c: output_interval(ds.time.values, case=c, file=str(inputs[c]))
+        for c, ds in stores.items()
+        if lags
+    }
+    if lags and common_interval(intervals) is None:
+        log.warning(
+            "%s: the cases' output intervals differ (%s); a lag of k output times spans "
+            "k times the case's own interval (attribute lag_s_by_case)",
+            where,
+            ", ".join(f"{c} {v:g} s" for c, v in intervals.items() if v is not None),
         )
     vocab = label_vocabulary(
         case_ids, regimes, attributes or {}, taken=[*kinds, *(lag.name for lag in lags)]
@@ -422,7 +422,7 @@ def build_set(
             elif name not in COORDS:
                 arrays[name].attrs["coordinates"] = coord_names
         for lag in lags:
-            arrays[lag.name].attrs.update(lag_attrs(first[lag.feature].attrs, lag, interval))
+            arrays[lag.name].attrs.update(lag_attrs(first[lag.feature].attrs, lag, intervals))
             arrays[lag.name].attrs["coordinates"] = coord_names
         sink = _Sink(arrays, names, dtypes)
         writer = None
@@ -452,7 +452,7 @@ def build_set(
             skipped_cases=skipped,
             settings=settings.to_dict(),
             case_attributes={k: vocab[k] for k in vocab if k not in LABELS},
-            lag_interval_s=interval,
+            output_intervals_s=intervals,
             **dict(extra_provenance or {}),
         )
         lineage = provenance.merge(prov_inputs)

@@ -9,9 +9,10 @@ times) are dropped, so no sample lacks a lag.
 
 A lag is a time only when the output interval is regular: every case of a set with lags
 must have one constant interval (a missing output time or an irregular interval is
-refused, naming the case and the gap), and all cases of the set the same interval, so
-that ``f_lag<k>`` means the same span for every sample; the span is the attribute
-``lag_s`` of the lagged array.
+refused, naming the case and the gap). The span is the attribute ``lag_s`` of the lagged
+array when all cases of the set share their interval; cases with different intervals
+(the demo cases have 1200 s to 1800 s) are allowed with a warning, and the attribute
+``lag_s_by_case`` then gives each case's span.
 
 A lag describes the history of the cell, not of the air in it: at 5 m s-1 the air
 crosses a 1 km cell in about 200 s, so after an hourly output interval the cell holds
@@ -169,56 +170,55 @@ def output_interval(times: Any, *, case: str, file: str | None = None) -> float 
     return first
 
 
-def common_interval(intervals: Mapping[str, float | None], *, where: str) -> float | None:
-    """The one output interval of every case of a set (cases with one time are ignored).
+def common_interval(intervals: Mapping[str, float | None]) -> float | None:
+    """The output interval shared by every case of a set, or None if they differ.
 
-    Raises
-    ------
-    TimeAxisError
-        If the cases' intervals differ, naming them.
+    Cases with a single time (no interval) are ignored.
 
     Examples
     --------
-    >>> common_interval({"a": 600.0, "b": None, "c": 600.0}, where="train")
+    >>> common_interval({"a": 600.0, "b": None, "c": 600.0})
     600.0
+    >>> common_interval({"a": 600.0, "b": 900.0}) is None
+    True
     """
-    known = {c: v for c, v in intervals.items() if v is not None}
-    if not known:
+    known = [v for v in intervals.values() if v is not None]
+    if not known or not np.allclose(known, known[0], rtol=INTERVAL_RTOL, atol=0.0):
         return None
-    ref_case = min(known)
-    ref = known[ref_case]
-    for c, v in sorted(known.items()):
-        if not np.isclose(v, ref, rtol=INTERVAL_RTOL, atol=0.0):
-            raise TimeAxisError(
-                f"{where}: output interval {v:g} s, but case {ref_case!r} of the same set "
-                f"has {ref:g} s; with sets.lags every case of a set needs the same interval, "
-                "so that a lag is the same time for every sample",
-                case=c,
-                hint="put cases with another output interval in a run of their own, or "
-                "drop sets.lags",
-            )
-    return ref
+    return float(known[0])
 
 
-def lag_attrs(base: Mapping[str, Any], lag: Lag, interval_s: float | None) -> dict[str, Any]:
+def lag_attrs(
+    base: Mapping[str, Any], lag: Lag, intervals: Mapping[str, float | None]
+) -> dict[str, Any]:
     """Attributes of a lagged array: the feature's, with the lag described.
+
+    ``lag_s`` is the lag in seconds when every case has the same output interval;
+    otherwise ``lag_s_by_case`` maps each case to its lag in seconds.
 
     Examples
     --------
     >>> lag = Lag("w_mean_lag1", "w_mean", 1)
-    >>> a = lag_attrs({"long_name": "mean of w", "units": "m s-1"}, lag, 600.0)
+    >>> a = lag_attrs({"long_name": "mean of w", "units": "m s-1"}, lag, {"c": 600.0})
     >>> a["lag_s"], a["lag_steps"], a["long_name"]
     (600.0, 1, 'mean of w, 1 output time(s) (600 s) earlier')
+    >>> lag_attrs({}, lag, {"c": 600.0, "d": 900.0})["lag_s_by_case"]
+    {'c': 600.0, 'd': 900.0}
     """
     attrs = {k: v for k, v in base.items() if k not in ("coordinates", "_FillValue")}
-    span = "" if interval_s is None else f" ({lag.steps * interval_s:g} s)"
+    common = common_interval(intervals)
+    span = "" if common is None else f" ({lag.steps * common:g} s)"
     attrs["long_name"] = (
         f"{base.get('long_name', lag.feature)}, {lag.steps} output time(s){span} earlier"
     )
     attrs["lag_of"] = lag.feature
     attrs["lag_steps"] = lag.steps
-    if interval_s is not None:
-        attrs["lag_s"] = float(lag.steps * interval_s)
+    if common is not None:
+        attrs["lag_s"] = float(lag.steps * common)
+    else:
+        attrs["lag_s_by_case"] = {
+            c: float(lag.steps * v) for c, v in sorted(intervals.items()) if v is not None
+        }
     attrs["comment"] = (
         f"{lag.feature} of the same coarse cell {lag.steps} output time(s) before the "
         "sample's time, from the per-case scale store. It is the history of the cell, not "

@@ -196,7 +196,7 @@ def test_labels_decode_to_case_ids_with_plain_xarray(case_stores, tmp_path):
     rng = np.random.default_rng(1)
     seen = {}
     for path, cases in ((a, {"cu-marro-01", "sc-ostra-01"}), (b, {"cu-marro-01", "sc-ostra-02"})):
-        ds = xr.open_zarr(path, decode_times=False)
+        ds = xr.open_zarr(path)  # no option, no lesprep code
         assert ds["case"].dtype.kind in "OT" and "case" in ds.coords  # object or StringDType
         names = ds["case"].values
         assert all(type(c) is str for c in names.tolist())
@@ -227,7 +227,7 @@ def test_case_attributes_become_string_coordinates(case_stores, tmp_path):
         scale="400m",
         attributes=attrs,
     )
-    ds = xr.open_zarr(path, decode_times=False)
+    ds = xr.open_zarr(path)  # no option, no lesprep code
     for c in cases:
         sel = ds["case"].values == c
         assert set(ds["site"].values[sel].tolist()) == {str(attrs[c]["site"])}

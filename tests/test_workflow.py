@@ -40,7 +40,7 @@ def test_demo_runs_end_to_end(project):
     for split in ("train", "test"):
         ds = open_set(r / "sets" / split / "scale-600m.zarr")
         # plain xarray decodes the per-sample case to the case ids (strings)
-        plain = xr.open_zarr(r / "sets" / split / "scale-600m.zarr", decode_times=False)
+        plain = xr.open_zarr(r / "sets" / split / "scale-600m.zarr")
         cases = set(plain["case"].values.tolist())
         assert all(isinstance(c, str) for c in cases)
         assert cases == {c for c, s in assign.items() if s == split}

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -10,18 +11,23 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import xarray as xr
 import zarr
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from lesprep.canonical.ingest import ingest_case
+from lesprep.errors import ConfigError, TimeAxisError
 from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import (
     build_set,
-    decode_category,
+    kept_indices,
     normalization_stats,
     open_set,
     write_normalization,
 )
+from lesprep.sets.lags import output_interval, plan_lags
 from lesprep.store import open_store
 from settings_helpers import coarsen_settings, ingest_settings, set_settings
 
@@ -68,9 +74,8 @@ def test_stacks_every_coarse_cell(case_stores, tmp_path):
     assert ds.sizes["sample"] == sum(
         s.sizes["time"] * s.sizes["z"] * s.sizes["y"] * s.sizes["x"] for s in cells.values()
     )
-    cases = decode_category(ds, "case")
-    assert set(cases) == set(CASES)
-    assert set(decode_category(ds, "regime")) == {"stratocumulus", "cumulus"}
+    assert set(ds["case"].values) == set(CASES)
+    assert set(ds["regime"].values) == {"stratocumulus", "cumulus"}
     # natural order: case, time, z, y, x; the first samples are the first case's first cells
     first = cells[sorted(CASES)[0]]
     np.testing.assert_array_equal(
@@ -107,7 +112,7 @@ def test_filters(case_stores, tmp_path):
     assert ds["z"].values.min() >= 300.0 and ds["z"].values.max() <= 1200.0
     for c in CASES:
         src = open_store(case_stores[c])
-        sel = decode_category(ds, "case") == c
+        sel = ds["case"].values == c
         assert set(np.unique(ds["time"].values[sel])) == set(src.time.values[::2])
 
 
@@ -177,3 +182,268 @@ def test_provenance_command(case_stores, tmp_path):
     ingests = [s for inp in full["inputs"] for s in inp["steps"] if s["step"] == "ingest"]
     assert {s["case"] for s in ingests} == set(CASES)
     assert all(s["raw_files"] and s["environment"]["code_version"] for s in ingests)
+
+
+# --- labels as strings, case attributes ---------------------------------------------------
+
+
+def test_labels_decode_to_case_ids_with_plain_xarray(case_stores, tmp_path):
+    """Two stores sharing one case: plain ``xr.open_zarr`` gives str case ids, and the same
+    string is the same case in both (each sample's values are those of that case's cell,
+    located with xarray's own ``sel``)."""
+    a = build(case_stores, ["cu-marro-01", "sc-ostra-01"], tmp_path / "a.zarr")
+    b = build(case_stores, ["cu-marro-01", "sc-ostra-02"], tmp_path / "b.zarr", shuffle=True)
+    rng = np.random.default_rng(1)
+    seen = {}
+    for path, cases in ((a, {"cu-marro-01", "sc-ostra-01"}), (b, {"cu-marro-01", "sc-ostra-02"})):
+        ds = xr.open_zarr(path)  # no option, no lesprep code
+        assert ds["case"].dtype.kind in "OT" and "case" in ds.coords  # object or StringDType
+        names = ds["case"].values
+        assert all(type(c) is str for c in names.tolist())
+        assert set(names.tolist()) == cases
+        assert set(ds["regime"].values.tolist()) == {REGIMES[c] for c in cases}
+        seen[path] = names
+        for i in rng.choice(ds.sizes["sample"], 20, replace=False):
+            s = ds.isel(sample=int(i))
+            src = open_store(case_stores[str(s["case"].values)])
+            cell = src.sel(time=float(s.time), z=float(s.z), y=float(s.y), x=float(s.x))
+            assert float(s["qc_mean"]) == float(cell["qc_mean"])
+    # the shared case has as many samples in both stores (same string, same case)
+    assert (seen[a] == "cu-marro-01").sum() == (seen[b] == "cu-marro-01").sum() > 0
+    meta = json.loads((a / "case" / "zarr.json").read_text())
+    assert meta["data_type"] == "string"  # Zarr v3 variable-length UTF-8
+
+
+def test_case_attributes_become_string_coordinates(case_stores, tmp_path):
+    cases = ["cu-marro-01", "sc-ostra-01"]
+    attrs = {"cu-marro-01": {"forcing": "warm-7", "site": "isle-b"}, "sc-ostra-01": {"site": 3}}
+    plain = build(case_stores, cases, tmp_path / "plain.zarr")
+    path = build_set(
+        {c: case_stores[c] for c in cases},
+        REGIMES,
+        tmp_path / "attrs.zarr",
+        set_settings(shuffle=True, chunk_mib=0.05),
+        split="train",
+        scale="400m",
+        attributes=attrs,
+    )
+    ds = xr.open_zarr(path)  # no option, no lesprep code
+    for c in cases:
+        sel = ds["case"].values == c
+        assert set(ds["site"].values[sel].tolist()) == {str(attrs[c]["site"])}
+        assert set(ds["forcing"].values[sel].tolist()) == {attrs[c].get("forcing", "")}
+    assert {"site", "forcing"} <= set(ds.coords)
+    # an empty mapping adds nothing
+    empty = build_set(
+        {c: case_stores[c] for c in cases},
+        REGIMES,
+        tmp_path / "empty.zarr",
+        set_settings(shuffle=False, chunk_mib=0.05),
+        split="train",
+        scale="400m",
+        attributes={},
+    )
+    assert set(xr.open_zarr(empty).variables) == set(xr.open_zarr(plain).variables)
+
+
+@pytest.mark.parametrize("name", ["qc_mean", "time", "1st", "with space"])
+def test_unusable_attribute_names_are_refused(case_stores, tmp_path, name):
+    with pytest.raises(ConfigError, match=f"case attribute {re.escape(repr(name))}"):
+        build_set(
+            {"cu-marro-01": case_stores["cu-marro-01"]},
+            REGIMES,
+            tmp_path / "x.zarr",
+            set_settings(),
+            split="train",
+            scale="400m",
+            attributes={"cu-marro-01": {name: "a"}},
+        )
+
+
+def test_string_labels_survive_the_shuffle(case_stores, tmp_path):
+    plain = open_set(build(case_stores, list(CASES), tmp_path / "a.zarr"))
+    mixed = open_set(
+        build(case_stores, list(CASES), tmp_path / "b.zarr", shuffle=True, shuffle_seed=3)
+    )
+    perm = np.random.default_rng(3).permutation(plain.sizes["sample"])  # numpy's rule
+    for v in ("case", "regime"):
+        assert mixed[v].values[perm].tolist() == plain[v].values.tolist()
+
+
+# --- lagged features -----------------------------------------------------------------------
+
+LAGGED = ("qc_mean", "lwp_mean")  # a per-cell and a per-column feature
+
+
+@pytest.fixture(scope="module")
+def lag_stores(tmp_path_factory, demo_root):
+    """The cases without spin-up (all 5 output times), coarsened without patches."""
+    out = tmp_path_factory.mktemp("lagcases")
+    ing = ingest_settings(spinup="0 h", cloud_threshold="1e-5 kg/kg")
+    co = coarsen_settings(scales=tuple(parse_scales(["400 m"])), patch_scales=())
+    stores = {}
+    for case, flavour in CASES.items():
+        canon = ingest_case(
+            case=case,
+            raw=str(demo_root / case / "*.nc"),
+            varmap=REPO / f"config/varmaps/flavour-{flavour}.yaml",
+            settings=ing,
+            out=out / case / "canonical.zarr",
+            regime=REGIMES[case],
+        )
+        stores[case] = coarsen_case(canon, {"400m": out / case / "scale-400m.zarr"}, co)["400m"]
+    return stores
+
+
+def lag_set(case_stores, tmp_path, name="lag.zarr", steps=(1, 2), **kw):
+    return build(
+        case_stores,
+        list(CASES),
+        tmp_path / name,
+        lag_features=LAGGED,
+        lag_steps=tuple(steps),
+        **kw,
+    )
+
+
+@pytest.mark.parametrize("shuffle", [False, True])
+def test_lagged_values_are_the_cell_at_earlier_times(lag_stores, tmp_path, shuffle):
+    ds = open_set(lag_set(lag_stores, tmp_path, shuffle=shuffle))
+    srcs = {c: open_store(p) for c, p in lag_stores.items()}
+    for c, src in srcs.items():
+        sel = np.nonzero(ds["case"].values == c)[0]
+        t = ds["time"].values[sel]
+        times = src["time"].values
+        k_now = np.searchsorted(times, t)  # index of the sample's time (numpy)
+        assert np.array_equal(times[k_now], t)
+        for k in (1, 2):
+            prev = xr.DataArray(times[k_now - k], dims="s")
+            at = {
+                "time": prev,
+                "z": xr.DataArray(ds["z"].values[sel], dims="s"),
+                "y": xr.DataArray(ds["y"].values[sel], dims="s"),
+                "x": xr.DataArray(ds["x"].values[sel], dims="s"),
+            }
+            for f in LAGGED:
+                want = src[f].sel({d: at[d] for d in src[f].dims}).values  # xarray's own sel
+                got = ds[f"{f}_lag{k}"].values[sel]
+                np.testing.assert_array_equal(got, want.astype(got.dtype))
+                attrs = ds[f"{f}_lag{k}"].attrs
+                assert attrs["lag_steps"] == k and attrs["lag_of"] == f
+
+
+def test_lag_seconds_of_cases_with_one_interval(lag_stores, tmp_path):
+    same = ["sc-ostra-01", "cu-marro-01"]
+    times = open_store(lag_stores["sc-ostra-01"])["time"].values
+    stores = {**lag_stores}
+    stores["cu-marro-01"] = _retime(lag_stores["cu-marro-01"], tmp_path / "re.zarr", times)
+    ds = open_set(
+        build(stores, same, tmp_path / "one.zarr", lag_features=("qc_mean",), lag_steps=(2,))
+    )
+    assert ds["qc_mean_lag2"].attrs["lag_s"] == pytest.approx(2 * (times[1] - times[0]))
+    assert "lag_s_by_case" not in ds["qc_mean_lag2"].attrs
+
+
+def test_first_times_of_each_case_are_dropped(lag_stores, tmp_path):
+    ds = open_set(lag_set(lag_stores, tmp_path, steps=(2,), time_stride=1))
+    strided = open_set(lag_set(lag_stores, tmp_path, "s.zarr", steps=(1,), time_stride=2))
+    for c, p in lag_stores.items():
+        times = open_store(p)["time"].values
+        assert times.size >= 3
+        got = np.unique(ds["time"].values[ds["case"].values == c])
+        np.testing.assert_array_equal(got, times[2:])  # lags of 2 need two earlier times
+        got = np.unique(strided["time"].values[strided["case"].values == c])
+        np.testing.assert_array_equal(got, times[::2][1:])  # every 2nd time but the first
+    assert "qc_mean_lag1" not in ds and "qc_mean_lag2" in ds
+
+
+def test_lagged_features_have_normalization_statistics(lag_stores, tmp_path):
+    path = lag_set(lag_stores, tmp_path)
+    stats = normalization_stats(path)
+    ds = open_set(path)
+    for v in ("qc_mean_lag1", "lwp_mean_lag2"):
+        a = ds[v].values.astype(np.float64)  # numpy's mean and population std
+        assert stats[v]["mean"] == pytest.approx(a.mean(), rel=1e-9)
+        assert stats[v]["std"] == pytest.approx(a.std(), rel=1e-9)
+    assert not {"case", "regime"} & set(stats)
+
+
+def _retime(src, dst, times):
+    shutil.copytree(src, dst)
+    zarr.open_array(str(dst / "time"), mode="r+")[...] = times
+    return dst
+
+
+def test_irregular_interval_is_refused_naming_the_gap(lag_stores, tmp_path):
+    times = open_store(lag_stores["sc-ostra-01"])["time"].values.astype(np.float64)
+    dt = float(times[1] - times[0])
+    gapped = times.copy()
+    gapped[2:] += dt  # one output time missing between times[1] and times[2]
+    bad = _retime(lag_stores["sc-ostra-01"], tmp_path / "gap.zarr", gapped)
+    stores = {**lag_stores, "sc-ostra-01": bad}
+    with pytest.raises(TimeAxisError) as err:
+        build(
+            stores, ["sc-ostra-01"], tmp_path / "x.zarr", lag_features=("qc_mean",), lag_steps=(1,)
+        )
+    msg = str(err.value)
+    assert "case 'sc-ostra-01'" in msg and "gap.zarr" in msg
+    assert f"{2 * dt:g} s from {gapped[1]:g} s to {gapped[2]:g} s" in msg
+    # without lags the same case is fine
+    build(stores, ["sc-ostra-01"], tmp_path / "ok.zarr")
+
+
+def test_cases_with_different_intervals_record_each_span(lag_stores, tmp_path):
+    ds = open_set(lag_set(lag_stores, tmp_path))
+    for k in (1, 2):
+        attrs = ds[f"qc_mean_lag{k}"].attrs
+        assert "lag_s" not in attrs  # the demo cases have different intervals
+        for c, p in lag_stores.items():
+            dt = np.diff(open_store(p)["time"].values)[0]  # numpy's difference
+            assert attrs["lag_s_by_case"][c] == pytest.approx(k * dt)
+
+
+@pytest.mark.parametrize(
+    ("feature", "found"), [("nope_mean", "do not hold"), ("qc_patch", "a patch variable")]
+)
+def test_unusable_lag_features_are_refused(case_stores, tmp_path, feature, found):
+    with pytest.raises(ConfigError, match=found):
+        build(
+            case_stores,
+            ["cu-marro-01"],
+            tmp_path / "x.zarr",
+            lag_features=(feature,),
+            lag_steps=(1,),
+        )
+
+
+def test_a_profile_cannot_be_lagged():
+    with pytest.raises(ConfigError, match="a profile variable"):
+        plan_lags(["p_ref"], [1], {"p_ref": "profile", "w_mean": "cell"}, where="train")
+
+
+@given(
+    t0=st.floats(-1e6, 1e6),
+    dt=st.floats(1.0, 1e4),
+    n=st.integers(2, 40),
+    gap=st.integers(1, 39),
+)
+@settings(max_examples=60, deadline=None)
+def test_interval_rule(t0, dt, n, gap):
+    times = t0 + dt * np.arange(n)  # numpy's evenly spaced times
+    assert output_interval(times, case="c") == pytest.approx(dt, rel=1e-9)
+    if gap < n and n >= 3:  # a doubled interval among others (two times are always regular)
+        times[gap:] += dt
+        with pytest.raises(TimeAxisError, match="not regular"):
+            output_interval(times, case="c")
+
+
+@given(
+    times=st.integers(0, 30),
+    stride=st.integers(1, 5),
+    steps=st.lists(st.integers(1, 6), max_size=3, unique=True),
+)
+@settings(max_examples=80, deadline=None)
+def test_kept_times_against_a_plain_rule(times, stride, steps):
+    t, _ = kept_indices(times, np.zeros(1), z_range=None, time_stride=stride, lag_steps=steps)
+    want = [i for i in range(times) if i % stride == 0 and all(i - k >= 0 for k in steps)]
+    assert t.tolist() == want

@@ -24,7 +24,7 @@ import zarr
 
 from lesprep import provenance
 from lesprep.errors import InputError
-from lesprep.sets.assemble import decode_category, open_set
+from lesprep.sets.assemble import open_set
 from lesprep.sets.splits import read_assignment_tsv
 from lesprep.store import consolidate, open_store
 from lesprep.verify import CHECKS, Finding, VerifyReport, verify_results
@@ -36,6 +36,7 @@ CASES = ("sc-ostra-01", "sc-ostra-02", "cu-marro-01", "cu-marro-02")
 LABELS = ("200m", "600m")
 Z_MAX = 1800.0  # the sets' z_range upper bound in metres
 STRIDE = 2  # the sets' time_stride
+LAG = 1  # the sets' lag of qc_mean and lwp_mean, in output times
 
 
 @pytest.fixture(scope="module")
@@ -43,7 +44,13 @@ def built(tmp_path_factory) -> Path:
     """A finished project folder (config, demo archives, results); read-only for tests."""
     p = Project(tmp_path_factory.mktemp("verify-project"))
     p.config["coarsen"]["scales"] = ["200 m", "600 m"]
-    p.config["sets"].update({"z_range": ["0 m", f"{Z_MAX:g} m"], "time_stride": STRIDE})
+    p.config["sets"].update(
+        {
+            "z_range": ["0 m", f"{Z_MAX:g} m"],
+            "time_stride": STRIDE,
+            "lags": {"features": ["qc_mean", "lwp_mean"], "steps": [LAG]},
+        }
+    )
     for c in CASES:
         p.add_demo_case(c)
     p.snakemake()
@@ -121,14 +128,20 @@ def test_sample_counts_match_xarray_selection(tree):
     verification expects (and finds)."""
     for split, cases in splits_of(tree).items():
         for lab in LABELS:
-            want = 0
+            want, sampled = 0, set()
             for c in cases:
                 ds = open_store(tree / "cases" / c / f"scale-{lab}.zarr")
+                # every STRIDE-th time, less those whose lag precedes the case
                 kept = ds.isel(time=slice(None, None, STRIDE)).sel(z=slice(0.0, Z_MAX))
-                want += kept.sizes["time"] * kept.sizes["z"] * kept.sizes["y"] * kept.sizes["x"]
+                kept = kept.sel(time=kept.time >= ds.time.values[LAG])
+                n = kept.sizes["time"] * kept.sizes["z"] * kept.sizes["y"] * kept.sizes["x"]
+                want += n
+                sampled |= {c} if n else set()
             ds = open_set(tree / "sets" / split / f"scale-{lab}.zarr")
             assert ds.sizes["sample"] == want
-            assert set(decode_category(ds, "case")) == set(cases)
+            # a case with too few output times for the stride and the lag has no sample
+            assert set(ds["case"].values.tolist()) == sampled
+            assert set(ds.attrs["cases"]) == set(cases)
 
 
 def test_changed_raw_file_is_drift(tree):
@@ -271,6 +284,17 @@ def test_changed_set_value_differs_from_case_store(tree):
     assert f.store == "sets/test/scale-600m.zarr"
     assert f.message.startswith("qv_mean: 1 of ")
     assert "first: sample 5," in f.message
+
+
+def test_changed_lagged_value_differs_from_case_store(tree):
+    store = tree / "sets" / "test" / "scale-600m.zarr"  # test: the normalization stays
+    arr = zarr.open_array(str(store / "qc_mean_lag1"), mode="r+")
+    arr[3] = arr[3] + np.float32(1e-3)
+    report = verify_results(tree, sample_checks=10**9)
+    assert checks_of(report) == {"consistency"}
+    (f,) = report.findings
+    assert f.message.startswith("qc_mean_lag1: 1 of ")
+    assert "qc_mean 1 output time(s) earlier" in f.message
 
 
 def test_changed_set_patch_differs_from_case_store(tree):

@@ -145,6 +145,11 @@ def set_inputs_of(split):
     return _inputs
 
 
+def case_attributes(cases):
+    """Case -> its case-sheet attributes as strings: per-sample coordinates of the sets."""
+    return {c: {k: str(v) for k, v in CASES[c].attributes.items()} for c in cases}
+
+
 def set_params_of(split):
     """Params function: everything a split's training store depends on besides inputs.
 
@@ -159,6 +164,7 @@ def set_params_of(split):
             "scale": wildcards.scale,
             "cases": cases,
             "regimes": {c: CASES[c].regime for c in cases},
+            "attributes": case_attributes(cases),
             "sets": SETTINGS.sets.to_dict(),
             "rule": SETTINGS.split_rule.to_dict(),
             "assignment": [a.to_dict() for a in ASSIGNMENT if a.split == name],

@@ -98,6 +98,7 @@ def _assemble(smk: Any) -> None:
         SetSettings.from_dict(p["sets"]),
         split=p["split"],
         scale=p["scale"],
+        attributes=p["attributes"],
         extra_provenance={"split_rule": p["rule"], "assignment": p["assignment"]},
     )
     if "stats" in smk.output.keys():  # the train split also yields the normalization

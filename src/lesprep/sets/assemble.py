@@ -2,12 +2,18 @@
 
 ``results/sets/<split>/scale-<L>.zarr`` stacks the coarse cells ``(case, time, z, y, x)``
 of all cases of the split along ``sample``, so cases with different grids, heights and
-run lengths concatenate. Per-sample coordinates ``case`` and ``regime`` are categorical
-(CF ``flag_values`` / ``flag_meanings``: small integers with the names in the attrs),
-``time``, ``z``, ``y``, ``x`` are the cell's coordinates, so any sample maps back to its
-cell of the per-case store. Features are 1-D over ``sample``; column features
-(``lwp_mean``, ``lwp_var``, ``cloud_cover``) and a pressure profile are repeated for every
-level of their column; patches are ``(sample, py, px)``.
+run lengths concatenate. Per-sample coordinates ``case`` and ``regime``, and every case
+attribute given to :func:`build_set` (a column of the case sheet), are strings (Zarr v3
+``string``, variable-length UTF-8), which xarray decodes to ``str`` by itself: the same
+string is the same case in every store. ``time``, ``z``, ``y``, ``x`` are the cell's
+coordinates, so any sample maps back to its cell of the per-case store. Features are 1-D
+over ``sample``; column features (``lwp_mean``, ``lwp_var``, ``cloud_cover``) and a
+pressure profile are repeated for every level of their column; patches are
+``(sample, py, px)``. Lagged features ``<f>_lag<k>`` (``sets.lags``) are the same cell's
+value ``k`` output times earlier (:mod:`lesprep.sets.lags`).
+
+While a store is assembled, labels travel as small integer codes (with the shuffle's
+packed records) and are written as strings chunk by chunk.
 
 Sample order is either the natural order (case, time, z, y, x) or a seeded random
 permutation. The store is written by streaming: one case and output time at a time is
@@ -21,6 +27,7 @@ from __future__ import annotations
 import json
 import logging
 import math
+import re
 import shutil
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -34,12 +41,25 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
+from lesprep.sets.lags import (
+    Lag,
+    common_interval,
+    kept_after_lags,
+    lag_attrs,
+    output_interval,
+    plan_lags,
+)
 from lesprep.sets.settings import SetSettings
 from lesprep.store import CHUNK_KEYS, CONVENTIONS, atomic_path, compressors, consolidate, open_store
 
 log = logging.getLogger(__name__)
 
 COORDS = ("case", "regime", "time", "z", "y", "x")
+"""Per-sample coordinates every set store has (case attributes come in addition)."""
+LABELS = ("case", "regime")
+"""Per-sample coordinates stored as strings (case attributes come in addition)."""
+ATTRIBUTE_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+"""Allowed names of case attributes (they become variable names of the store)."""
 
 
 @dataclass(frozen=True)
@@ -75,11 +95,17 @@ def store_layout(ds: xr.Dataset) -> tuple[list[str], list[str], list[str]]:
 
 
 def kept_indices(
-    times: int, z: np.ndarray, *, z_range: Sequence[float] | None, time_stride: int
+    times: int,
+    z: np.ndarray,
+    *,
+    z_range: Sequence[float] | None,
+    time_stride: int,
+    lag_steps: Sequence[int] = (),
 ) -> tuple[np.ndarray, np.ndarray]:
     """Time and level indices a set keeps of a per-case store under its filters.
 
-    Every ``time_stride``-th time from the first; levels with ``z_min <= z <= z_max``.
+    Every ``time_stride``-th time from the first, without the first ``max(lag_steps)``
+    times (their lags would precede the case); levels with ``z_min <= z <= z_max``.
 
     Parameters
     ----------
@@ -91,6 +117,8 @@ def kept_indices(
         ``(z_min, z_max)`` in m, or None for every level.
     time_stride
         Keep every n-th time.
+    lag_steps
+        Lags of the set's lagged features, in output times (empty: no lags).
 
     Returns
     -------
@@ -102,8 +130,10 @@ def kept_indices(
     >>> t, k = kept_indices(5, np.array([50.0, 150.0, 250.0]), z_range=(100, 300), time_stride=2)
     >>> t.tolist(), k.tolist()
     ([0, 2, 4], [1, 2])
+    >>> kept_indices(5, np.array([50.0]), z_range=None, time_stride=1, lag_steps=[2])[0].tolist()
+    [2, 3, 4]
     """
-    t_idx = np.arange(0, times, max(1, int(time_stride)))
+    t_idx = kept_after_lags(np.arange(0, times, max(1, int(time_stride))), lag_steps)
     z = np.asarray(z, dtype=np.float64)
     z_idx = np.arange(z.size)
     if z_range is not None:
@@ -115,47 +145,71 @@ def _case_pieces(
     ds: xr.Dataset,
     t_idx: np.ndarray,
     z_idx: np.ndarray,
-    feats,
-    cols,
-    patches,
-    meta: dict[str, int],
+    feats: Sequence[str],
+    cols: Sequence[str],
+    patches: Sequence[str],
+    codes: Mapping[str, int],
+    lags: Sequence[Lag] = (),
     *,
     limit_bytes: int = 128 * 2**20,
 ):
     """Yield the samples of each kept time of one case, in (z, y, x) order.
 
     Several times are read per array access (up to ``limit_bytes``), which is far faster
-    than one read per time for small coarse grids, and memory stays bounded.
+    than one read per time for small coarse grids, and memory stays bounded. ``codes``
+    holds the case's code of every label coordinate; each lagged feature is read at the
+    times its lags need (``t_idx`` holds no time whose lag precedes the case).
     """
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     nz = z_idx.size
     n = nz * ny * nx
+    lagged = sorted({lag.feature for lag in lags})
+    steps = sorted({lag.steps for lag in lags})
     per_time = sum(
         ds[v].dtype.itemsize * n * (math.prod(ds[v].shape[-2:]) if v in patches else 1)
-        for v in feats + patches
-    )
+        for v in [*feats, *patches, *lagged]
+    ) + sum(ds[v].dtype.itemsize * n * len(steps) for v in lagged)
     block = int(max(1, limit_bytes // max(1, per_time)))
     zz, yy, xx = np.meshgrid(ds.z.values[z_idx], ds.y.values, ds.x.values, indexing="ij")
     zz, yy, xx = zz.reshape(-1), yy.reshape(-1), xx.reshape(-1)
     profile_cols = {c: ds[c].values[z_idx] for c in cols if ds[c].dims == ("z",)}
+
+    def read(v: str, times: np.ndarray) -> np.ndarray:
+        if v in feats or v in patches:
+            return ds[v].isel(time=times, z=z_idx).values
+        return ds[v].isel(time=times).values
+
+    def per_cell(v: str, a: np.ndarray) -> np.ndarray:
+        if v in cols:
+            return np.ascontiguousarray(np.broadcast_to(a[None], (nz, ny, nx))).reshape(-1)
+        return a.reshape(-1)
+
     for b0 in range(0, t_idx.size, block):
         tb = t_idx[b0 : b0 + block]
-        data = {v: ds[v].isel(time=tb, z=z_idx).values for v in feats + patches}
-        data.update({c: ds[c].isel(time=tb).values for c in cols if c not in profile_cols})
+        data = {v: read(v, tb) for v in [*feats, *patches]}
+        data.update({c: read(c, tb) for c in cols if c not in profile_cols})
+        past_t = np.unique(np.concatenate([tb - k for k in steps])) if steps else tb[:0]
+        past = {v: read(v, past_t) for v in lagged}
         for k, t in enumerate(tb):
             out: dict[str, np.ndarray] = {}
             for v in feats:
                 out[v] = data[v][k].reshape(-1)
             for v in cols:
-                a = profile_cols[v][:, None, None] if v in profile_cols else data[v][k][None]
-                out[v] = np.ascontiguousarray(np.broadcast_to(a, (nz, ny, nx))).reshape(-1)
+                if v in profile_cols:
+                    a = profile_cols[v][:, None, None]
+                    out[v] = np.ascontiguousarray(np.broadcast_to(a, (nz, ny, nx))).reshape(-1)
+                else:
+                    out[v] = per_cell(v, data[v][k])
             for v in patches:
                 a = data[v][k]
                 out[v] = a.reshape(-1, a.shape[-2], a.shape[-1])
+            for lag in lags:
+                j = int(np.searchsorted(past_t, t - lag.steps))
+                out[lag.name] = per_cell(lag.feature, past[lag.feature][j])
             out["time"] = np.full(n, float(ds.time.values[t]))
             out["z"], out["y"], out["x"] = zz, yy, xx
-            out["case"] = np.full(n, meta["case"], dtype=np.int16)
-            out["regime"] = np.full(n, meta["regime"], dtype=np.int16)
+            for name, code in codes.items():
+                out[name] = np.full(n, code, dtype=np.int32)
             yield out
 
 
@@ -182,6 +236,68 @@ def sample_attrs(
     }
 
 
+def label_vocabulary(
+    case_ids: Sequence[str],
+    regimes: Mapping[str, str],
+    attributes: Mapping[str, Mapping[str, Any]],
+    *,
+    taken: Sequence[str] = (),
+) -> dict[str, dict[str, str]]:
+    """Label coordinate -> case id -> that case's string, for the cases of a set.
+
+    Parameters
+    ----------
+    case_ids
+        The set's cases.
+    regimes
+        Case id -> regime tag (empty or missing: ``none``).
+    attributes
+        Case id -> {attribute: value}; values become strings, a case without an
+        attribute that another case has gets the empty string.
+    taken
+        Names of the store's other variables (an attribute may not reuse one).
+
+    Raises
+    ------
+    ConfigError
+        If an attribute name is not a plain identifier or is taken.
+
+    Examples
+    --------
+    >>> v = label_vocabulary(["a", "b"], {"a": "cumulus"}, {"a": {"site": "x1"}})
+    >>> v["regime"], v["site"]
+    ({'a': 'cumulus', 'b': 'none'}, {'a': 'x1', 'b': ''})
+    """
+    out: dict[str, dict[str, str]] = {
+        "case": {c: str(c) for c in case_ids},
+        "regime": {c: str(regimes.get(c, "") or "none") for c in case_ids},
+    }
+    names = sorted({str(k) for c in case_ids for k in (attributes.get(c) or {})})
+    for name in names:
+        if not ATTRIBUTE_NAME.match(name) or name in (*COORDS, "sample", *taken):
+            raise ConfigError(
+                f"case attribute {name!r} cannot be a per-sample coordinate: expected a name "
+                "of letters, digits and _ (starting with a letter) that is not already "
+                f"a coordinate ({', '.join(COORDS)}, sample) or a feature of the store",
+                variable=name,
+                hint="rename that column of the case sheet",
+            )
+        out[name] = {c: str((attributes.get(c) or {}).get(name, "")) for c in case_ids}
+    return out
+
+
+def _codes(vocab: Mapping[str, Mapping[str, str]]) -> tuple[dict[str, np.ndarray], dict]:
+    """(label -> its sorted distinct strings, case -> label -> code into them)."""
+    distinct = {k: sorted(set(v.values())) for k, v in vocab.items()}
+    index = {k: {text: i for i, text in enumerate(v)} for k, v in distinct.items()}
+    codes = {c: {k: index[k][vocab[k][c]] for k in vocab} for c in vocab["case"]}
+    names = {k: np.asarray(v, dtype=np.dtypes.StringDType()) for k, v in distinct.items()}
+    return names, codes
+
+
+_LABEL_LONG_NAMES = {"case": "case id of the sample", "regime": "regime tag of the sample's case"}
+
+
 def build_set(
     inputs: Mapping[str, str | Path],
     regimes: Mapping[str, str],
@@ -190,6 +306,7 @@ def build_set(
     *,
     split: str,
     scale: str,
+    attributes: Mapping[str, Mapping[str, Any]] | None = None,
     extra_provenance: Mapping[str, Any] | None = None,
 ) -> Path:
     """Assemble the training store of one split and scale.
@@ -206,8 +323,19 @@ def build_set(
         Set settings.
     split, scale
         Names recorded in the attrs.
+    attributes
+        Case id -> {attribute: value} (columns of the case sheet): each attribute becomes
+        a string coordinate per sample; None or empty adds nothing.
     extra_provenance
         Extra fields of the provenance step (split rule, assignment, ...).
+
+    Raises
+    ------
+    ConfigError
+        Cases coarsened differently, filters leaving no sample, an unusable case
+        attribute or lagged feature.
+    TimeAxisError
+        With ``settings.lag_features``: a case whose output interval is not regular.
     """
     retain_freed_memory()
     if not inputs:
@@ -220,7 +348,6 @@ def build_set(
     case_ids = sorted(stores)
     if not case_ids:
         return _empty_set(out, split=split, scale=scale, skipped=skipped)
-    regime_names = sorted({regimes.get(c, "") or "none" for c in case_ids})
     layouts = {c: store_layout(ds) for c, ds in stores.items()}
     ref = layouts[case_ids[0]]
     for c in case_ids[1:]:
@@ -231,6 +358,26 @@ def build_set(
                 hint="re-run the workflow so every case uses the same coarsen settings",
             )
     feats, cols, patches = ref
+    first = stores[case_ids[0]]
+    where = f"split {split} at scale {scale}"
+    kinds = {str(n): feature_kind(tuple(v.dims)) or "other" for n, v in first.data_vars.items()}
+    lags = plan_lags(settings.lag_features, settings.lag_steps, kinds, where=where)
+    intervals = {
+        c: output_interval(ds.time.values, case=c, file=str(inputs[c]))
+        for c, ds in stores.items()
+        if lags
+    }
+    if lags and common_interval(intervals) is None:
+        log.warning(
+            "%s: the cases' output intervals differ (%s); a lag of k output times spans "
+            "k times the case's own interval (attribute lag_s_by_case)",
+            where,
+            ", ".join(f"{c} {v:g} s" for c, v in intervals.items() if v is not None),
+        )
+    vocab = label_vocabulary(
+        case_ids, regimes, attributes or {}, taken=[*kinds, *(lag.name for lag in lags)]
+    )
+    names, codes = _codes(vocab)
     pieces: list[_Piece] = []
     kept: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     for ci, c in enumerate(case_ids):
@@ -240,6 +387,7 @@ def build_set(
             ds.z.values,
             z_range=settings.z_range,
             time_stride=settings.time_stride,
+            lag_steps=[lag.steps for lag in lags],
         )
         kept[c] = (t_idx, z_idx)
         n = z_idx.size * ds.sizes["y"] * ds.sizes["x"]
@@ -247,27 +395,25 @@ def build_set(
     total = int(sum(p.n for p in pieces))
     if total == 0:
         raise ConfigError(
-            f"split {split!r} at scale {scale}: the filters leave no sample",
-            hint="widen sets.z_range or lower sets.time_stride",
+            f"{where}: the filters leave no sample",
+            hint="widen sets.z_range, lower sets.time_stride or shorten sets.lags.steps",
         )
     dtype = np.dtype(settings.dtype)
-    patch_shape = {n: stores[case_ids[0]][n].shape[-2:] for n in patches}
+    patch_shape = {n: first[n].shape[-2:] for n in patches}
     widest = max([dtype.itemsize] + [dtype.itemsize * math.prod(s) for s in patch_shape.values()])
     chunk = int(max(1, min(total, settings.chunk_mib * 2**20 // widest)))
     perm = None
     if settings.shuffle:
         perm = np.random.default_rng(settings.shuffle_seed).permutation(total)
-    comp = compressors(settings.store)
-    first = stores[case_ids[0]]
+    # in-flight dtypes (labels as codes); the store holds labels as strings
     dtypes: dict[str, np.dtype] = {
-        **{n: dtype for n in feats + cols + patches},
-        "time": np.dtype("float64"),
-        "z": np.dtype("float64"),
-        "y": np.dtype("float64"),
-        "x": np.dtype("float64"),
-        "case": np.dtype("int16"),
-        "regime": np.dtype("int16"),
+        **{n: dtype for n in [*feats, *cols, *patches, *(lag.name for lag in lags)]},
+        **{n: np.dtype("float64") for n in ("time", "z", "y", "x")},
+        **{n: np.dtype("int32") for n in vocab},
     }
+    coord_names = " ".join(
+        ["case", "regime", *sorted(set(vocab) - set(LABELS)), "time", "z", "y", "x"]
+    )
     with atomic_path(out) as tmp:
         root = zarr.open_group(str(tmp), mode="w-", zarr_format=3)
         arrays: dict[str, Any] = {}
@@ -279,48 +425,39 @@ def build_set(
                 shape = (total, *patch_shape[name])
                 chunks = (chunk, *patch_shape[name])
                 dims = ["sample", "py", "px"]
-            fill = 0 if dt.kind in "iu" else 0.0
+            label = name in vocab
             arrays[name] = root.create_array(
                 name,
                 shape=shape,
                 chunks=chunks,
-                dtype=dt,
-                compressors=comp,
-                fill_value=fill,
+                dtype=str if label else dt,
+                compressors=compressors(settings.store),
+                fill_value="" if label else 0.0,
                 dimension_names=dims,
                 chunk_key_encoding=CHUNK_KEYS,
             )
             if name in first:
                 arrays[name].attrs.update(sample_attrs(name, first[name].attrs, stores))
-        arrays["case"].attrs.update(
-            {
-                "long_name": "case of the sample",
-                "flag_values": list(range(len(case_ids))),
-                "flag_meanings": " ".join(case_ids),
-            }
-        )
-        arrays["regime"].attrs.update(
-            {
-                "long_name": "regime tag of the sample's case",
-                "flag_values": list(range(len(regime_names))),
-                "flag_meanings": " ".join(regime_names),
-            }
-        )
-        coord_names = "case regime time z y x"
-        for name in feats + cols + patches:
-            arrays[name].attrs["coordinates"] = coord_names
+            if label:
+                arrays[name].attrs["long_name"] = _LABEL_LONG_NAMES.get(
+                    name, f"case attribute {name} of the sample's case"
+                )
+            elif name not in COORDS:
+                arrays[name].attrs["coordinates"] = coord_names
+        for lag in lags:
+            arrays[lag.name].attrs.update(lag_attrs(first[lag.feature].attrs, lag, intervals))
+            arrays[lag.name].attrs["coordinates"] = coord_names
+        sink = _Sink(arrays, names, dtypes)
         writer = None
         if perm is not None:
-            writer = _ShuffleWriter(arrays, total, chunk, perm, tmp / ".scratch")
+            writer = _ShuffleWriter(sink, total, chunk, perm, tmp / ".scratch")
         pos = 0
-        for ci, c in enumerate(case_ids):
-            meta = {"case": ci, "regime": regime_names.index(regimes.get(c, "") or "none")}
+        for c in case_ids:
             t_idx, z_idx = kept[c]
-            for data in _case_pieces(stores[c], t_idx, z_idx, feats, cols, patches, meta):
+            for data in _case_pieces(stores[c], t_idx, z_idx, feats, cols, patches, codes[c], lags):
                 n = data["time"].size
                 if writer is None:
-                    for name, a in data.items():
-                        arrays[name][pos : pos + n] = a.astype(dtypes[name], copy=False)
+                    sink.write(pos, pos + n, data)
                 else:
                     writer.add(pos, data)
                 pos += n
@@ -337,6 +474,8 @@ def build_set(
             samples=total,
             skipped_cases=skipped,
             settings=settings.to_dict(),
+            case_attributes={k: vocab[k] for k in vocab if k not in LABELS},
+            output_intervals_s=intervals,
             **dict(extra_provenance or {}),
         )
         lineage = provenance.merge(prov_inputs)
@@ -353,6 +492,7 @@ def build_set(
                 "split": split,
                 "scale": scale,
                 "cases": case_ids,
+                "sample_labels": list(vocab),
                 "sample_order": "shuffled" if perm is not None else "case, time, z, y, x",
                 "history": (
                     history + f"\n{step['created']} lesprep assemble: {split} {scale} "
@@ -366,6 +506,28 @@ def build_set(
     for s in stores.values():
         s.close()
     return Path(out)
+
+
+class _Sink:
+    """Writes in-flight samples into the store's arrays, labels as strings."""
+
+    def __init__(
+        self,
+        arrays: Mapping[str, Any],
+        names: Mapping[str, np.ndarray],
+        dtypes: Mapping[str, np.dtype],
+    ) -> None:
+        self.arrays = arrays
+        self.names = names
+        self.dtypes = dtypes
+
+    def write(self, lo: int, hi: int, data: Mapping[str, Any]) -> None:
+        for name, a in self.arrays.items():
+            v = np.asarray(data[name])
+            if name in self.names:
+                a[lo:hi] = self.names[name][v]
+            else:
+                a[lo:hi] = v.astype(self.dtypes[name], copy=False)
 
 
 def _empty_set(out: str | Path, *, split: str, scale: str, skipped: Mapping[str, str]) -> Path:
@@ -394,24 +556,23 @@ class _ShuffleWriter:
 
     Pass 1 appends every sample, as one packed record with its final position, to the
     scratch file of the output chunk it belongs to; pass 2 reads each chunk's file, puts
-    the records in place and writes the chunk once.
+    the records in place and writes the chunk once (labels still as codes in the records).
     """
 
     def __init__(
-        self, arrays: Mapping[str, Any], total: int, chunk: int, perm: np.ndarray, scratch: Path
+        self, sink: _Sink, total: int, chunk: int, perm: np.ndarray, scratch: Path
     ) -> None:
-        self.arrays = arrays
+        self.sink = sink
         self.total = total
         self.chunk = chunk
         self.perm = perm
         self.nb = math.ceil(total / chunk)
         self.dir = scratch
         self.dir.mkdir(parents=True)
-        fields = [("_pos", np.int64)]
-        for name, arr in arrays.items():
-            fields.append(
-                (name, arr.dtype, tuple(arr.shape[1:])) if arr.ndim > 1 else (name, arr.dtype)
-            )
+        fields: list[Any] = [("_pos", np.int64)]
+        for name, arr in sink.arrays.items():
+            dt = sink.dtypes[name]
+            fields.append((name, dt, tuple(arr.shape[1:])) if arr.ndim > 1 else (name, dt))
         self.record = np.dtype(fields)
 
     def add(self, start: int, data: Mapping[str, np.ndarray]) -> None:
@@ -437,8 +598,7 @@ class _ShuffleWriter:
                 if rec.size != hi - lo:
                     raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected {hi - lo}")
                 rec = rec[np.argsort(rec["_pos"])]
-                for name, arr in self.arrays.items():
-                    arr[lo:hi] = rec[name]
+                self.sink.write(lo, hi, {name: rec[name] for name in self.sink.arrays})
         finally:
             shutil.rmtree(self.dir, ignore_errors=True)
 
@@ -447,12 +607,13 @@ def normalization_stats(store: str | Path) -> dict[str, dict[str, float]]:
     """Mean and population standard deviation of every feature and patch variable.
 
     Streams the store chunk by chunk and merges float64 moments exactly (Chan et al.
-    1979). Coordinates (case, regime, time, z, y, x) are not features.
+    1979). Coordinates (case, regime, case attributes, time, z, y, x) are not features;
+    lagged features are.
     """
     root = zarr.open_group(str(store), mode="r")
     out: dict[str, dict[str, float]] = {}
     for name, arr in root.arrays():
-        if name in COORDS:
+        if name in COORDS or np.dtype(arr.dtype).kind != "f":
             continue
         n_tot, mean, m2 = 0, 0.0, 0.0
         step = arr.chunks[0] * 4
@@ -501,15 +662,43 @@ def write_normalization(
 
 
 def open_set(path: str | Path) -> xr.Dataset:
-    """Open a training store with categorical ``case``/``regime`` as coordinates."""
+    """Open a training store with every per-sample coordinate as a coordinate.
+
+    ``xr.open_zarr`` alone does as much for a store with features (their ``coordinates``
+    attribute names the coordinates); this also covers a store without features.
+    """
     ds = open_store(path)
-    return ds.set_coords([c for c in COORDS if c in ds.data_vars])
+    labels = [str(n) for n in ds.attrs.get("sample_labels", ())]
+    return ds.set_coords([c for c in (*COORDS, *labels) if c in ds.data_vars])
+
+
+def label_values(arr: Any, index: Any = None) -> np.ndarray:
+    """Strings of a per-sample label (``case``, ``regime``, a case attribute).
+
+    Reads a zarr array, an xarray variable or a numpy array, whole or at the samples
+    ``index`` (an integer array). Stores written before labels were strings hold small
+    integers with the names in ``flag_meanings``; they are decoded here, so readers
+    handle both.
+
+    Examples
+    --------
+    >>> label_values(np.asarray(["a", "b"], dtype=object)).tolist()
+    ['a', 'b']
+    """
+    attrs = getattr(arr, "attrs", {})
+    values = np.asarray(arr[...] if index is None else arr[np.asarray(index)])
+    if values.dtype.kind in "iu" and "flag_meanings" in attrs:
+        return np.asarray(str(attrs["flag_meanings"]).split(), dtype=object)[values.astype(int)]
+    return values.astype(object)
 
 
 def decode_category(ds: xr.Dataset, name: str) -> np.ndarray:
-    """Names of a categorical per-sample coordinate (``case`` or ``regime``)."""
-    meanings = str(ds[name].attrs["flag_meanings"]).split()
-    return np.asarray(meanings)[ds[name].values.astype(int)]
+    """Names of a per-sample label of an opened set (``case``, ``regime``, an attribute).
+
+    Kept for callers of earlier versions: a label now reads as strings by itself
+    (``ds[name].values``); this also decodes the integer codes of older stores.
+    """
+    return label_values(ds[name])
 
 
 def sample_count(inputs: Sequence[str | Path]) -> int:

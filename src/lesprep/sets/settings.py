@@ -34,6 +34,10 @@ class SetSettings:
         Stored floating-point type.
     store
         Compressor settings.
+    lag_features
+        Features stored also at earlier output times of the same cell (empty: none).
+    lag_steps
+        Those earlier times, in output times before the sample's (each at least 1).
     """
 
     z_range: tuple[float, float] | None
@@ -43,8 +47,20 @@ class SetSettings:
     chunk_mib: float
     dtype: Dtype
     store: StoreSettings
+    lag_features: tuple[str, ...]
+    lag_steps: tuple[int, ...]
 
     def __post_init__(self) -> None:
+        steps = tuple(int(k) for k in self.lag_steps)
+        if any(k < 1 for k in steps) or len(set(steps)) != len(steps):
+            raise ConfigError(f"sets.lags.steps is {list(steps)}; expected distinct integers >= 1")
+        features = tuple(str(f) for f in self.lag_features)
+        if len(set(features)) != len(features):
+            raise ConfigError(f"sets.lags.features lists a feature twice: {list(features)}")
+        if features and not steps:
+            raise ConfigError("sets.lags.features is set but sets.lags.steps is empty")
+        object.__setattr__(self, "lag_features", features)
+        object.__setattr__(self, "lag_steps", tuple(sorted(steps)) if features else ())
         if self.z_range is not None:
             lo, hi = (float(v) for v in self.z_range)
             if lo > hi:
@@ -71,6 +87,8 @@ class SetSettings:
             chunk_mib=float(sets["chunk_mib"]),
             dtype=dtype,
             store=store,
+            lag_features=tuple(sets["lags"]["features"]),
+            lag_steps=tuple(sets["lags"]["steps"]),
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -83,6 +101,7 @@ class SetSettings:
             "chunk_mib": self.chunk_mib,
             "dtype": self.dtype,
             "store": self.store.to_dict(),
+            "lags": {"features": list(self.lag_features), "steps": list(self.lag_steps)},
         }
 
     @classmethod
@@ -97,4 +116,6 @@ class SetSettings:
             chunk_mib=float(d["chunk_mib"]),
             dtype=d["dtype"],
             store=StoreSettings.from_dict(d["store"]),
+            lag_features=tuple(d["lags"]["features"]),
+            lag_steps=tuple(d["lags"]["steps"]),
         )

@@ -1,5 +1,6 @@
 """Check ``consistency``: scale stores agree with their canonical store, set samples
-with the per-case cells they came from (the assembly's own selection and layout).
+with the per-case cells they came from (the assembly's own selection and layout); a
+lagged feature ``<f>_lag<k>`` with ``f`` of the same cell ``k`` output times earlier.
 """
 
 from __future__ import annotations
@@ -12,7 +13,7 @@ from typing import Any
 import numpy as np
 import zarr
 
-from lesprep.sets.assemble import COORDS, feature_kind, kept_indices
+from lesprep.sets.assemble import COORDS, feature_kind, kept_indices, label_values
 from lesprep.store import open_store
 from lesprep.verify.findings import ResultsTree, listing, own_step
 
@@ -78,6 +79,7 @@ def _open_case(path: Path, step: Mapping[str, Any]) -> _CaseStore:
         coords["z"],
         z_range=settings.get("z_range_m"),
         time_stride=int(settings.get("time_stride") or 1),
+        lag_steps=(settings.get("lags") or {}).get("steps") or (),
     )
     return _CaseStore(
         group=g,
@@ -123,20 +125,23 @@ def check_set(tree: ResultsTree, label: str, path: Path, k: int, seed: Any) -> N
         tree.add("consistency", path, f"{n} samples, its assemble step recorded {step['samples']}")
     if n == 0:
         return
-    codes = np.asarray(root["case"][...], dtype=np.int64)
-    per_case = np.bincount(codes, minlength=len(listed))
-    for ci, c in enumerate(listed):
-        if c in cases and int(per_case[ci]) != cases[c].cells:
+    names, counts = np.unique(label_values(root["case"]), return_counts=True)
+    per_case = {str(c): int(k) for c, k in zip(names, counts, strict=True)}
+    for c in listed:
+        if c in cases and per_case.get(c, 0) != cases[c].cells:
             tree.add(
                 "consistency",
                 path,
-                f"{int(per_case[ci])} samples of case {c}, expected {cases[c].cells} cells of "
+                f"{per_case.get(c, 0)} samples of case {c}, expected {cases[c].cells} cells of "
                 f"cases/{c}/scale-{label}.zarr after the recorded filters",
             )
     feats = {
         name: arr
         for name, arr in root.arrays()
-        if name not in COORDS and arr.ndim >= 1 and arr.shape[0] == n
+        if name not in COORDS
+        and np.dtype(arr.dtype).kind == "f"
+        and arr.ndim >= 1
+        and arr.shape[0] == n
     }
     check_layout(tree, path, feats, cases)
     rng = np.random.default_rng(seed)
@@ -144,19 +149,33 @@ def check_set(tree: ResultsTree, label: str, path: Path, k: int, seed: Any) -> N
     check_samples(tree, path, root, idx, listed, cases, feats, label)
 
 
+def lagged(feats: Mapping[str, zarr.Array]) -> dict[str, tuple[str, int]]:
+    """Lagged features of a set store -> (their feature, lag in output times)."""
+    return {
+        name: (str(arr.attrs["lag_of"]), int(arr.attrs["lag_steps"]))
+        for name, arr in feats.items()
+        if "lag_of" in arr.attrs and "lag_steps" in arr.attrs
+    }
+
+
 def check_layout(
     tree: ResultsTree, path: Path, feats: Mapping[str, zarr.Array], cases: Mapping[str, _CaseStore]
 ) -> None:
+    lags = lagged(feats)
     for c, cs in cases.items():
         missing = sorted(set(cs.features) - set(feats))
-        extra = sorted(set(feats) - set(cs.features))
+        extra = sorted(set(feats) - set(cs.features) - set(lags))
+        extra += sorted(n for n, (f, _) in lags.items() if f not in cs.features)
         if missing:
             tree.add("consistency", path, f"lacks features {missing} of case {c}")
         if extra:
             tree.add("consistency", path, f"features {extra} are not in case {c}'s store")
-        for name in sorted(set(feats) & set(cs.features)):
-            kind = feature_kind(tuple(cs.features[name].metadata.dimension_names))
-            want = cs.features[name].shape[-2:] if kind == "patch" else ()
+        for name in sorted(set(feats) & (set(cs.features) | set(lags))):
+            base = lags[name][0] if name in lags else name
+            if base not in cs.features:
+                continue
+            kind = feature_kind(tuple(cs.features[base].metadata.dimension_names))
+            want = cs.features[base].shape[-2:] if kind == "patch" else ()
             if tuple(feats[name].shape[1:]) != tuple(want):
                 tree.add(
                     "consistency",
@@ -204,12 +223,13 @@ def check_samples(
     feats: Mapping[str, zarr.Array],
     label: str,
 ) -> None:
-    coord = {c: np.asarray(root[c].oindex[idx]) for c in ("case", "time", "z", "y", "x")}
+    coord = {c: np.asarray(root[c].oindex[idx]) for c in ("time", "z", "y", "x")}
+    coord["case"] = label_values(root["case"], idx)
     lost: list[str] = []
     outside: list[str] = []
     by_case: dict[str, list[tuple[int, tuple[int, ...]]]] = {}
     for j, s in enumerate(idx):
-        c = listed[int(coord["case"][j])]
+        c = str(coord["case"][j])
         if c not in cases:
             continue
         pos = (float(coord[a][j]) for a in ("time", "z", "y", "x"))
@@ -240,13 +260,28 @@ def check_samples(
         name: np.asarray(arr.oindex[(idx, *(slice(None),) * (arr.ndim - 1))])
         for name, arr in feats.items()
     }
+    lags = lagged(feats)
     for c, items in sorted(by_case.items()):
         rows = np.array([j for j, _ in items])
         cells = np.array([cell for _, cell in items], dtype=np.int64)
         tree.checked["samples"] += rows.size
-        for name in sorted(set(feats) & set(cases[c].features)):
+        for name in sorted(set(feats) & (set(cases[c].features) | set(lags))):
+            base, back = lags.get(name, (name, 0))
+            if base not in cases[c].features:
+                continue
+            at = cells.copy()
+            at[:, 0] -= back
+            if (at[:, 0] < 0).any():
+                tree.add(
+                    "consistency",
+                    path,
+                    f"{name}: {int((at[:, 0] < 0).sum())} sampled cells of case {c} lie "
+                    f"within the first {back} output time(s), so their lag precedes the case",
+                )
+                continue
             got = values[name][rows]
-            want = _case_values(cases[c].features[name], cells).astype(got.dtype)
+            want = _case_values(cases[c].features[base], at).astype(got.dtype)
+            earlier = f" {back} output time(s) earlier" if back else ""
             same = (got == want) | (np.isnan(got) & np.isnan(want))
             bad = ~same.reshape(rows.size, -1).all(axis=1)
             if bad.any():
@@ -255,7 +290,7 @@ def check_samples(
                     "consistency",
                     path,
                     f"{name}: {int(bad.sum())} of {rows.size} sampled cells of case {c} differ "
-                    f"from cases/{c}/scale-{label}.zarr (first: sample "
+                    f"from {base}{earlier} of cases/{c}/scale-{label}.zarr (first: sample "
                     f"{int(idx[rows[b]])}, set {got[b].ravel()[:3]}, per-case "
                     f"{want[b].ravel()[:3]})",
                 )

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 from typing import Any
 
 import numpy as np
@@ -22,11 +23,12 @@ def _forbidden(kind: str, name: str) -> bool:
     """Whether NaN is forbidden in an array: every canonical field (ingest refuses NaN in
     any mapped field and derives the others from them); in a scale store, the moments,
     covariances, sub-grid TKE and the cloud fractions (``drh_dz`` of a one-level column
-    and the baselines may be NaN)."""
+    and the baselines may be NaN); a lagged copy ``<name>_lag<k>`` as ``<name>``."""
     if name in COORDINATES:
         return False
     if kind == "canonical":
         return True
+    name = re.sub(r"_lag[0-9]+$", "", name)  # a lagged copy (set stores) as its feature
     base, _, suffix = name.rpartition("_")
     return (
         name in ("cloud_fraction", "cloud_fraction_zero", "tke_sgs")

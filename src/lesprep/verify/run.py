@@ -31,16 +31,18 @@ finds as a :class:`Finding` (it never stops at the first one). The checks, by na
 ``nan``
     no NaN or infinity where the conventions forbid one: the canonical ``qc, qv, T, w,
     rh, lwp, p`` (ingest refuses non-finite raw fields); in per-case scale stores and set
-    stores every ``*_mean``, ``*_var``, ``*_skew`` and ``cloud_fraction`` (skewness is 0,
-    not NaN, where the block variance is 0).
+    stores every ``*_mean``, ``*_var``, ``*_skew`` and ``cloud_fraction``, and their lagged
+    copies ``*_lag<k>`` (skewness is 0, not NaN, where the block variance is 0).
 ``consistency``
     a per-case scale store has its canonical store's times and heights and ``n // f``
     cells across; a set store's sample count equals the per-case cells that pass the
-    filters its ``assemble`` step recorded (``z_range_m``, ``time_stride``), in total and
-    per case; its features exist in the per-case stores with matching shapes; and for a
-    seeded random sample of ``sample_checks`` samples per set store, the sample's
-    ``(case, time, z, y, x)`` is a cell of that case's store and every feature equals the
-    per-case value cast to the set's dtype (exactly; NaN equals NaN).
+    filters its ``assemble`` step recorded (``z_range_m``, ``time_stride``, the times
+    dropped for ``lags``), in total and per case; its features exist in the per-case
+    stores with matching shapes; and for a seeded random sample of ``sample_checks``
+    samples per set store, the sample's ``(case, time, z, y, x)`` is a cell of that case's
+    store and every feature equals the per-case value cast to the set's dtype (exactly;
+    NaN equals NaN), a lagged feature ``<f>_lag<k>`` the value of ``f`` ``k`` output
+    times earlier.
 
 ``VerifyReport.checked`` counts what was examined per check: stores (``open``,
 ``provenance``), distinct raw files (``raw_files``), set stores plus ``splits.tsv``

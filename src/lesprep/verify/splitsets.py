@@ -10,6 +10,7 @@ import zarr
 
 from lesprep.errors import InputError
 from lesprep.layout import ResultsLayout
+from lesprep.sets.assemble import label_values
 from lesprep.sets.splits import SPLITS, read_assignment_tsv
 from lesprep.verify.findings import ResultsTree, own_step
 
@@ -17,23 +18,14 @@ from lesprep.verify.findings import ResultsTree, own_step
 
 
 def _set_cases(tree: ResultsTree, path: Path) -> tuple[list[str], set[str], np.ndarray | None]:
-    """(``cases`` attribute, case names of the samples, per-sample case codes)."""
+    """(``cases`` attribute, case names of the samples, per-sample case names)."""
     attrs = tree.attrs[path]
     listed = [str(c) for c in attrs.get("cases", []) or []]
     root = zarr.open_group(str(path), mode="r")
     if "case" not in root:
         return listed, set(), None
-    arr = root["case"]
-    codes = np.asarray(arr[...], dtype=np.int64)
-    meanings = str(arr.attrs.get("flag_meanings", "")).split()
-    values = [int(v) for v in arr.attrs.get("flag_values", [])]
-    if meanings != listed:
-        tree.add("splits", path, f"case flag_meanings {meanings} differ from attr cases {listed}")
-    if values != list(range(len(meanings))):
-        raise ValueError(f"case flag_values {values} are not 0..{len(meanings) - 1}")
-    if codes.size and (codes.min() < 0 or codes.max() >= len(meanings)):
-        raise ValueError(f"case codes outside flag_values 0..{len(meanings) - 1}")
-    return listed, {meanings[c] for c in np.unique(codes)}, codes
+    names = label_values(root["case"])
+    return listed, {str(c) for c in np.unique(names)}, names
 
 
 def read_splits(tree: ResultsTree) -> dict[str, str] | None:

@@ -354,6 +354,9 @@ def test_scenes_for_case_against_numpy_and_scipy(tree):
     skew = scipy.stats.skew(lwp.reshape(lwp.shape[0], -1), axis=1, bias=True)
     np.testing.assert_allclose(frame["lwp_skew"], skew, rtol=1e-9)
     np.testing.assert_allclose(frame["cloud_cover"], cloudy.mean(axis=(1, 2)), rtol=1e-12)
+    # the domain size is the shorter side: points times the spacing recorded in the store
+    side = min(ds.sizes["y"], ds.sizes["x"]) * float(ds.attrs["dx"])
+    assert frame["domain_m"].tolist() == [side] * ds.sizes["time"]
 
 
 def test_scene_table_rst(tree, tmp_path):

@@ -104,6 +104,8 @@ def _versions(root):
     [
         ("scales/patches.py", {"coarsen"}),
         ("report/scenes.py", {"report"}),
+        ("report/regimes.py", {"regimes"}),
+        ("report/figures.py", {"report"}),
         ("canonical/derived.py", {"ingest", "coarsen"}),  # coarsening derives rh of means
         # the report imports schemes (Sundqvist baseline), whose Gaussian scheme uses thermo
         ("thermo.py", {"ingest", "coarsen", "demo", "report"}),

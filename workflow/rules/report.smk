@@ -74,3 +74,42 @@ rule tables:
         runtime=30,
     script:
         "../scripts/tables.py"
+
+
+rule regimes:
+    # Only the scene table and the split table: the labels are descriptive and no set
+    # store depends on them, so a new train case re-runs the labelling, not other sets.
+    input:
+        scenes=str(LAYOUT.scenes_tsv()),
+        splits=str(LAYOUT.splits_tsv()),
+    output:
+        table=report(
+            str(LAYOUT.regimes_tsv()), caption="../report/regimes_table.rst", category="Regimes"
+        ),
+        fit=report(
+            str(LAYOUT.regimes_json()), caption="../report/regimes_fit.rst", category="Regimes"
+        ),
+        silhouette=report(
+            str(LAYOUT.regime_figure("silhouette")),
+            caption="../report/regimes_silhouette.rst",
+            category="Regimes",
+        ),
+        descriptors=report(
+            str(LAYOUT.regime_figure("descriptors")),
+            caption="../report/regimes_descriptors.rst",
+            category="Regimes",
+        ),
+        timeline=report(
+            str(LAYOUT.regime_figure("timeline")),
+            caption="../report/regimes_timeline.rst",
+            category="Regimes",
+        ),
+    params:
+        settings={"regimes": SETTINGS.regimes.to_dict(), "code": CODE["regimes"]},
+    log:
+        "logs/report/regimes.log",
+    resources:
+        mem_mb=1000,
+        runtime=10,
+    script:
+        "../scripts/regimes.py"

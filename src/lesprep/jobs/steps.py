@@ -29,6 +29,7 @@ STAGE_MODULES: dict[str, tuple[str, ...]] = {
     "splits": ("lesprep.sets.splits",),
     "assemble": ("lesprep.sets.assemble",),
     "report": ("lesprep.report.figures", "lesprep.report.tables"),
+    "regimes": ("lesprep.report.regime_figures",),
 }
 """Entry modules of each stage; a stage's code version covers them and what they import
 (:mod:`lesprep.codeversion`)."""
@@ -126,6 +127,22 @@ def _tables(smk: Any) -> None:
     )
 
 
+def _regimes(smk: Any) -> None:
+    from lesprep.layout import REGIME_FIGURES
+    from lesprep.report.regime_figures import write_regime_outputs
+    from lesprep.report.settings import RegimeSettings
+
+    p = smk.params.settings
+    write_regime_outputs(
+        smk.input.scenes,
+        smk.input.splits,
+        RegimeSettings.from_dict(p["regimes"]),
+        table_out=smk.output.table,
+        fit_out=smk.output.fit,
+        figures={kind: getattr(smk.output, kind) for kind in REGIME_FIGURES},
+    )
+
+
 STEPS: dict[str, Callable[[Any], None]] = {
     "demo": _demo,
     "ingest": _ingest,
@@ -134,6 +151,7 @@ STEPS: dict[str, Callable[[Any], None]] = {
     "assemble": _assemble,
     "figures": _figures,
     "tables": _tables,
+    "regimes": _regimes,
 }
 
 

@@ -35,8 +35,10 @@ def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
     Returns
     -------
     pandas.DataFrame
-        Columns ``time`` (s since the time origin) and the fields of
-        :class:`lesprep.report.scenes.SceneDescriptors`, one row per kept time.
+        Columns ``time`` (s since the time origin), the fields of
+        :class:`lesprep.report.scenes.SceneDescriptors` and ``domain_m``, the shorter
+        horizontal side of the domain (m; the fundamental wavelength of the spectrum), one
+        row per kept time.
 
     Examples
     --------
@@ -45,7 +47,10 @@ def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
     """
     with opened_store(canonical_path, ("lwp", "cloud_mask"), chunks={}) as ds:
         column_cloudy = (ds["cloud_mask"] > 0).any("z")
-        return describe_case(ds["lwp"], column_cloudy, float(ds.attrs["dx"]))
+        dx = float(ds.attrs["dx"])
+        frame = describe_case(ds["lwp"], column_cloudy, dx)
+        frame["domain_m"] = min(ds["lwp"].shape[-2:]) * dx
+        return frame
 
 
 def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
@@ -57,7 +62,7 @@ def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | P
         Case id -> canonical store.
     out_tsv
         Table to write (UTF-8, a header line, one row per case and kept time, cases in
-        the order given): ``case``, ``time_s`` and the descriptor fields.
+        the order given): ``case``, ``time_s``, the descriptor fields and ``domain_m``.
 
     Returns
     -------
@@ -73,7 +78,12 @@ def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | P
         frame = scenes_for_case(path).rename(columns={"time": "time_s"})
         frame.insert(0, "case", case)
         frames.append(frame)
-    columns = ["case", "time_s", *(f.name for f in dataclasses.fields(SceneDescriptors))]
+    columns = [
+        "case",
+        "time_s",
+        *(f.name for f in dataclasses.fields(SceneDescriptors)),
+        "domain_m",
+    ]
     table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=columns)
     out = Path(out_tsv)
     out.parent.mkdir(parents=True, exist_ok=True)

@@ -21,7 +21,7 @@ from sklearn.metrics import adjusted_rand_score, silhouette_score
 from sklearn.preprocessing import StandardScaler
 
 from lesprep.errors import ConfigError, InputError
-from lesprep.report import regimes
+from lesprep.report import regime_figures, regimes
 from lesprep.report.regime_figures import write_regime_outputs
 from lesprep.report.settings import RegimeSettings
 from lesprep.sets.splits import Assignment, write_assignment_tsv
@@ -329,3 +329,27 @@ def test_write_regimes_tables_and_figures(tmp_path):
         np.testing.assert_allclose(centroid, rows.mean(axis=0), rtol=1e-9)
     for png in figs.values():
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_figures_show_what_the_tables_hold(tmp_path):
+    frame, _ = blob_scenes()
+    frame.loc[0, ["cloud_cover", "peak_wavelength_m"]] = [0.0, np.nan]  # one clear scene
+    scenes = tmp_path / "scenes.tsv"
+    frame.to_csv(scenes, sep="\t", index=False)
+    table, fit = regimes.label_scenes(frame, all_train(frame), regime_settings(descriptors=FOUR))
+    table.to_csv(tmp_path / "regimes.tsv", sep="\t", index=False)
+    (tmp_path / "regimes.json").write_text(json.dumps(fit.to_dict()))
+    fig = regime_figures.regime_silhouette(tmp_path / "regimes.json", tmp_path / "s.png")
+    curve = fig.axes[0].lines[0]
+    assert list(curve.get_xdata()) == sorted(fit.silhouette)
+    assert list(curve.get_ydata()) == [fit.silhouette[k] for k in sorted(fit.silhouette)]
+    fig = regime_figures.regime_timeline(tmp_path / "regimes.tsv", tmp_path / "t.png")
+    dots = fig.axes[0].collections[0]
+    assert len(dots.get_offsets()) == len(table)
+    # one colour per label, grey (matplotlib's "0.8") for the clear scene
+    colours = {tuple(c) for c in dots.get_facecolors()}
+    assert len(colours) == fit.k + 1 and (0.8, 0.8, 0.8, 1.0) in colours
+    fig = regime_figures.regime_descriptors(
+        scenes, tmp_path / "regimes.tsv", tmp_path / "regimes.json", tmp_path / "d.png"
+    )
+    assert len([ax for ax in fig.axes if ax.collections]) == 6  # pairs of four descriptors

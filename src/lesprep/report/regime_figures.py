@@ -75,12 +75,13 @@ def label_colours(labels: np.ndarray) -> list[Any]:
     Examples
     --------
     >>> label_colours(np.array([-1, 0]))[0]
-    '0.8'
+    (0.8, 0.8, 0.8, 1.0)
     """
     from matplotlib import colormaps
+    from matplotlib.colors import to_rgba
 
     cycle = colormaps["tab10"]
-    return [_CLEAR_COLOUR if int(v) == CLEAR_LABEL else cycle(int(v) % 10) for v in labels]
+    return [to_rgba(_CLEAR_COLOUR) if int(v) == CLEAR_LABEL else cycle(int(v) % 10) for v in labels]
 
 
 def regime_silhouette(fit_json: str | Path, out_png: str | Path) -> Figure:

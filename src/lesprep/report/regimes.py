@@ -200,7 +200,8 @@ class Standardization:
 
     def apply(self, frame: pd.DataFrame) -> NDArray[np.float64]:
         """Standardized values ``(n, len(names))`` of the rows of ``frame``."""
-        values = frame[list(self.names)].to_numpy(dtype=np.float64).reshape(len(frame), -1)
+        values = frame[list(self.names)].to_numpy(dtype=np.float64)
+        values = values.reshape(len(frame), len(self.names))
         return (values - self.mean) / self.std
 
     def to_dict(self) -> dict[str, Any]:
@@ -235,7 +236,8 @@ def standardize(train: pd.DataFrame, descriptors: Sequence[str]) -> Standardizat
     >>> s.names, s.dropped, s.apply(t).ravel().tolist()
     (('a',), {'b': 2.0}, [-1.0, 1.0])
     """
-    values = train[list(descriptors)].to_numpy(dtype=np.float64).reshape(len(train), -1)
+    values = train[list(descriptors)].to_numpy(dtype=np.float64)
+    values = values.reshape(len(train), len(descriptors))
     constant = np.max(values, axis=0) == np.min(values, axis=0)
     kept = tuple(n for n, c in zip(descriptors, constant, strict=True) if not c)
     dropped = {n: float(values[0, i]) for i, n in enumerate(descriptors) if constant[i]}

@@ -84,6 +84,14 @@ def label_colours(labels: np.ndarray) -> list[Any]:
     return [to_rgba(_CLEAR_COLOUR) if int(v) == CLEAR_LABEL else cycle(int(v) % 10) for v in labels]
 
 
+def _label_handles(labels: pd.Series) -> list[Line2D]:
+    used = sorted(int(v) for v in labels.unique())
+    return [
+        Line2D([], [], ls="", marker="s", color=c, label="clear" if v == CLEAR_LABEL else f"{v}")
+        for v, c in zip(used, label_colours(np.array(used)), strict=True)
+    ]
+
+
 def regime_silhouette(fit_json: str | Path, out_png: str | Path) -> Figure:
     """Mean silhouette (Rousseeuw 1987) per k, the chosen k marked.
 
@@ -186,11 +194,7 @@ def regime_descriptors(
                 )
         ax.set_xlabel(xn)
         ax.set_ylabel(yn)
-    used = sorted(int(v) for v in table["label"].unique())
-    handles = [
-        Line2D([], [], ls="", marker="s", color=c, label="clear" if v == CLEAR_LABEL else f"{v}")
-        for v, c in zip(used, label_colours(np.array(used)), strict=True)
-    ]
+    handles = _label_handles(table["label"])
     handles += [
         Line2D([], [], ls="", marker="o", color="0.3", label="train"),
         Line2D([], [], ls="", marker="x", color="0.3", label="other splits"),
@@ -231,17 +235,7 @@ def regime_timeline(regimes_tsv: str | Path, out_png: str | Path) -> Figure:
     ax.scatter(
         table["time_s"] / 3600.0, y, c=label_colours(table["label"].to_numpy()), marker="s", s=60
     )
-    for label in sorted(int(v) for v in table["label"].unique()):
-        sub = table[table["label"] == label]
-        first = sub.iloc[0]
-        ax.annotate(
-            "clear" if label == CLEAR_LABEL else str(label),
-            (first["time_s"] / 3600.0, rows[first["case"]]),
-            fontsize=7,
-            xytext=(0, 6),
-            textcoords="offset points",
-            ha="center",
-        )
+    fig.legend(handles=_label_handles(table["label"]), loc="outside right upper", title="label")
     ax.set_yticks(list(rows.values()))
     ax.set_yticklabels([f"{c} ({s})" for c, s in zip(cases["case"], cases["split"], strict=True)])
     ax.invert_yaxis()

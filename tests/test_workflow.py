@@ -87,6 +87,7 @@ def test_regimes_cover_every_scene_and_a_train_case_reruns_no_other_split(projec
     jobs = project.planned_jobs()
     assert jobs.get("ingest") == 1 and jobs.get("assemble_train") == 3
     assert "assemble_heldout" not in jobs
+    assert jobs.get("case_scenes") == 1 and jobs.get("scene_table") == 1
     assert jobs.get("regimes") == 1
     project.rows.pop()
     assert project.planned_jobs() == {}
@@ -105,8 +106,9 @@ def test_threshold_change_reruns_masks_and_downstream(project):
     "edited, expected",
     [
         # a fix in the report code re-runs the report only
-        # (the scene table is rewritten, so the regimes that read it are redone)
-        ("report/scenes.py", {"figures": 1, "tables": 1, "regimes": 1}),
+        # the scene descriptors are their own stage, and the regimes read their table
+        ("report/scenes.py", {"case_scenes": 4, "scene_table": 1, "regimes": 1}),
+        ("report/skill.py", {"figures": 1, "tables": 1}),
         # the regime labelling is its own stage: nothing upstream re-runs
         ("report/regimes.py", {"regimes": 1}),
         # a change in coarsening code re-runs coarsening and what follows, never ingest
@@ -118,7 +120,6 @@ def test_threshold_change_reruns_masks_and_downstream(project):
                 "assemble_heldout": 3,
                 "figures": 1,
                 "tables": 1,
-                "regimes": 1,
             },
         ),
     ],

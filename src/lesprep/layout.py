@@ -6,6 +6,7 @@ written down once::
 
     <root>/cases/<case>/canonical.zarr           fine fields of one case
     <root>/cases/<case>/scale-<label>.zarr       one case at one scale
+    <root>/cases/<case>/scenes.tsv               scene descriptors of one case
     <root>/splits.tsv                            which case went to which split
     <root>/sets/<split>/scale-<label>.zarr       training store of a split and scale
     <root>/sets/normalization-<label>.json       train-only statistics of a scale
@@ -87,6 +88,10 @@ class ResultsLayout:
     def scale_store(self, case: str, label: str) -> Path:
         """Store of one case at one scale."""
         return self.case_dir(case) / scale_store_name(label)
+
+    def case_scenes(self, case: str) -> Path:
+        """Scene descriptors of one case (gathered into :meth:`scenes_tsv`)."""
+        return self.case_dir(case) / "scenes.tsv"
 
     def splits_tsv(self) -> Path:
         """The split assignment table."""

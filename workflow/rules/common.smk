@@ -98,6 +98,16 @@ def canonical_stores():
     return [canonical_store(c) for c in CASES]
 
 
+def case_scenes(case):
+    """Scene table of one case."""
+    return str(LAYOUT.case_scenes(case))
+
+
+def case_scenes_params(wildcards):
+    """Params of a case's scene table: the case id and the scene code version."""
+    return {"case": wildcards.case, "code": CODE["scenes"]}
+
+
 def scale_store(case, label):
     """Path of one case's store at one scale."""
     return str(LAYOUT.scale_store(case, label))

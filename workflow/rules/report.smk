@@ -42,15 +42,46 @@ rule figures:
         "../scripts/figures.py"
 
 
-rule tables:
+rule case_scenes:
+    # One case's scenes from its canonical store only: a new case describes only itself.
     input:
-        canonical=canonical_stores(),
-        sets=set_stores_only(),
-        splits=str(LAYOUT.splits_tsv()),
+        canonical=canonical_store("{case}"),
+    output:
+        case_scenes("{case}"),
+    params:
+        settings=case_scenes_params,
+    log:
+        "logs/report/scenes-{case}.log",
+    resources:
+        mem_mb=mem_mb("scenes"),
+        runtime=runtime("scenes"),
+    script:
+        "../scripts/case_scenes.py"
+
+
+rule scene_table:
+    input:
+        cases=[case_scenes(c) for c in case_ids()],
     output:
         scenes=report(
             str(LAYOUT.scenes_tsv()), caption="../report/scene_table.rst", category="Tables"
         ),
+    params:
+        settings={"cases": case_ids(), "code": CODE["scenes"]},
+    log:
+        "logs/report/scene_table.log",
+    resources:
+        mem_mb=500,
+        runtime=5,
+    script:
+        "../scripts/scene_table.py"
+
+
+rule tables:
+    input:
+        sets=set_stores_only(),
+        splits=str(LAYOUT.splits_tsv()),
+    output:
         baseline=report(
             str(LAYOUT.baseline_tsv()), caption="../report/baseline_table.rst", category="Tables"
         ),
@@ -61,7 +92,6 @@ rule tables:
         ),
     params:
         settings={
-            "cases": case_ids(),
             "sets": {
                 f"{s}/{lab}": set_store(s, lab) for s in ACTIVE_SPLITS for lab in SCALE_LABELS
             },

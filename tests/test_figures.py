@@ -25,7 +25,7 @@ from matplotlib.patches import Rectangle, StepPatch
 
 from lesprep.canonical.ingest import ingest_case
 from lesprep.errors import InputError
-from lesprep.report import figures, skill, tables
+from lesprep.report import figures, scene_tables, skill, tables
 from lesprep.scales.coarsen import coarsen_case
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import build_set
@@ -344,7 +344,7 @@ def test_rh_critical_default_when_unrecorded():
 
 def test_scenes_for_case_against_numpy_and_scipy(tree):
     canon = tree["canon"]["cu-marro-01"]
-    frame = tables.scenes_for_case(canon)
+    frame = scene_tables.scenes_for_case(canon)
     ds = open_store(canon)
     assert list(frame["time"]) == list(ds["time"].values)
     lwp = ds["lwp"].values.astype(np.float64)
@@ -354,10 +354,13 @@ def test_scenes_for_case_against_numpy_and_scipy(tree):
     skew = scipy.stats.skew(lwp.reshape(lwp.shape[0], -1), axis=1, bias=True)
     np.testing.assert_allclose(frame["lwp_skew"], skew, rtol=1e-9)
     np.testing.assert_allclose(frame["cloud_cover"], cloudy.mean(axis=(1, 2)), rtol=1e-12)
+    # the domain size is the shorter side: points times the spacing recorded in the store
+    side = min(ds.sizes["y"], ds.sizes["x"]) * float(ds.attrs["dx"])
+    assert frame["domain_m"].tolist() == [side] * ds.sizes["time"]
 
 
 def test_scene_table_rst(tree, tmp_path):
-    tsv = tables.write_scenes_tsv(tree["canon"], tmp_path / "scenes.tsv")
+    tsv = scene_tables.write_scenes_tsv(tree["canon"], tmp_path / "scenes.tsv")
     table = pd.read_csv(tsv, sep="\t")
     assert list(table.columns[:2]) == ["case", "time_s"]
     assert list(dict.fromkeys(table["case"])) == list(FLAVOUR)
@@ -401,3 +404,20 @@ def test_report_captions_are_valid_rst(name):
     assert not list(doctree.findall(system_message)), name
     if name != "workflow":
         assert "synthetic" in text  # every figure caption carries the demo-data caveat
+
+
+def test_per_case_scene_tables_gather_to_the_whole_table(tree, tmp_path):
+    whole = pd.read_csv(
+        scene_tables.write_scenes_tsv(tree["canon"], tmp_path / "all.tsv"), sep="\t"
+    )
+    parts = [
+        scene_tables.write_case_scenes_tsv(path, case, tmp_path / case / "scenes.tsv")
+        for case, path in tree["canon"].items()
+    ]
+    gathered = scene_tables.gather_scenes_tsv(parts, tmp_path / "gathered.tsv")
+    pd.testing.assert_frame_equal(pd.read_csv(gathered, sep="\t"), whole)  # pandas' own check
+    assert list(whole.columns) == list(scene_tables.SCENE_COLUMNS)
+    bad = tmp_path / "bad.tsv"
+    pd.read_csv(parts[0], sep="\t").drop(columns="domain_m").to_csv(bad, sep="\t", index=False)
+    with pytest.raises(InputError, match=r"bad\.tsv.*domain_m"):
+        scene_tables.gather_scenes_tsv([bad], tmp_path / "x.tsv")

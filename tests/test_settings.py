@@ -16,6 +16,7 @@ import lesprep.units
 from conftest import REPO
 from lesprep.canonical.settings import IngestSettings
 from lesprep.jobs.settings import WorkflowSettings
+from lesprep.report.settings import RegimeSettings
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.sets.settings import SetSettings
 
@@ -86,6 +87,7 @@ def test_settings_round_trip_through_job_params():
         c = ws.coarsen.for_group(group)
         assert CoarsenSettings.from_dict(c.to_dict()) == c
     assert SetSettings.from_dict(ws.sets.to_dict()) == ws.sets
+    assert RegimeSettings.from_dict(ws.regimes.to_dict()) == ws.regimes
     # the records are plain data (Snakemake params, JSON provenance)
     yaml.safe_dump([ing.to_dict(), ws.sets.to_dict(), ws.coarsen.for_group("all").to_dict()])
 

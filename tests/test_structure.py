@@ -103,7 +103,10 @@ def _versions(root):
     "edited, changes",
     [
         ("scales/patches.py", {"coarsen"}),
-        ("report/scenes.py", {"report"}),
+        ("report/scenes.py", {"scenes"}),
+        ("report/stores.py", {"report", "scenes"}),
+        ("report/regimes.py", {"regimes"}),
+        ("report/figures.py", {"report"}),
         ("canonical/derived.py", {"ingest", "coarsen"}),  # coarsening derives rh of means
         # the report imports schemes (Sundqvist baseline), whose Gaussian scheme uses thermo
         ("thermo.py", {"ingest", "coarsen", "demo", "report"}),

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 
 import netCDF4
 import numpy as np
+import pandas as pd
 import pytest
 import xarray as xr
 
@@ -68,6 +70,33 @@ def test_new_case_reruns_only_that_case(project):
     assert project.planned_jobs() == {}
 
 
+def test_regimes_cover_every_scene_and_a_train_case_reruns_no_other_split(project):
+    r = project.root / "results"
+    scenes = pd.read_csv(r / "scenes.tsv", sep="\t")
+    labels = pd.read_csv(r / "regimes.tsv", sep="\t")
+    assert list(labels.columns) == ["case", "time_s", "split", "label", "clear"]
+    key = ["case", "time_s"]
+    assert sorted(map(tuple, labels[key].to_numpy())) == sorted(map(tuple, scenes[key].to_numpy()))
+    assign = {a.case: a.split for a in read_assignment_tsv(r / "splits.tsv")}
+    assert labels["case"].map(assign).tolist() == labels["split"].tolist()
+    fit = json.loads((r / "regimes.json").read_text())
+    assert set(labels["label"]) <= {-1, *range(fit["k"])}
+    for kind in ("silhouette", "descriptors", "timeline"):
+        assert (r / "figures" / "regimes" / f"{kind}.png").stat().st_size > 0
+    # the labels are in no set store
+    ds = open_set(r / "sets" / "train" / "scale-600m.zarr")
+    assert not any("regime_label" in v or v == "label" for v in ds.variables)
+    # a new train case: its own stages, the train sets and the labelling, never test sets
+    project.add_demo_case("sc-pelle-01", split="train")
+    jobs = project.planned_jobs()
+    assert jobs.get("ingest") == 1 and jobs.get("assemble_train") == 3
+    assert "assemble_heldout" not in jobs
+    assert jobs.get("case_scenes") == 1 and jobs.get("scene_table") == 1
+    assert jobs.get("regimes") == 1
+    project.rows.pop()
+    assert project.planned_jobs() == {}
+
+
 def test_threshold_change_reruns_masks_and_downstream(project):
     project.config["ingest"]["cloud_threshold"] = "2e-5 kg/kg"
     jobs = project.planned_jobs()
@@ -81,7 +110,11 @@ def test_threshold_change_reruns_masks_and_downstream(project):
     "edited, expected",
     [
         # a fix in the report code re-runs the report only
-        ("report/scenes.py", {"figures": 1, "tables": 1}),
+        # the scene descriptors are their own stage, and the regimes read their table
+        ("report/scenes.py", {"case_scenes": 4, "scene_table": 1, "regimes": 1}),
+        ("report/skill.py", {"figures": 1, "tables": 1}),
+        # the regime labelling is its own stage: nothing upstream re-runs
+        ("report/regimes.py", {"regimes": 1}),
         # a change in coarsening code re-runs coarsening and what follows, never ingest
         (
             "scales/patches.py",
@@ -158,7 +191,15 @@ def test_report_html(project):
     project.snakemake("--report", str(out))
     html = out.read_text(errors="replace")
     assert len(html) > 50_000
-    for part in ("timeseries.png", "cf_vs_rh.png", "scenes.tsv", "baseline.tsv", "Cases"):
+    for part in (
+        "timeseries.png",
+        "cf_vs_rh.png",
+        "scenes.tsv",
+        "baseline.tsv",
+        "Cases",
+        "regimes.tsv",
+        "silhouette.png",
+    ):
         assert part in html
     base = (project.root / "results/baseline.tsv").read_text().splitlines()
     head = ["split", "scale", "baseline", "target", "rmse", "bias", "mae", "n"]

@@ -6,13 +6,16 @@ written down once::
 
     <root>/cases/<case>/canonical.zarr           fine fields of one case
     <root>/cases/<case>/scale-<label>.zarr       one case at one scale
+    <root>/cases/<case>/scenes.tsv               scene descriptors of one case
     <root>/splits.tsv                            which case went to which split
     <root>/sets/<split>/scale-<label>.zarr       training store of a split and scale
     <root>/sets/normalization-<label>.json       train-only statistics of a scale
     <root>/scenes.tsv, baseline.tsv              report tables
+    <root>/regimes.tsv, regimes.json             scene regime labels and their fit
     <root>/report/splits.tsv                     the split table as the report shows it
     <root>/figures/cases/<case>/<kind>.png       per-case figures
     <root>/figures/scales/<label>/<kind>.png     per-scale figures
+    <root>/figures/regimes/<kind>.png            regime figures
 
 Examples
 --------
@@ -37,6 +40,9 @@ CASE_FIGURES = ("timeseries", "profiles", "lwp_map")
 
 SCALE_FIGURES = ("target_distribution", "cf_vs_rh")
 """Figures drawn for every scale (train and test splits)."""
+
+REGIME_FIGURES = ("silhouette", "descriptors", "timeline")
+"""Figures of the scene regimes (one each)."""
 
 _SCALE_PREFIX, _STORE_SUFFIX = "scale-", ".zarr"
 
@@ -83,6 +89,10 @@ class ResultsLayout:
         """Store of one case at one scale."""
         return self.case_dir(case) / scale_store_name(label)
 
+    def case_scenes(self, case: str) -> Path:
+        """Scene descriptors of one case (gathered into :meth:`scenes_tsv`)."""
+        return self.case_dir(case) / "scenes.tsv"
+
     def splits_tsv(self) -> Path:
         """The split assignment table."""
         return self.root / "splits.tsv"
@@ -106,6 +116,18 @@ class ResultsLayout:
     def baseline_tsv(self) -> Path:
         """Baseline skill per split and scale."""
         return self.root / "baseline.tsv"
+
+    def regimes_tsv(self) -> Path:
+        """Scene regime label per case and time (descriptive; not in the set stores)."""
+        return self.root / "regimes.tsv"
+
+    def regimes_json(self) -> Path:
+        """The regime fit: descriptors used and dropped, silhouette by k, centroids."""
+        return self.root / "regimes.json"
+
+    def regime_figure(self, kind: str) -> Path:
+        """One regime figure (``kind`` from :data:`REGIME_FIGURES`)."""
+        return self.root / "figures" / "regimes" / f"{kind}.png"
 
     def report_splits_tsv(self) -> Path:
         """The split table as the report shows it."""

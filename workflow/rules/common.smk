@@ -6,7 +6,7 @@ from pathlib import Path
 from lesprep.jobs.resources import job_resources, job_threads
 from lesprep.jobs.settings import WorkflowSettings
 from lesprep.jobs.steps import stage_code_versions
-from lesprep.layout import CASE_FIGURES, SCALE_FIGURES, SPLITS
+from lesprep.layout import CASE_FIGURES, REGIME_FIGURES, SCALE_FIGURES, SPLITS
 from lesprep.sets.splits import CaseInfo, assign_splits
 
 SETTINGS = WorkflowSettings.from_config(config)
@@ -106,6 +106,16 @@ def canonical_stores():
     return [canonical_store(c) for c in CASES]
 
 
+def case_scenes(case):
+    """Scene table of one case."""
+    return str(LAYOUT.case_scenes(case))
+
+
+def case_scenes_params(wildcards):
+    """Params of a case's scene table: the case id and the scene code version."""
+    return {"case": wildcards.case, "code": CODE["scenes"]}
+
+
 def scale_store(case, label):
     """Path of one case's store at one scale."""
     return str(LAYOUT.scale_store(case, label))
@@ -198,6 +208,17 @@ def case_figures():
     return [str(LAYOUT.case_figure(c, k)) for c in CASES for k in CASE_FIGURES]
 
 
+def regime_outputs():
+    """The regime labels, their fit and figures (when there is a train split to fit on)."""
+    if "train" not in ACTIVE_SPLITS:
+        return []
+    return [
+        str(LAYOUT.regimes_tsv()),
+        str(LAYOUT.regimes_json()),
+        *(str(LAYOUT.regime_figure(kind)) for kind in REGIME_FIGURES),
+    ]
+
+
 def report_outputs():
     """Figures and tables of the report."""
     return [
@@ -205,6 +226,7 @@ def report_outputs():
         str(LAYOUT.baseline_tsv()),
         str(LAYOUT.report_splits_tsv()),
         *case_figures(),
+        *regime_outputs(),
     ]
 
 

@@ -20,6 +20,7 @@ from lesprep.config import CaseRow, prepare_config, read_case_sheet, read_config
 from lesprep.errors import ConfigError
 from lesprep.jobs.resources import ResourceSettings
 from lesprep.layout import ResultsLayout
+from lesprep.report.settings import RegimeSettings
 from lesprep.scales.settings import CoarsenPlan
 from lesprep.sets.settings import SetSettings
 from lesprep.sets.splits import SplitRule
@@ -57,6 +58,8 @@ class WorkflowSettings:
         Fractions and seed of the whole-case split.
     sets
         Training-store settings.
+    regimes
+        Scene-regime labelling (report).
     store
         Compressor settings of every store.
     resources
@@ -71,6 +74,7 @@ class WorkflowSettings:
     coarsen: CoarsenPlan
     split_rule: SplitRule
     sets: SetSettings
+    regimes: RegimeSettings
     store: StoreSettings
     resources: ResourceSettings
 
@@ -105,6 +109,7 @@ class WorkflowSettings:
             coarsen=CoarsenPlan.from_config(c["coarsen"], dtype=dtype, store=store),
             split_rule=split_rule,
             sets=SetSettings.from_config(c["sets"], dtype=dtype, store=store),
+            regimes=RegimeSettings.from_config(c["regimes"]),
             store=store,
             resources=ResourceSettings.from_config(c["resources"]),
         )

@@ -29,6 +29,8 @@ STAGE_MODULES: dict[str, tuple[str, ...]] = {
     "splits": ("lesprep.sets.splits",),
     "assemble": ("lesprep.sets.assemble",),
     "report": ("lesprep.report.figures", "lesprep.report.tables"),
+    "scenes": ("lesprep.report.scene_tables",),
+    "regimes": ("lesprep.report.regime_figures",),
 }
 """Entry modules of each stage; a stage's code version covers them and what they import
 (:mod:`lesprep.codeversion`)."""
@@ -116,14 +118,39 @@ def _tables(smk: Any) -> None:
     from lesprep.report.tables import write_report_tables
 
     p = smk.params.settings
-    canonical = dict(zip(p["cases"], smk.input.canonical, strict=True))
     write_report_tables(
-        canonical,
         p["sets"],
         splits=smk.input.splits,
-        scenes_out=smk.output.scenes,
         baseline_out=smk.output.baseline,
         splits_out=smk.output.splits,
+    )
+
+
+def _case_scenes(smk: Any) -> None:
+    from lesprep.report.scene_tables import write_case_scenes_tsv
+
+    write_case_scenes_tsv(smk.input.canonical, smk.params.settings["case"], smk.output[0])
+
+
+def _scene_table(smk: Any) -> None:
+    from lesprep.report.scene_tables import gather_scenes_tsv
+
+    gather_scenes_tsv(list(smk.input.cases), smk.output.scenes)
+
+
+def _regimes(smk: Any) -> None:
+    from lesprep.layout import REGIME_FIGURES
+    from lesprep.report.regime_figures import write_regime_outputs
+    from lesprep.report.settings import RegimeSettings
+
+    p = smk.params.settings
+    write_regime_outputs(
+        smk.input.scenes,
+        smk.input.splits,
+        RegimeSettings.from_dict(p["regimes"]),
+        table_out=smk.output.table,
+        fit_out=smk.output.fit,
+        figures={kind: getattr(smk.output, kind) for kind in REGIME_FIGURES},
     )
 
 
@@ -135,6 +162,9 @@ STEPS: dict[str, Callable[[Any], None]] = {
     "assemble": _assemble,
     "figures": _figures,
     "tables": _tables,
+    "case_scenes": _case_scenes,
+    "scene_table": _scene_table,
+    "regimes": _regimes,
 }
 
 

@@ -1,86 +1,22 @@
-"""Report tables: scene descriptors per case and time, and the baseline skill table.
+"""Report tables: the baseline skill table and the scene table as reStructuredText.
 
-Both are written atomically as tab-separated text (:func:`write_scenes_tsv`,
-:func:`write_baseline_table`); :func:`write_report_tables` writes every table of the
-report from the per-case canonical stores and the training stores.
+The baseline table is written atomically as tab-separated text
+(:func:`write_baseline_table`); :func:`write_report_tables` writes it and a copy of the
+split table. The scene table itself is written per case by
+:mod:`lesprep.report.scene_tables`.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import math
-import os
 from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from lesprep.report.scenes import SceneDescriptors, describe_case
 from lesprep.report.skill import BASELINES, baseline_skill
-from lesprep.report.stores import opened_store
 from lesprep.sets.splits import read_assignment_tsv
-
-
-def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
-    """Scene descriptors of every kept output time of one case.
-
-    Parameters
-    ----------
-    canonical_path
-        A case's canonical store; ``lwp`` and the column-cloudy field (any
-        ``cloud_mask`` over z) are passed to :func:`lesprep.report.scenes.describe_case` with
-        the store's ``dx`` (read one time at a time).
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns ``time`` (s since the time origin) and the fields of
-        :class:`lesprep.report.scenes.SceneDescriptors`, one row per kept time.
-
-    Examples
-    --------
-    >>> scenes_for_case("results/cases/c/canonical.zarr").columns[0]  # doctest: +SKIP
-    'time'
-    """
-    with opened_store(canonical_path, ("lwp", "cloud_mask"), chunks={}) as ds:
-        column_cloudy = (ds["cloud_mask"] > 0).any("z")
-        return describe_case(ds["lwp"], column_cloudy, float(ds.attrs["dx"]))
-
-
-def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | Path) -> Path:
-    """Scene descriptors of several cases as one tab-separated table.
-
-    Parameters
-    ----------
-    canonical_paths
-        Case id -> canonical store.
-    out_tsv
-        Table to write (UTF-8, a header line, one row per case and kept time, cases in
-        the order given): ``case``, ``time_s`` and the descriptor fields.
-
-    Returns
-    -------
-    pathlib.Path
-        ``out_tsv``.
-
-    Examples
-    --------
-    >>> write_scenes_tsv({"c": "results/cases/c/canonical.zarr"}, "scenes.tsv")  # doctest: +SKIP
-    """
-    frames = []
-    for case, path in canonical_paths.items():
-        frame = scenes_for_case(path).rename(columns={"time": "time_s"})
-        frame.insert(0, "case", case)
-        frames.append(frame)
-    columns = ["case", "time_s", *(f.name for f in dataclasses.fields(SceneDescriptors))]
-    table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=columns)
-    out = Path(out_tsv)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    table.to_csv(tmp, sep="\t", index=False, float_format="%.9g", lineterminator="\n")
-    os.replace(tmp, out)
-    return out
 
 
 def _cell(value: float, fmt: str) -> str:
@@ -95,7 +31,7 @@ def scene_table_rst(
     Parameters
     ----------
     scenes_tsv
-        Table written by :func:`write_scenes_tsv`.
+        Table written by :func:`lesprep.report.scene_tables.gather_scenes_tsv`.
     splits_tsv
         The split assignment (``results/splits.tsv``).
     out_rst
@@ -196,29 +132,24 @@ def write_baseline_table(sets: Mapping[str, str | Path], out_tsv: str | Path) ->
 
 
 def write_report_tables(
-    canonical: Mapping[str, str | Path],
     sets: Mapping[str, str | Path],
     *,
     splits: str | Path,
-    scenes_out: str | Path,
     baseline_out: str | Path,
     splits_out: str | Path,
 ) -> None:
-    """Write the report's tables: scenes, baseline skill and a copy of the split table.
+    """Write the report's tables: baseline skill and a copy of the split table.
 
     Parameters
     ----------
-    canonical
-        Case id -> canonical store.
     sets
         ``"<split>/<label>"`` -> training store.
     splits
         The split assignment table to copy.
-    scenes_out, baseline_out, splits_out
+    baseline_out, splits_out
         Output files.
     """
     import shutil
 
-    write_scenes_tsv(canonical, scenes_out)
     write_baseline_table(sets, baseline_out)
     shutil.copyfile(splits, splits_out)

@@ -410,3 +410,27 @@ def test_other_invalid_inputs():
     bm = block_moments(np.arange(16.0).reshape(4, 4), np.int64(4))
     assert bm.count == 16 and bm.mean.shape == (1, 1)
     assert float(bm.mean[0, 0]) == pytest.approx(7.5)  # numpy: arange(16).mean()
+
+
+def test_quantized_count_engines_agree_with_numpy_spacing() -> None:
+    # the reference is numpy.spacing of the float32 mean; edge cases: zero and NaN means,
+    # subnormal and tiny means (float32 spacing 2**-149), powers of two, negative means
+    from lesprep.scales.moments import quantized_count
+
+    rng = np.random.default_rng(11)
+    mean = np.concatenate(
+        [
+            rng.uniform(250.0, 300.0, 400),
+            -rng.uniform(1e-9, 1e-3, 200),
+            np.array([0.0, np.nan, 1e-45, 3e-39, 1.0, 2.0, 0.5, 2.0**-126, 1e-40]),
+        ]
+    )
+    step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)
+    var = (rng.uniform(0.0, 8.0, mean.size) * np.nan_to_num(step)) ** 2
+    expected = int(np.count_nonzero((mean != 0) & (var < (4 * step) ** 2)))
+    assert 0 < expected < mean.size
+    for engine in ("numpy", "numba"):
+        assert quantized_count(mean, var, 4, engine=engine) == expected, engine
+        assert quantized_count(mean.astype(np.float32), var, 4, engine=engine) == int(
+            np.count_nonzero((mean.astype(np.float32) != 0) & (var < (4 * step) ** 2))
+        ), engine

@@ -72,6 +72,14 @@ def _exact(fine: Mapping[str, np.ndarray], name: str) -> np.ndarray:
     return _f64(fine[name])
 
 
+def _stored(fine: Mapping[str, np.ndarray], name: str) -> np.ndarray:
+    """A field as stored (float32 or float64), or its exact float64 form when it is kept
+    as reference and deviation."""
+    if f"{name}_dev" in fine and f"{name}_ref" in fine:
+        return _exact(fine, name)
+    return np.asarray(fine[name])
+
+
 def conserved_fields(
     fine: Mapping[str, np.ndarray],
     names: Sequence[str],
@@ -105,12 +113,16 @@ def conserved_fields(
     wanted = [n for n in names if n in PER_SLAB]
     if not wanted:
         return {}
+    shape = np.shape(fine["T_dev"] if "T_dev" in fine else fine["T"])
+    pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], shape)
+    if resolve_engine(engine) == "numba" and len(shape) == 3:
+        # the kernel reads float32 fields as they are (each value converts exactly)
+        t, qv, qc = (_stored(fine, n) for n in ("T", "qv", "qc"))
+        qi = _stored(fine, "qi") if "qi" in fine else None
+        return _compiled(fine, wanted, t, pp, qv, qc, qi)
     t = _exact(fine, "T")
-    pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], t.shape)
     qv, qc = _exact(fine, "qv"), _exact(fine, "qc")
     qi = _exact(fine, "qi") if "qi" in fine else None
-    if resolve_engine(engine) == "numba" and t.ndim == 3:
-        return _compiled(fine, wanted, t, pp, qv, qc, qi)
     out: dict[str, np.ndarray] = {}
     for n in wanted:
         if n == "qt":
@@ -144,10 +156,14 @@ def _compiled(
     rain = np.ascontiguousarray(_exact(fine, "qr")) if "qr" in fine else zero
     outs = {n: np.empty(t.shape) for n in wanted}
     dummy = np.empty((1, 1, 1))
-    p3 = pp if pp.strides[-1] != 0 else np.ascontiguousarray(pp)
+    # the Exner function once per level when the pressure is a profile (a broadcast view)
+    per_level = pp.strides[-1] == 0 and pp.strides[-2] == 0
+    p_compact = pp[:, :1, :1] if per_level else pp
+    exner = np.ascontiguousarray((p_compact / thermo.P0) ** thermo.KAPPA)
     _nb_conserved(
         np.ascontiguousarray(t),
-        np.ascontiguousarray(p3),
+        exner,
+        per_level,
         np.ascontiguousarray(qv),
         np.ascontiguousarray(qc),
         ice,
@@ -169,12 +185,13 @@ def _compiled(
 if HAVE_NUMBA:
     _LV_CP = thermo.LV / thermo.CP
     _LS_CP = thermo.LS / thermo.CP
-    _P0, _KAPPA, _EPS = thermo.P0, thermo.KAPPA, thermo.EPS
+    _EPS = thermo.EPS
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_conserved(
         t,
-        p,
+        exner,
+        per_level,
         qv,
         qc,
         qi,
@@ -195,11 +212,11 @@ if HAVE_NUMBA:
             k = kj // ny
             j = kj - k * ny
             for i in range(nx):
-                tk = t[k, j, i]
-                pi = (p[k, j, i] / _P0) ** _KAPPA
-                rv = qv[k, j, i]
-                rc = qc[k, j, i]
-                ri = qi[k, j, i] if has_ice else 0.0
+                tk = np.float64(t[k, j, i])
+                pi = exner[k, 0, 0] if per_level else exner[k, j, i]
+                rv = np.float64(qv[k, j, i])
+                rc = np.float64(qc[k, j, i])
+                ri = np.float64(qi[k, j, i]) if has_ice else 0.0
                 if w_qt:
                     o_qt[k, j, i] = rv + rc + ri
                 if w_thl:
@@ -207,5 +224,5 @@ if HAVE_NUMBA:
                 if w_thil:
                     o_thil[k, j, i] = (tk - (_LV_CP * rc + _LS_CP * ri)) / pi
                 if w_thv:
-                    cond = rc + ri + (qr[k, j, i] if has_rain else 0.0)
+                    cond = rc + ri + (np.float64(qr[k, j, i]) if has_rain else 0.0)
                     o_thv[k, j, i] = tk / pi * (1.0 + rv / _EPS) / (1.0 + rv + cond)

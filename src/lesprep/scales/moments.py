@@ -89,7 +89,7 @@ from lesprep.scales.blocks import (
     divisors,
     factor_value,
 )
-from lesprep.scales.moments_reference import np_mean, np_merge, np_moments
+from lesprep.scales.moments_reference import np_mean, np_merge, np_moments, np_quantized_count
 
 __all__ = [
     "HAVE_NUMBA",
@@ -105,6 +105,7 @@ __all__ = [
     "hierarchical_moments",
     "merge_blocks",
     "plan_hierarchy",
+    "quantized_count",
 ]
 
 _CHUNK_BYTES = 8 * 2**20
@@ -515,3 +516,35 @@ def hierarchical_moments(
         f: BlockMoments(f * f, *(o.reshape((*lead, ny // f, nx // f)) for o in out[f]))
         for f in plan
     }
+
+
+def quantized_count(
+    mean: np.ndarray, var: np.ndarray, steps: float, *, engine: Engine = "auto"
+) -> int:
+    """Number of blocks whose spread is within ``steps`` float32 steps of their mean.
+
+    A block counts when its mean is non-zero and its variance is below
+    ``(steps * spacing)**2``, ``spacing`` being the distance between adjacent float32
+    numbers at ``|mean|`` (``numpy.spacing``): its variance and skewness then describe the
+    rounding of the stored fine values, not the field. Blocks of mean zero (clear air in
+    ``qc``) and NaN means are not counted.
+
+    Parameters
+    ----------
+    mean, var
+        Block means and variances, any shape (same size).
+    steps
+        The bound in float32 steps.
+    engine
+        ``"numba"`` (one pass), ``"numpy"`` (the reference) or ``"auto"``.
+
+    Examples
+    --------
+    >>> quantized_count(np.array([290.0, 290.0, 0.0]), np.array([0.0, 1.0, 0.0]), 4)
+    1
+    """
+    m = np.ascontiguousarray(mean).reshape(-1)
+    v = np.ascontiguousarray(var).reshape(-1)
+    if _resolve_engine(engine) == "numba":
+        return int(compiled.nb_quantized_count(m, v, float(steps)))
+    return np_quantized_count(m, v, steps)

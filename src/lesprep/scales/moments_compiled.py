@@ -6,6 +6,8 @@ compare the two. Without numba this module defines nothing and the numpy engine 
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from lesprep._jit import HAVE_NUMBA, njit, prange
@@ -313,3 +315,23 @@ if HAVE_NUMBA:
             skew[i] = zero if (v <= tiny or denom == 0.0) else g
             if with_mean:
                 mean_out[i] = m
+
+    @njit(cache=True, fastmath=False, error_model="numpy")
+    def nb_quantized_count(mean, var, steps):  # pragma: no cover - compiled
+        """One pass of :func:`~lesprep.scales.moments_reference.np_quantized_count`: the
+        float32 spacing at ``|mean|`` from its binary exponent (``2**-149`` below the
+        smallest normal float32)."""
+        count = 0
+        for i in range(mean.size):
+            m = mean[i]
+            if m == 0.0 or m != m:
+                continue
+            a = np.float64(np.float32(abs(m)))
+            if a < 1.1754943508222875e-38:
+                step = 1.401298464324817e-45
+            else:
+                _, e = math.frexp(a)
+                step = math.ldexp(1.0, e - 24)
+            if np.float64(var[i]) < (steps * step) * (steps * step):
+                count += 1
+        return count

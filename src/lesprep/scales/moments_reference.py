@@ -120,3 +120,11 @@ def np_merge(cmean: np.ndarray, cm2: np.ndarray, cm3: np.ndarray, nc: int, k: in
         a3 = (cm3.reshape(shape5) + 3.0 * d * c2 + nc * d**3).sum(axis=(2, 4))
     # The fine-cell sum of deviations from m0 is nc*s1 = N*delta with delta = s1/kk.
     return np_finish(m0, nc * s1, a2, a3, nc * kk)
+
+
+def np_quantized_count(mean: np.ndarray, var: np.ndarray, steps: float) -> int:
+    """Blocks of a non-zero mean whose variance is below ``(steps * spacing)**2``, the
+    spacing of float32 numbers at the mean (the reference of the compiled count)."""
+    step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)
+    var64 = np.asarray(var, dtype=np.float64)
+    return int(np.count_nonzero((np.asarray(mean) != 0) & (var64 < (steps * step) ** 2)))

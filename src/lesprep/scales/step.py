@@ -23,6 +23,7 @@ from lesprep.scales.moments import (
     hierarchical_fractions,
     hierarchical_moments,
     plan_hierarchy,
+    quantized_count,
 )
 from lesprep.scales.patches import extract_patches, patch_geometry
 from lesprep.scales.settings import CoarsenSettings
@@ -268,11 +269,9 @@ class StepCoarsener:
         that mean (zero included: values that all rounded to one float32 number): their
         variance and skewness describe rounding, not the field. Blocks of mean zero (clear
         air in ``qc``) are not counted."""
-        step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)
-        var64 = np.asarray(var, dtype=np.float64)
-        noisy = (np.asarray(mean) != 0) & (var64 < (QUANTUM_STEPS_BLOCK * step) ** 2)
-        self.quantized[v] = self.quantized.get(v, 0) + int(np.count_nonzero(noisy))
-        self.blocks[v] = self.blocks.get(v, 0) + int(var64.size)
+        noisy = quantized_count(mean, var, QUANTUM_STEPS_BLOCK)
+        self.quantized[v] = self.quantized.get(v, 0) + noisy
+        self.blocks[v] = self.blocks.get(v, 0) + int(np.size(var))
 
     def take_rows(self) -> list[tuple[str, int, dict[str, np.ndarray]]]:
         """Finished z-chunk rows of streamed outputs: ``(scale label, first level,

@@ -316,22 +316,18 @@ if HAVE_NUMBA:
             if with_mean:
                 mean_out[i] = m
 
-    @njit(cache=True, fastmath=False, error_model="numpy")
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_quantized_count(mean, var, steps):  # pragma: no cover - compiled
         """One pass of :func:`~lesprep.scales.moments_reference.np_quantized_count`: the
         float32 spacing at ``|mean|`` from its binary exponent (``2**-149`` below the
         smallest normal float32)."""
         count = 0
-        for i in range(mean.size):
+        for i in prange(mean.size):
             m = mean[i]
-            if m == 0.0 or m != m:
-                continue
             a = np.float64(np.float32(abs(m)))
-            if a < 1.1754943508222875e-38:
-                step = 1.401298464324817e-45
-            else:
-                _, e = math.frexp(a)
-                step = math.ldexp(1.0, e - 24)
-            if np.float64(var[i]) < (steps * step) * (steps * step):
-                count += 1
+            step = 1.401298464324817e-45
+            if a >= 1.1754943508222875e-38:
+                step = math.ldexp(1.0, math.frexp(a)[1] - 24)
+            hit = m != 0.0 and m == m and np.float64(var[i]) < (steps * step) * (steps * step)
+            count += 1 if hit else 0
         return count

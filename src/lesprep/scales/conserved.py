@@ -114,12 +114,12 @@ def conserved_fields(
     if not wanted:
         return {}
     shape = np.shape(fine["T_dev"] if "T_dev" in fine else fine["T"])
-    pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], shape)
     if resolve_engine(engine) == "numba" and len(shape) == 3:
         # the kernel reads float32 fields as they are (each value converts exactly)
         t, qv, qc = (_stored(fine, n) for n in ("T", "qv", "qc"))
         qi = _stored(fine, "qi") if "qi" in fine else None
-        return _compiled(fine, wanted, t, pp, qv, qc, qi)
+        return _compiled(fine, wanted, t, np.asarray(p), qv, qc, qi)
+    pp = _f64(p) if np.ndim(p) == 3 else np.broadcast_to(_f64(p)[:, None, None], shape)
     t = _exact(fine, "T")
     qv, qc = _exact(fine, "qv"), _exact(fine, "qc")
     qi = _exact(fine, "qi") if "qi" in fine else None
@@ -146,23 +146,26 @@ def _compiled(
     fine: Mapping[str, np.ndarray],
     wanted: Sequence[str],
     t: np.ndarray,
-    pp: np.ndarray,
+    p: np.ndarray,
     qv: np.ndarray,
     qc: np.ndarray,
     qi: np.ndarray | None,
 ) -> dict[str, np.ndarray]:
     zero = np.zeros((1, 1, 1))
     ice = zero if qi is None else np.ascontiguousarray(qi)
-    rain = np.ascontiguousarray(_exact(fine, "qr")) if "qr" in fine else zero
+    rain = np.ascontiguousarray(_stored(fine, "qr")) if "qr" in fine else zero
     outs = {n: np.empty(t.shape) for n in wanted}
     dummy = np.empty((1, 1, 1))
-    # the Exner function once per level when the pressure is a profile (a broadcast view)
-    per_level = pp.strides[-1] == 0 and pp.strides[-2] == 0
-    p_compact = pp[:, :1, :1] if per_level else pp
-    exner = np.ascontiguousarray((p_compact / thermo.P0) ** thermo.KAPPA)
+    # a pressure profile: the Exner function once per level; 3-D pressure: per cell
+    per_level = p.ndim == 1
+    p_or_exner = (
+        ((np.asarray(p, np.float64) / thermo.P0) ** thermo.KAPPA)[:, None, None]
+        if per_level
+        else np.ascontiguousarray(p)
+    )
     _nb_conserved(
         np.ascontiguousarray(t),
-        exner,
+        p_or_exner,
         per_level,
         np.ascontiguousarray(qv),
         np.ascontiguousarray(qc),
@@ -185,12 +188,12 @@ def _compiled(
 if HAVE_NUMBA:
     _LV_CP = thermo.LV / thermo.CP
     _LS_CP = thermo.LS / thermo.CP
-    _EPS = thermo.EPS
+    _P0, _KAPPA, _EPS = thermo.P0, thermo.KAPPA, thermo.EPS
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_conserved(
         t,
-        exner,
+        p_or_exner,
         per_level,
         qv,
         qc,
@@ -213,7 +216,10 @@ if HAVE_NUMBA:
             j = kj - k * ny
             for i in range(nx):
                 tk = np.float64(t[k, j, i])
-                pi = exner[k, 0, 0] if per_level else exner[k, j, i]
+                if per_level:
+                    pi = p_or_exner[k, 0, 0]
+                else:
+                    pi = (np.float64(p_or_exner[k, j, i]) / _P0) ** _KAPPA
                 rv = np.float64(qv[k, j, i])
                 rc = np.float64(qc[k, j, i])
                 ri = np.float64(qi[k, j, i]) if has_ice else 0.0

@@ -36,6 +36,7 @@ from typing import Any
 import numpy as np
 import zarr
 from numpy.typing import NDArray
+from zarr.core.buffer import default_buffer_prototype
 
 from lesprep.errors import ConfigError
 from lesprep.sets import batchplan as plan
@@ -47,6 +48,7 @@ Batch = dict[str, NDArray]
 STATE_FORMAT = 1
 _DIRECTIONAL = re.compile(r"(^|_)[uv](_|$)")
 _BLOCK = 1 << 22  # samples per block of the up-front reads
+_PROTOTYPE = default_buffer_prototype()
 
 
 class BatchReader:
@@ -426,32 +428,43 @@ class BatchReader:
         g0, skip = plan.locate(sizes, pos)
         pieces: list[tuple[Batch, NDArray[np.int64], NDArray[np.int8] | None]] = []
         filled = 0
-        for g in range(g0, len(groups)):
-            rng = (plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g)
-                   if self.shuffle else None)
-            buf = plan.plan_buffer(groups[g], self.kept, unit=self.unit,
-                                   n_samples=self.n_samples, rng=rng, index=g)
-            codes = None
-            if self.augment:
-                codes = plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g, 1
-                                        ).integers(0, 8, size=buf.samples.size).astype(np.int8)
-            data = self._read(buf.units)
-            i, skip = skip, 0
-            while i < buf.samples.size and pos < end:
-                take = min(bs - filled, buf.samples.size - i, end - pos)
-                rows = buf.positions[i : i + take]
-                pieces.append((
-                    {n: a[rows] for n, a in data.items()},
-                    buf.samples[i : i + take],
-                    None if codes is None else codes[i : i + take],
-                ))
-                filled, i, pos = filled + take, i + take, pos + take
-                if filled == bs or pos == end:
-                    yield self._finish(pieces)
-                    pieces, filled = [], 0
-            del data
-            if pos >= end:
-                return
+        ahead = ThreadPoolExecutor(1)  # reads the next buffer while this one is served
+        try:
+            future = ahead.submit(self._read, self._buffer(epoch, g0, groups[g0]).units)
+            for g in range(g0, len(groups)):
+                buf = self._buffer(epoch, g, groups[g])
+                data = future.result()
+                if g + 1 < len(groups) and pos + buf.samples.size - skip < end:
+                    future = ahead.submit(self._read, groups[g + 1])
+                codes = None
+                if self.augment:
+                    codes = plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g, 1
+                                            ).integers(0, 8, size=buf.samples.size
+                                                       ).astype(np.int8)
+                i, skip = skip, 0
+                while i < buf.samples.size and pos < end:
+                    take = min(bs - filled, buf.samples.size - i, end - pos)
+                    rows = buf.positions[i : i + take]
+                    pieces.append((
+                        {n: a[rows] for n, a in data.items()},
+                        buf.samples[i : i + take],
+                        None if codes is None else codes[i : i + take],
+                    ))
+                    filled, i, pos = filled + take, i + take, pos + take
+                    if filled == bs or pos == end:
+                        yield self._finish(pieces)
+                        pieces, filled = [], 0
+                del data
+                if pos >= end:
+                    return
+        finally:
+            ahead.shutdown(wait=True, cancel_futures=True)
+
+    def _buffer(self, epoch: int, g: int, units: NDArray[np.int64]) -> plan.Buffer:
+        rng = (plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g)
+               if self.shuffle else None)
+        return plan.plan_buffer(units, self.kept, unit=self.unit, n_samples=self.n_samples,
+                                rng=rng, index=g)
 
     def _read(self, units: NDArray[np.int64]) -> Batch:
         """Every read array over the units' full ranges, concatenated in unit order."""
@@ -469,8 +482,9 @@ class BatchReader:
             lo, hi = bounds[k]
             if n in self.labels:
                 out[n][offsets[k] : offsets[k + 1]] = label_values(arrays[n], np.arange(lo, hi))
-            else:
-                out[n][offsets[k] : offsets[k + 1]] = arrays[n][lo:hi]
+            else:  # decoded straight into the buffer, no copy
+                dest = _PROTOTYPE.nd_buffer.from_numpy_array(out[n][offsets[k] : offsets[k + 1]])
+                arrays[n].get_basic_selection(slice(lo, hi), out=dest)
 
         tasks = [(n, k) for k in range(len(bounds)) for n in arrays]
         if self.read_threads == 1:
@@ -497,7 +511,7 @@ class BatchReader:
             batch["symmetry"] = codes
         if self.statistics is not None:
             for n in self.normalized:
-                batch[n] = self.statistics.apply(n, batch[n])
+                batch[n] = self.statistics.apply(n, batch[n], out=batch[n])
         batch["sample"] = ids
         if self._scene is not None:
             batch[selection.SCENE_KEY] = self._scene[ids]

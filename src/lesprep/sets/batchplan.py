@@ -271,3 +271,27 @@ def slices(n: int, batch_size: int, *, drop_last: bool, first: int = 0) -> Itera
     """
     for b in range(int(first), batch_count(n, batch_size, drop_last=drop_last)):
         yield slice(b * int(batch_size), min(int(n), (b + 1) * int(batch_size)))
+
+
+def round_robin_starts(counts: Sequence[int], consumed: int) -> list[int]:
+    """Batches each worker has delivered after ``consumed`` batches taken round-robin.
+
+    A framework's multi-worker loader takes one batch from each worker in turn, skipping
+    workers that are done; ``counts`` are the workers' batches in the epoch. The result
+    is the ``start`` of each worker when resuming after ``consumed`` batches.
+
+    Examples
+    --------
+    >>> round_robin_starts([3, 1, 2], 5)
+    [2, 1, 2]
+    """
+    starts = [0] * len(counts)
+    left = int(consumed)
+    if left > sum(int(c) for c in counts):
+        raise ValueError(f"{consumed} batches consumed but the workers have only {sum(counts)}")
+    while left:
+        for w, c in enumerate(counts):
+            if left and starts[w] < int(c):
+                starts[w] += 1
+                left -= 1
+    return starts

@@ -4,7 +4,7 @@ The statistics are those :func:`lesprep.sets.assemble.write_normalization` write
 each feature and patch variable the mean and the population standard deviation over
 every sample (and patch pixel) of the train split, as ``normalization.json`` and as the
 train store's root attribute ``normalization`` (the same JSON text). Applied values are
-``(x - mean) / std`` computed in float64 and returned in the input's floating type;
+``(x - mean) / std``, each step in float64, returned in the input's floating type;
 a variable constant over the train split (``std == 0``) is only centred (divided by 1),
 since dividing by zero helps nobody. :meth:`Statistics.invert` undoes it exactly up to
 rounding.
@@ -62,12 +62,20 @@ class Statistics:
             self._get(self.mean, name)
             self._get(self.std, name)
 
-    def apply(self, name: str, x: NDArray) -> NDArray:
-        """``(x - mean) / std`` of variable ``name``, in ``x``'s floating type."""
+    def apply(self, name: str, x: NDArray, out: NDArray | None = None) -> NDArray:
+        """``(x - mean) / std`` of variable ``name``, in ``x``'s floating type.
+
+        Each of the two steps is computed in float64 and rounded to the result's type
+        (numpy casts in small blocks, so no float64 copy of ``x`` is made); ``out`` may be
+        ``x`` itself.
+        """
         x = np.asarray(x)
-        dt = x.dtype if x.dtype.kind == "f" else np.dtype(np.float64)
-        y = (x.astype(np.float64) - self._get(self.mean, name)) / self.scale(name)
-        return y.astype(dt, copy=False)
+        if out is None:
+            out = np.empty(x.shape, dtype=x.dtype if x.dtype.kind == "f" else np.float64)
+        np.subtract(x, self._get(self.mean, name), out=out, dtype=np.float64,
+                    casting="same_kind")
+        np.divide(out, self.scale(name), out=out, dtype=np.float64, casting="same_kind")
+        return out
 
     def invert(self, name: str, y: NDArray) -> NDArray:
         """``y * std + mean``: the physical values of normalized ``y``."""

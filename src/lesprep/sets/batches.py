@@ -430,7 +430,7 @@ class BatchReader:
         filled = 0
         ahead = ThreadPoolExecutor(1)  # reads the next buffer while this one is served
         try:
-            future = ahead.submit(self._read, self._buffer(epoch, g0, groups[g0]).units)
+            future = ahead.submit(self._read, groups[g0])
             for g in range(g0, len(groups)):
                 buf = self._buffer(epoch, g, groups[g])
                 data = future.result()

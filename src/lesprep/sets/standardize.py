@@ -4,7 +4,7 @@ The statistics are those :func:`lesprep.sets.assemble.write_normalization` write
 each feature and patch variable the mean and the population standard deviation over
 every sample (and patch pixel) of the train split, as ``normalization.json`` and as the
 train store's root attribute ``normalization`` (the same JSON text). Applied values are
-``(x - mean) / std``, each step in float64, returned in the input's floating type;
+``(x - mean) / std`` computed in float64 and rounded once to the input's floating type;
 a variable constant over the train split (``std == 0``) is only centred (divided by 1),
 since dividing by zero helps nobody. :meth:`Statistics.invert` undoes it exactly up to
 rounding.
@@ -65,16 +65,16 @@ class Statistics:
     def apply(self, name: str, x: NDArray, out: NDArray | None = None) -> NDArray:
         """``(x - mean) / std`` of variable ``name``, in ``x``'s floating type.
 
-        Each of the two steps is computed in float64 and rounded to the result's type
-        (numpy casts in small blocks, so no float64 copy of ``x`` is made); ``out`` may be
-        ``x`` itself.
+        Computed in float64 (one float64 copy of ``x``) and rounded once to the result's
+        type; ``out`` may be ``x`` itself.
         """
         x = np.asarray(x)
+        work = x.astype(np.float64)
+        work -= self._get(self.mean, name)
+        work *= 1.0 / self.scale(name)
         if out is None:
-            out = np.empty(x.shape, dtype=x.dtype if x.dtype.kind == "f" else np.float64)
-        np.subtract(x, self._get(self.mean, name), out=out, dtype=np.float64,
-                    casting="same_kind")
-        np.divide(out, self.scale(name), out=out, dtype=np.float64, casting="same_kind")
+            return work.astype(x.dtype if x.dtype.kind == "f" else np.float64, copy=False)
+        out[...] = work
         return out
 
     def invert(self, name: str, y: NDArray) -> NDArray:

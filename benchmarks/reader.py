@@ -39,7 +39,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from helpers import HERE, MIB, status_kib, warm
+from helpers import HERE, MIB, dir_bytes, status_kib, warm
 
 FEATURES = (
     "qt_mean", "qt_var", "qt_skew", "theta_l_mean", "theta_l_var", "w_mean",
@@ -296,6 +296,7 @@ def main() -> int:
             info = write_set(path, m, patch=a.patch, chunk_mib=a.chunk_mib,
                              shard_chunks=a.shard_chunks)
             info["write_s"] = time.perf_counter() - t0
+            info["disk_gb"] = dir_bytes(path) / 1e9
             marker.write_text(json.dumps(info))
             print(f"wrote {path.name}: {info}", flush=True)
         results[f"store_{key}"] = json.loads(marker.read_text())
@@ -329,7 +330,8 @@ def main() -> int:
         two = runs[f"reader b={b0}, 2x set"]["vmhwm_mib"]
         results["ratios"]["memory_growth_2x"] = two / one - 1
     print(f"\nset: {n} samples, {results['payload_gb']:.2f} GB of feature/target/patch "
-          f"arrays, layout {layout}, unit {runs[reader_keys[0]]['unit']} samples, batch {a.batch}")
+          f"arrays ({results['store_1x']['disk_gb']:.2f} GB on disk), layout {layout}, unit "
+          f"{runs[reader_keys[0]]['unit']} samples, batch {a.batch}")
     rows = []
     for k, r in runs.items():
         note = f"{r['timed_batches']} batches timed" if "timed_batches" in r else ""

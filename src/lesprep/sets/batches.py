@@ -429,13 +429,15 @@ class BatchReader:
         pieces: list[tuple[Batch, NDArray[np.int64], NDArray[np.int8] | None]] = []
         filled = 0
         ahead = ThreadPoolExecutor(1)  # reads the next buffer while this one is served
+        # two sets of buffer arrays, used in turn: reused memory is not paged in again
+        spaces: list[Batch] = [{}, {}]
         try:
-            future = ahead.submit(self._read, groups[g0])
+            future = ahead.submit(self._read, groups[g0], spaces[g0 % 2])
             for g in range(g0, len(groups)):
                 buf = self._buffer(epoch, g, groups[g])
                 data = future.result()
                 if g + 1 < len(groups) and pos + buf.samples.size - skip < end:
-                    future = ahead.submit(self._read, groups[g + 1])
+                    future = ahead.submit(self._read, groups[g + 1], spaces[(g + 1) % 2])
                 codes = None
                 if self.augment:
                     codes = plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g, 1
@@ -466,8 +468,12 @@ class BatchReader:
         return plan.plan_buffer(units, self.kept, unit=self.unit, n_samples=self.n_samples,
                                 rng=rng, index=g)
 
-    def _read(self, units: NDArray[np.int64]) -> Batch:
-        """Every read array over the units' full ranges, concatenated in unit order."""
+    def _read(self, units: NDArray[np.int64], space: Batch) -> Batch:
+        """Every read array over the units' full ranges, concatenated in unit order.
+
+        The arrays are views into ``space`` (name -> array of ``buffer_units * unit``
+        rows, made on first use and reused by later buffers).
+        """
         root = self._group()
         bounds = [plan.unit_bounds(self.unit, self.n_samples, int(u)) for u in units]
         rows = sum(hi - lo for lo, hi in bounds)
@@ -475,8 +481,13 @@ class BatchReader:
         arrays = {n: root[n] for n in self.read_names}
         out: Batch = {}
         for n, a in arrays.items():
-            dt = object if n in self.labels else np.dtype(a.dtype)
-            out[n] = np.empty((rows, *a.shape[1:]), dtype=dt)
+            if n in self.labels:
+                out[n] = np.empty(rows, dtype=object)
+                continue
+            if n not in space:
+                space[n] = np.empty((self.buffer_units * self.unit, *a.shape[1:]),
+                                    dtype=np.dtype(a.dtype))
+            out[n] = space[n][:rows]
 
         def read(n: str, k: int) -> None:
             lo, hi = bounds[k]

@@ -74,7 +74,8 @@ class BatchReader:
     shuffle
         Shuffle units per epoch and samples within each buffer; False: store order.
     buffer_units
-        Read units per shuffle buffer (memory and randomness grow with it).
+        Read units per shuffle buffer; randomness grows with it, and so does memory (two
+        buffers: the one served and the one read ahead).
     drop_last
         Drop a last batch shorter than ``batch_size`` (per worker and epoch).
     normalize, statistics, normalize_target

@@ -31,7 +31,7 @@ from nearly ``min(batch_size, units)``; larger buffers mix better and cost memor
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -259,18 +259,6 @@ def locate(sizes: NDArray[np.int64], start: int) -> tuple[int, int]:
     g = int(np.searchsorted(ends, int(start), side="right"))
     before = int(ends[g - 1]) if g > 0 else 0
     return g, int(start) - before
-
-
-def slices(n: int, batch_size: int, *, drop_last: bool, first: int = 0) -> Iterator[slice]:
-    """Stream slices of batches ``first, first + 1, ...`` of a stream of ``n`` samples.
-
-    Examples
-    --------
-    >>> [(s.start, s.stop) for s in slices(10, 4, drop_last=False, first=1)]
-    [(4, 8), (8, 10)]
-    """
-    for b in range(int(first), batch_count(n, batch_size, drop_last=drop_last)):
-        yield slice(b * int(batch_size), min(int(n), (b + 1) * int(batch_size)))
 
 
 def round_robin_starts(counts: Sequence[int], consumed: int) -> list[int]:

@@ -102,6 +102,7 @@ def _assemble(smk: Any) -> None:
         scale=p["scale"],
         attributes=p["attributes"],
         extra_provenance={"split_rule": p["rule"], "assignment": p["assignment"]},
+        threads=int(getattr(smk, "threads", 1) or 1),
     )
     if "stats" in smk.output.keys():  # the train split also yields the normalization
         write_normalization(smk.output.store, smk.output.stats, scale=p["scale"])

@@ -60,11 +60,17 @@ def case_stores(tmp_path_factory, demo_root):
     return stores
 
 
-def build(case_stores, cases, out, **kw):
+def build(case_stores, cases, out, statistics=None, **kw):
     small = {"shuffle": False, "chunk_mib": 0.05, "shard_mib": 0.5}  # several units per store
     settings = set_settings(**{**small, **kw})
     return build_set(
-        {c: case_stores[c] for c in cases}, REGIMES, out, settings, split="train", scale="400m"
+        {c: case_stores[c] for c in cases},
+        REGIMES,
+        out,
+        settings,
+        split="train",
+        scale="400m",
+        statistics=statistics,
     )
 
 
@@ -140,7 +146,8 @@ def test_every_layout_holds_the_stacked_cells(case_stores, tmp_path, layout, shu
     """Unit-aligned writing gives, in every layout, the arrays xarray stacks from the cases,
     in natural or numpy's permuted order; every chunk and shard boundary of every array falls
     on a multiple of the recorded read unit."""
-    path = build(case_stores, list(CASES), tmp_path / "s.zarr", shuffle=shuffle, **layout)
+    stats: dict = {}
+    path = build(case_stores, list(CASES), tmp_path / "s.zarr", stats, shuffle=shuffle, **layout)
     want = natural_reference(case_stores, list(CASES))
     root = zarr.open_group(str(path), mode="r")
     n = root["time"].shape[0]
@@ -162,6 +169,12 @@ def test_every_layout_holds_the_stacked_cells(case_stores, tmp_path, layout, shu
         assert len({a.chunks[0] for _, a in root.arrays()}) == 1
     else:
         assert root["w_mean"].chunks[0] > root["qc_patch"].chunks[0]
+    # statistics collected while writing: those of the written store, and numpy's
+    assert stats == normalization_stats(path)
+    for v in ("qc_mean", "qc_patch"):
+        a = want[v].astype(np.float32).astype(np.float64)
+        assert stats[v]["mean"] == pytest.approx(a.mean(), rel=1e-9)
+        assert stats[v]["std"] == pytest.approx(a.std(), rel=1e-9)
 
 
 def test_filters(case_stores, tmp_path):

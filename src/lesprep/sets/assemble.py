@@ -32,7 +32,7 @@ import logging
 import math
 import re
 import shutil
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -340,6 +340,7 @@ def build_set(
     attributes: Mapping[str, Mapping[str, Any]] | None = None,
     extra_provenance: Mapping[str, Any] | None = None,
     threads: int = 1,
+    statistics: dict[str, dict[str, float]] | None = None,
 ) -> Path:
     """Assemble the training store of one split and scale.
 
@@ -362,6 +363,9 @@ def build_set(
         Extra fields of the provenance step (split rule, assignment, ...).
     threads
         Arrays encoded and written concurrently.
+    statistics
+        If given, filled with the normalization statistics of the written store (what
+        :func:`normalization_stats` computes from it), collected while writing.
 
     Raises
     ------
@@ -484,7 +488,12 @@ def build_set(
                 chunk_key_encoding=CHUNK_KEYS,
                 attributes=attrs,
             )
-        writer = _writer(arrays, names, dtypes, shapes, layout, total, threads=threads)
+        moments = None
+        if statistics is not None:
+            moments = {n: {} for n, dt in dtypes.items() if n not in vocab and is_statistic(n, dt)}
+        writer = _writer(
+            arrays, names, dtypes, shapes, layout, total, threads=threads, moments=moments
+        )
         shuffler = None
         if perm is not None:
             shuffler = _ShuffleWriter(writer, layout.bucket, perm, tmp / ".scratch")
@@ -502,6 +511,10 @@ def build_set(
         if shuffler is not None:
             shuffler.finish()
         writer.close()
+        if moments is not None and statistics is not None:
+            statistics.clear()
+            for n in sorted(moments):
+                statistics[n] = merge_moments(moments[n][lo] for lo in sorted(moments[n]))
         prov_inputs = [dict(s.attrs) for s in stores.values()]
         step = provenance.new_step(
             "assemble",
@@ -556,14 +569,22 @@ def _writer(
     total: int,
     *,
     threads: int,
+    moments: dict[str, dict[int, tuple[int, float, float]]] | None = None,
 ) -> UnitWriter:
-    """A unit writer into the store's arrays that writes labels as strings."""
+    """A unit writer into the store's arrays that writes labels as strings.
+
+    With ``moments``, every written unit of a statistic array adds its
+    :func:`block_moments` under ``moments[name][lo]``.
+    """
 
     def write(name: str, lo: int, hi: int, values: np.ndarray) -> None:
         if name in names:
             arrays[name][lo:hi] = names[name][values]
-        else:
-            arrays[name][lo:hi] = values.astype(dtypes[name], copy=False)
+            return
+        stored = values.astype(dtypes[name], copy=False)
+        arrays[name][lo:hi] = stored
+        if moments is not None and name in moments:
+            moments[name][lo] = block_moments(stored)
 
     units = {n: layout.write_unit(n) for n in arrays}
     return UnitWriter(write, units, shapes, dtypes, total, threads=threads)
@@ -642,45 +663,78 @@ class _ShuffleWriter:
             shutil.rmtree(self.dir, ignore_errors=True)
 
 
+def block_moments(a: np.ndarray) -> tuple[int, float, float]:
+    """(count, mean, sum of squared deviations) of one block, in float64.
+
+    >>> block_moments(np.array([1.0, 2.0, 3.0], dtype=np.float32))
+    (3, 2.0, 2.0)
+    """
+    a = np.asarray(a, dtype=np.float64).reshape(-1)
+    if a.size == 0:
+        return 0, 0.0, 0.0
+    mean = float(a.mean())
+    return int(a.size), mean, float(((a - mean) ** 2).sum())
+
+
+def merge_moments(blocks: Iterable[tuple[int, float, float]]) -> dict[str, float]:
+    """Mean, population standard deviation and count of blocks merged in order.
+
+    The merge is exact in real arithmetic (Chan et al. 1979); in floating point it
+    depends on the order, so blocks are merged in sample order.
+
+    >>> merge_moments([block_moments(np.arange(3.0)), block_moments(np.arange(3.0, 10))])
+    {'mean': 4.5, 'std': 2.8722813232690143, 'count': 10}
+    """
+    n_tot, mean, m2 = 0, 0.0, 0.0
+    for n, ma, m2a in blocks:
+        if n == 0:
+            continue
+        delta = ma - mean
+        tot = n_tot + n
+        mean += delta * n / tot
+        m2 += m2a + delta * delta * n_tot * n / tot
+        n_tot = tot
+    return {"mean": mean, "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"), "count": n_tot}
+
+
+def is_statistic(name: str, dtype: Any) -> bool:
+    """Whether a set array gets normalization statistics (floating, not a coordinate)."""
+    return name not in COORDS and np.dtype(dtype).kind == "f"
+
+
 def normalization_stats(store: str | Path) -> dict[str, dict[str, float]]:
     """Mean and population standard deviation of every feature and patch variable.
 
-    Streams the store chunk by chunk and merges float64 moments exactly (Chan et al.
-    1979). Coordinates (case, regime, case attributes, time, z, y, x) are not features;
-    lagged features are.
+    Streams the store one shard (else chunk) at a time and merges float64 moments in
+    sample order (:func:`merge_moments`), the blocks in which :func:`build_set` computes
+    them while writing. Coordinates (case, regime, case attributes, time, z, y, x) are
+    not features; lagged features are.
     """
     root = zarr.open_group(str(store), mode="r")
     out: dict[str, dict[str, float]] = {}
     for name, arr in root.arrays():
-        if name in COORDS or np.dtype(arr.dtype).kind != "f":
+        if not is_statistic(name, arr.dtype):
             continue
-        n_tot, mean, m2 = 0, 0.0, 0.0
-        step = storage_length(arr) * (1 if getattr(arr, "shards", None) else 4)
-        for lo in range(0, arr.shape[0], step):
-            a = np.asarray(arr[lo : lo + step], dtype=np.float64).reshape(-1)
-            n = a.size
-            if n == 0:
-                continue
-            ma = float(a.mean())
-            m2a = float(((a - ma) ** 2).sum())
-            delta = ma - mean
-            tot = n_tot + n
-            mean += delta * n / tot
-            m2 += m2a + delta * delta * n_tot * n / tot
-            n_tot = tot
-        out[name] = {
-            "mean": mean,
-            "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"),
-            "count": n_tot,
-        }
+        step = storage_length(arr)
+        n = arr.shape[0]
+        out[name] = merge_moments(block_moments(arr[lo : lo + step]) for lo in range(0, n, step))
     return out
 
 
 def write_normalization(
-    train_store: str | Path, out_json: str | Path, *, scale: str
+    train_store: str | Path,
+    out_json: str | Path,
+    *,
+    scale: str,
+    stats: Mapping[str, Mapping[str, float]] | None = None,
 ) -> dict[str, Any]:
-    """Compute train-only normalization statistics, write them as JSON and into attrs."""
-    stats = normalization_stats(train_store)  # {} for an empty store
+    """Write train-only normalization statistics as JSON and into attrs.
+
+    ``stats`` are those :func:`build_set` collected while writing the store; None
+    computes them from the store (:func:`normalization_stats`).
+    """
+    if stats is None:
+        stats = normalization_stats(train_store)  # {} for an empty store
     root = zarr.open_group(str(train_store), mode="r+")
     doc = {
         "scale": scale,

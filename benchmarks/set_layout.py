@@ -17,7 +17,8 @@ they are kept under ``<out>/data/<size>/`` and reused. Then:
     zarr's orthogonal selection ("random", as many batches as fit in ``--random-budget``
     seconds).
 ``assembly``
-    ``build_set`` with the schema's defaults at 200 m and 500 m against its I/O floor:
+    The train job (``build_set`` and its normalization statistics) with the schema's
+    defaults at 200 m and 500 m against its I/O floor:
     read every array the set takes from the per-case stores once (whole arrays, the
     arrays concurrently), plus write lesprep's set store once more into a store of the
     same layout and codecs (values read from lesprep's store untimed, whole read units,
@@ -76,6 +77,11 @@ LAYOUTS: dict[str, dict[str, Any]] = {
         "chunking": "per-array",
         "chunk_mib": 1.0,
         "shard_mib": 16.0,
+    },
+    "(f) shards of 64 MiB, per-array chunks of 0.25 MiB": {
+        "chunking": "per-array",
+        "chunk_mib": 0.25,
+        "shard_mib": 64.0,
     },
 }
 
@@ -156,16 +162,34 @@ def prepare(a: argparse.Namespace) -> dict[str, dict[str, Path]]:
 # ============================================================================ steps
 
 
-def timed_build(inputs: Mapping[str, Path], out: Path, threads: int, **sets: Any) -> float:
-    """Seconds of one ``build_set`` (inputs warm, dirty pages flushed before and after)."""
-    from lesprep.sets.assemble import build_set
+def timed_build(
+    inputs: Mapping[str, Path], out: Path, threads: int, *, train: bool = False, **sets: Any
+) -> float:
+    """Seconds of one assembly job (inputs warm, dirty pages flushed before and after).
+
+    ``train``: the train job, ``build_set`` and the normalization statistics it collects
+    written as JSON and into the store (what the workflow's train job does).
+    """
+    from lesprep.sets.assemble import build_set, write_normalization
 
     settings = settings_of(**sets).sets
     remove(out)
     warm(inputs.values())
     os.sync()
+    stats: dict[str, Any] = {}
     t0 = time.perf_counter()
-    build_set(dict(inputs), {}, out, settings, split="train", scale="bench", threads=threads)
+    build_set(
+        dict(inputs),
+        {},
+        out,
+        settings,
+        split="train",
+        scale="bench",
+        threads=threads,
+        statistics=stats if train else None,
+    )
+    if train:
+        write_normalization(out, out.with_suffix(".json"), scale="bench", stats=stats)
     os.sync()
     return time.perf_counter() - t0
 
@@ -339,7 +363,7 @@ def step_assembly(a: argparse.Namespace, stores: Mapping, results: dict) -> None
     rows = []
     for lab in LABELS:
         out = Path(a.out) / f"set-{lab}.zarr"
-        build_s = timed_build(stores[lab], out, a.threads)
+        build_s = timed_build(stores[lab], out, a.threads, train=True)
         f = floor(stores[lab], out, Path(a.out) / f"floor-{lab}.zarr", a.threads)
         r = {"build_s": build_s, **f, "bytes": dir_bytes(out), "files": file_count(out)}
         r["ratio"] = build_s / f["floor_s"]
@@ -356,7 +380,7 @@ def step_assembly(a: argparse.Namespace, stores: Mapping, results: dict) -> None
         )
         remove(Path(a.out) / f"floor-{lab}.zarr")
         remove(out)
-    heads = ("scale", "MB on disk", "files", "build_set s", "floor s (read + write)", "ratio")
+    heads = ("scale", "MB on disk", "files", "train job s", "floor s (read + write)", "ratio")
     print(table(heads, rows))
 
 

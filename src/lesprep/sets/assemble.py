@@ -31,7 +31,6 @@ import json
 import logging
 import math
 import re
-import shutil
 from collections.abc import Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -45,7 +44,13 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
-from lesprep.sets.chunking import SampleLayout, UnitWriter, plan_layout, storage_length
+from lesprep.sets.chunking import (
+    SampleLayout,
+    ShuffleWriter,
+    UnitWriter,
+    plan_layout,
+    storage_length,
+)
 from lesprep.sets.lags import (
     Lag,
     common_interval,
@@ -496,7 +501,7 @@ def build_set(
         )
         shuffler = None
         if perm is not None:
-            shuffler = _ShuffleWriter(writer, layout.bucket, perm, tmp / ".scratch")
+            shuffler = ShuffleWriter(writer, layout.bucket, perm, tmp / ".scratch")
         for c in case_ids:
             t_idx, z_idx = kept[c]
             group = zarr.open_group(str(inputs[c]), mode="r")
@@ -609,58 +614,6 @@ def _empty_set(out: str | Path, *, split: str, scale: str, skipped: Mapping[str,
         )
         consolidate(tmp)
     return Path(out)
-
-
-class _ShuffleWriter:
-    """Two-pass external shuffle.
-
-    Pass 1 appends every sample, as one packed record with its final position, to the
-    scratch file of the bucket it belongs to (``bucket`` samples, a whole write unit of
-    every array); pass 2 reads each bucket's file, puts the records in place and hands
-    them to the unit writer in order (labels still as codes in the records).
-    """
-
-    def __init__(self, writer: UnitWriter, bucket: int, perm: np.ndarray, scratch: Path) -> None:
-        self.writer = writer
-        self.total = writer.total
-        self.chunk = int(bucket)
-        self.perm = perm
-        self.pos = 0
-        self.nb = math.ceil(self.total / self.chunk)
-        self.dir = scratch
-        self.dir.mkdir(parents=True)
-        fields: list[Any] = [("_pos", np.int64)]
-        for name, buf in writer.buffers.items():
-            fields.append((name, buf.dtype, buf.shape[1:]) if buf.ndim > 1 else (name, buf.dtype))
-        self.record = np.dtype(fields)
-
-    def add(self, data: Mapping[str, np.ndarray]) -> None:
-        n = next(iter(data.values())).shape[0]
-        rec = np.empty(n, dtype=self.record)
-        rec["_pos"] = self.perm[self.pos : self.pos + n]
-        self.pos += n
-        for name in self.writer.buffers:
-            rec[name] = data[name]
-        bucket = rec["_pos"] // self.chunk
-        order = np.argsort(bucket, kind="stable")
-        rec = rec[order]
-        bounds = np.searchsorted(bucket[order], np.arange(self.nb + 1))
-        for b in np.nonzero(np.diff(bounds))[0]:
-            with open(self.dir / f"{b}.bin", "ab") as fh:
-                fh.write(rec[bounds[b] : bounds[b + 1]].tobytes())
-
-    def finish(self) -> None:
-        try:
-            for b in range(self.nb):
-                lo = b * self.chunk
-                hi = min(self.total, lo + self.chunk)
-                rec = np.fromfile(self.dir / f"{b}.bin", dtype=self.record)
-                if rec.size != hi - lo:
-                    raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected {hi - lo}")
-                rec = rec[np.argsort(rec["_pos"])]
-                self.writer.add({name: rec[name] for name in self.writer.buffers})
-        finally:
-            shutil.rmtree(self.dir, ignore_errors=True)
 
 
 def block_moments(a: np.ndarray) -> tuple[int, float, float]:

@@ -23,15 +23,18 @@ metadata (:func:`storage_length`).
 size, and writes each array one whole write unit (shard, else chunk) at a time, each unit
 once: nothing is read back and re-encoded. A unit that lies wholly in one piece is written
 straight from the piece; the rest is gathered in one buffer of one unit per array. Memory
-is one unit plus one piece.
+is one unit plus one piece. :class:`ShuffleWriter` (``sets.shuffle``) puts the samples in
+their permuted order through scratch files first and hands them to the same writer.
 """
 
 from __future__ import annotations
 
 import math
+import shutil
 from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
@@ -236,3 +239,57 @@ class UnitWriter:
             self._pool.shutdown()
         if self.pos != self.total:
             raise RuntimeError(f"{self.pos} samples written, the store holds {self.total}")
+
+
+class ShuffleWriter:
+    """Two-pass external shuffle.
+
+    Pass 1 appends every sample, as one packed record with its final position, to the
+    scratch file of the bucket it belongs to (``bucket`` samples, a whole write unit of
+    every array); pass 2 reads each bucket's file, puts the records in place and hands
+    them to the unit writer in order (labels still as codes in the records).
+    """
+
+    def __init__(self, writer: UnitWriter, bucket: int, perm: np.ndarray, scratch: Path) -> None:
+        self.writer = writer
+        self.total = writer.total
+        self.chunk = int(bucket)
+        self.perm = perm
+        self.pos = 0
+        self.nb = math.ceil(self.total / self.chunk)
+        self.dir = scratch
+        self.dir.mkdir(parents=True)
+        fields: list[Any] = [("_pos", np.int64)]
+        for name, buf in writer.buffers.items():
+            fields.append((name, buf.dtype, buf.shape[1:]) if buf.ndim > 1 else (name, buf.dtype))
+        self.record = np.dtype(fields)
+
+    def add(self, data: Mapping[str, np.ndarray]) -> None:
+        """Take the next samples in natural order (pass 1)."""
+        n = next(iter(data.values())).shape[0]
+        rec = np.empty(n, dtype=self.record)
+        rec["_pos"] = self.perm[self.pos : self.pos + n]
+        self.pos += n
+        for name in self.writer.buffers:
+            rec[name] = data[name]
+        bucket = rec["_pos"] // self.chunk
+        order = np.argsort(bucket, kind="stable")
+        rec = rec[order]
+        bounds = np.searchsorted(bucket[order], np.arange(self.nb + 1))
+        for b in np.nonzero(np.diff(bounds))[0]:
+            with open(self.dir / f"{b}.bin", "ab") as fh:
+                fh.write(rec[bounds[b] : bounds[b + 1]].tobytes())
+
+    def finish(self) -> None:
+        """Hand every bucket to the writer in order, then remove the scratch files."""
+        try:
+            for b in range(self.nb):
+                lo = b * self.chunk
+                hi = min(self.total, lo + self.chunk)
+                rec = np.fromfile(self.dir / f"{b}.bin", dtype=self.record)
+                if rec.size != hi - lo:
+                    raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected {hi - lo}")
+                rec = rec[np.argsort(rec["_pos"])]
+                self.writer.add({name: rec[name] for name in self.writer.buffers})
+        finally:
+            shutil.rmtree(self.dir, ignore_errors=True)

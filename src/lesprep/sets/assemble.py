@@ -327,7 +327,7 @@ def _codes(vocab: Mapping[str, Mapping[str, str]]) -> tuple[dict[str, np.ndarray
     distinct = {k: sorted(set(v.values())) for k, v in vocab.items()}
     index = {k: {text: i for i, text in enumerate(v)} for k, v in distinct.items()}
     codes = {c: {k: index[k][vocab[k][c]] for k in vocab} for c in vocab["case"]}
-    names = {k: np.asarray(v, dtype=np.dtypes.StringDType()) for k, v in distinct.items()}
+    names = {k: np.asarray(v, dtype=object) for k, v in distinct.items()}  # fast to index
     return names, codes
 
 

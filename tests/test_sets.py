@@ -60,10 +60,17 @@ def case_stores(tmp_path_factory, demo_root):
     return stores
 
 
-def build(case_stores, cases, out, **kw):
-    settings = set_settings(**{"shuffle": False, "chunk_mib": 0.05, **kw})
+def build(case_stores, cases, out, statistics=None, **kw):
+    small = {"shuffle": False, "chunk_mib": 0.05, "shard_mib": 0.5}  # several units per store
+    settings = set_settings(**{**small, **kw})
     return build_set(
-        {c: case_stores[c] for c in cases}, REGIMES, out, settings, split="train", scale="400m"
+        {c: case_stores[c] for c in cases},
+        REGIMES,
+        out,
+        settings,
+        split="train",
+        scale="400m",
+        statistics=statistics,
     )
 
 
@@ -101,8 +108,73 @@ def test_shuffle_is_a_seeded_permutation(case_stores, tmp_path):
     for v in ("w_mean", "z", "time", "case", "qc_patch"):
         np.testing.assert_array_equal(mixed[v].values[perm], plain[v].values)
         np.testing.assert_array_equal(mixed[v].values, again[v].values)
-    assert zarr.open_group(str(tmp_path / "b.zarr"))["w_mean"].chunks[0] < n  # many chunks
+    assert zarr.open_group(str(tmp_path / "b.zarr")).attrs["sample_unit"] < n  # many units
     assert not (tmp_path / "b.zarr" / ".scratch").exists()
+
+
+def natural_reference(case_stores, cases):
+    """Every array of a natural-order set, stacked with xarray and numpy alone."""
+    out: dict[str, list] = {}
+    for c in sorted(cases):
+        src = open_store(case_stores[c])
+        cell = src["qc_mean"]  # (time, z, y, x)
+        grid = xr.broadcast(cell, src["time"], src["z"], src["y"], src["x"])
+        for name, v in zip(("time", "z", "y", "x"), grid[1:], strict=True):
+            out.setdefault(name, []).append(v.transpose(*cell.dims).values.reshape(-1))
+        out.setdefault("case", []).append(np.full(cell.size, c, dtype=object))
+        out.setdefault("regime", []).append(np.full(cell.size, REGIMES[c], dtype=object))
+        for name, v in src.data_vars.items():
+            if name.endswith("_bounds") or v.dims[:1] not in (("time",), ("z",)):
+                continue
+            extra = [d for d in v.dims if d not in cell.dims]
+            a = v.broadcast_like(cell).transpose(*cell.dims, *extra).values
+            out.setdefault(name, []).append(a.reshape(cell.size, *a.shape[4:]))
+    return {k: np.concatenate(v) for k, v in out.items()}
+
+
+LAYOUTS = [  # small enough for several units of every kind in the 1512 samples
+    {"chunking": "widest", "shard_mib": 0.0, "chunk_mib": 0.002},
+    {"chunking": "per-array", "shard_mib": 0.0, "chunk_mib": 0.002},
+    {"chunking": "per-array", "shard_mib": 0.1, "chunk_mib": 0.002},
+    {"chunking": "widest", "shard_mib": 0.1, "chunk_mib": 0.002},
+]
+
+
+@pytest.mark.parametrize("layout", LAYOUTS, ids=lambda d: f"{d['chunking']}-{d['shard_mib']}")
+@pytest.mark.parametrize("shuffle", [False, True])
+def test_every_layout_holds_the_stacked_cells(case_stores, tmp_path, layout, shuffle):
+    """Unit-aligned writing gives, in every layout, the arrays xarray stacks from the cases,
+    in natural or numpy's permuted order; every chunk and shard boundary of every array falls
+    on a multiple of the recorded read unit."""
+    stats: dict = {}
+    path = build(case_stores, list(CASES), tmp_path / "s.zarr", stats, shuffle=shuffle, **layout)
+    want = natural_reference(case_stores, list(CASES))
+    root = zarr.open_group(str(path), mode="r")
+    n = root["time"].shape[0]
+    perm = np.random.default_rng(0).permutation(n)  # numpy's rule, the schema's seed
+    names = {k for k, _ in root.arrays()}
+    assert names == set(want)
+    for name in names:
+        got = root[name][...]
+        if shuffle:
+            got = got[perm]  # the sample at perm[i] is the i-th in natural order
+        np.testing.assert_array_equal(got, want[name].astype(got.dtype))
+    unit = root.attrs["sample_unit"]
+    lengths = {k: (a.shards or a.chunks)[0] for k, a in root.arrays()}  # zarr's metadata
+    assert max(lengths.values()) == unit < n
+    assert all(unit % length == 0 for length in lengths.values())
+    if layout["shard_mib"]:
+        assert {a.shards[0] for _, a in root.arrays()} == {unit}
+    if layout["chunking"] == "widest":
+        assert len({a.chunks[0] for _, a in root.arrays()}) == 1
+    else:
+        assert root["w_mean"].chunks[0] > root["qc_patch"].chunks[0]
+    # statistics collected while writing: those of the written store, and numpy's
+    assert stats == normalization_stats(path)
+    for v in ("qc_mean", "qc_patch"):
+        a = want[v].astype(np.float32).astype(np.float64)
+        assert stats[v]["mean"] == pytest.approx(a.mean(), rel=1e-9)
+        assert stats[v]["std"] == pytest.approx(a.std(), rel=1e-9)
 
 
 def test_filters(case_stores, tmp_path):

@@ -27,6 +27,7 @@ rule assemble_train:
         "logs/benchmarks/sets/train-{scale}.tsv"
     log:
         "logs/sets/train-{scale}.log",
+    threads: threads_for("sets")
     resources:
         mem_mb=mem_mb("sets"),
         runtime=runtime("sets"),
@@ -47,6 +48,7 @@ rule assemble_heldout:
         "logs/benchmarks/sets/{split}-{scale}.tsv"
     log:
         "logs/sets/{split}-{scale}.log",
+    threads: threads_for("sets")
     resources:
         mem_mb=mem_mb("sets"),
         runtime=runtime("sets"),

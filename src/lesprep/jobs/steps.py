@@ -93,6 +93,8 @@ def _assemble(smk: Any) -> None:
 
     p = smk.params.settings
     inputs = dict(zip(p["cases"], list(smk.input.stores), strict=True))
+    train = "stats" in smk.output.keys()  # the train split also yields the normalization
+    stats: dict[str, dict[str, float]] = {}
     build_set(
         inputs,
         p["regimes"],
@@ -102,9 +104,11 @@ def _assemble(smk: Any) -> None:
         scale=p["scale"],
         attributes=p["attributes"],
         extra_provenance={"split_rule": p["rule"], "assignment": p["assignment"]},
+        threads=int(getattr(smk, "threads", 1) or 1),
+        statistics=stats if train else None,
     )
-    if "stats" in smk.output.keys():  # the train split also yields the normalization
-        write_normalization(smk.output.store, smk.output.stats, scale=p["scale"])
+    if train:  # statistics collected while writing (an empty set has none)
+        write_normalization(smk.output.store, smk.output.stats, scale=p["scale"], stats=stats)
 
 
 def _figures(smk: Any) -> None:

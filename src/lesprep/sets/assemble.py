@@ -13,13 +13,16 @@ pressure profile are repeated for every level of their column; patches are
 value ``k`` output times earlier (:mod:`lesprep.sets.lags`).
 
 While a store is assembled, labels travel as small integer codes (with the shuffle's
-packed records) and are written as strings chunk by chunk.
+packed records) and are written as strings unit by unit.
 
-Sample order is either the natural order (case, time, z, y, x) or a seeded random
-permutation. The store is written by streaming: one case and output time at a time is
-read; with shuffling each piece's samples are appended to per-chunk scratch files
-(bucket = final position // chunk length) and every chunk is then written once, in
-order. Memory is one piece plus one chunk, not the split.
+Sample order is the natural order (case, time, z, y, x) unless ``sets.shuffle`` asks for
+a seeded random permutation; a reader that shuffles at read time takes whole read units
+(root attribute ``sample_unit``, see :mod:`lesprep.sets.chunking`) in random order. The
+store is written by streaming: one case and output time at a time is read and handed to
+a :class:`~lesprep.sets.chunking.UnitWriter`, which writes each array one whole shard or
+chunk at a time, once. With shuffling each piece's samples are first appended to
+scratch files (bucket = final position // smallest write unit) and every bucket is then
+handed to the writer in order. Memory is one piece plus one unit, not the split.
 """
 
 from __future__ import annotations
@@ -28,8 +31,8 @@ import json
 import logging
 import math
 import re
-import shutil
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -41,6 +44,13 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ConfigError
+from lesprep.sets.chunking import (
+    SampleLayout,
+    ShuffleWriter,
+    UnitWriter,
+    plan_layout,
+    storage_length,
+)
 from lesprep.sets.lags import (
     Lag,
     common_interval,
@@ -141,8 +151,20 @@ def kept_indices(
     return t_idx, z_idx
 
 
+def _index(idx: np.ndarray) -> slice | np.ndarray:
+    """A slice for consecutive indices (a plain range read), else the indices.
+
+    >>> _index(np.array([2, 3, 4])), _index(np.array([0, 2])).tolist()
+    (slice(2, 5, None), [0, 2])
+    """
+    if idx.size and np.all(np.diff(idx) == 1):
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
 def _case_pieces(
     ds: xr.Dataset,
+    group: Any,
     t_idx: np.ndarray,
     z_idx: np.ndarray,
     feats: Sequence[str],
@@ -152,13 +174,17 @@ def _case_pieces(
     lags: Sequence[Lag] = (),
     *,
     limit_bytes: int = 128 * 2**20,
+    threads: int = 1,
 ):
     """Yield the samples of each kept time of one case, in (z, y, x) order.
 
     Several times are read per array access (up to ``limit_bytes``), which is far faster
-    than one read per time for small coarse grids, and memory stays bounded. ``codes``
-    holds the case's code of every label coordinate; each lagged feature is read at the
-    times its lags need (``t_idx`` holds no time whose lag precedes the case).
+    than one read per time for small coarse grids, and memory stays bounded. The arrays
+    are read straight from the zarr ``group`` of ``ds`` (its values as stored, as xarray
+    gives them), ``threads`` at a time, and the next block of times is read while the
+    current one is handed out (memory: two blocks). ``codes`` holds the case's code of
+    every label coordinate; each lagged feature is read at the times its lags need
+    (``t_idx`` holds no time whose lag precedes the case).
     """
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     nz = z_idx.size
@@ -169,48 +195,58 @@ def _case_pieces(
         ds[v].dtype.itemsize * n * (math.prod(ds[v].shape[-2:]) if v in patches else 1)
         for v in [*feats, *patches, *lagged]
     ) + sum(ds[v].dtype.itemsize * n * len(steps) for v in lagged)
-    block = int(max(1, limit_bytes // max(1, per_time)))
+    block = int(max(1, limit_bytes // 2 // max(1, per_time)))
     zz, yy, xx = np.meshgrid(ds.z.values[z_idx], ds.y.values, ds.x.values, indexing="ij")
     zz, yy, xx = zz.reshape(-1), yy.reshape(-1), xx.reshape(-1)
-    profile_cols = {c: ds[c].values[z_idx] for c in cols if ds[c].dims == ("z",)}
+    profiles = {
+        c: np.ascontiguousarray(np.broadcast_to(ds[c].values[z_idx][:, None, None], (nz, ny, nx)))
+        for c in cols
+        if ds[c].dims == ("z",)
+    }
+    zsel = _index(z_idx)
+    times = ds.time.values
 
-    def read(v: str, times: np.ndarray) -> np.ndarray:
+    def read(v: str, t: np.ndarray) -> np.ndarray:
         if v in feats or v in patches:
-            return ds[v].isel(time=times, z=z_idx).values
-        return ds[v].isel(time=times).values
+            return group[v].oindex[_index(t), zsel]
+        return group[v].oindex[_index(t)]
 
     def per_cell(v: str, a: np.ndarray) -> np.ndarray:
         if v in cols:
             return np.ascontiguousarray(np.broadcast_to(a[None], (nz, ny, nx))).reshape(-1)
         return a.reshape(-1)
 
-    for b0 in range(0, t_idx.size, block):
-        tb = t_idx[b0 : b0 + block]
-        data = {v: read(v, tb) for v in [*feats, *patches]}
-        data.update({c: read(c, tb) for c in cols if c not in profile_cols})
+    def load(tb: np.ndarray) -> tuple[dict, np.ndarray, dict]:
+        now = [*feats, *patches, *(c for c in cols if c not in profiles)]
         past_t = np.unique(np.concatenate([tb - k for k in steps])) if steps else tb[:0]
-        past = {v: read(v, past_t) for v in lagged}
-        for k, t in enumerate(tb):
-            out: dict[str, np.ndarray] = {}
-            for v in feats:
-                out[v] = data[v][k].reshape(-1)
-            for v in cols:
-                if v in profile_cols:
-                    a = profile_cols[v][:, None, None]
-                    out[v] = np.ascontiguousarray(np.broadcast_to(a, (nz, ny, nx))).reshape(-1)
-                else:
-                    out[v] = per_cell(v, data[v][k])
-            for v in patches:
-                a = data[v][k]
-                out[v] = a.reshape(-1, a.shape[-2], a.shape[-1])
-            for lag in lags:
-                j = int(np.searchsorted(past_t, t - lag.steps))
-                out[lag.name] = per_cell(lag.feature, past[lag.feature][j])
-            out["time"] = np.full(n, float(ds.time.values[t]))
-            out["z"], out["y"], out["x"] = zz, yy, xx
-            for name, code in codes.items():
-                out[name] = np.full(n, code, dtype=np.int32)
-            yield out
+        jobs = [(v, tb) for v in now] + [(v, past_t) for v in lagged]
+        got = list(pool.map(lambda job: read(*job), jobs))
+        past = dict(zip(lagged, got[len(now) :], strict=True))
+        return dict(zip(now, got[: len(now)], strict=True)), past_t, past
+
+    blocks = [t_idx[b0 : b0 + block] for b0 in range(0, t_idx.size, block)]
+    with ThreadPoolExecutor(max(1, threads)) as pool, ThreadPoolExecutor(1) as ahead:
+        pending = ahead.submit(load, blocks[0]) if blocks else None
+        for i, tb in enumerate(blocks):
+            data, past_t, past = pending.result()
+            pending = ahead.submit(load, blocks[i + 1]) if i + 1 < len(blocks) else None
+            for k, t in enumerate(tb):
+                out: dict[str, np.ndarray] = {}
+                for v in feats:
+                    out[v] = data[v][k].reshape(-1)
+                for v in cols:
+                    out[v] = profiles[v].reshape(-1) if v in profiles else per_cell(v, data[v][k])
+                for v in patches:
+                    a = data[v][k]
+                    out[v] = a.reshape(-1, a.shape[-2], a.shape[-1])
+                for lag in lags:
+                    j = int(np.searchsorted(past_t, t - lag.steps))
+                    out[lag.name] = per_cell(lag.feature, past[lag.feature][j])
+                out["time"] = np.full(n, float(times[t]))
+                out["z"], out["y"], out["x"] = zz, yy, xx
+                for name, code in codes.items():
+                    out[name] = np.full(n, code, dtype=np.int32)
+                yield out
 
 
 def sample_attrs(
@@ -291,7 +327,7 @@ def _codes(vocab: Mapping[str, Mapping[str, str]]) -> tuple[dict[str, np.ndarray
     distinct = {k: sorted(set(v.values())) for k, v in vocab.items()}
     index = {k: {text: i for i, text in enumerate(v)} for k, v in distinct.items()}
     codes = {c: {k: index[k][vocab[k][c]] for k in vocab} for c in vocab["case"]}
-    names = {k: np.asarray(v, dtype=np.dtypes.StringDType()) for k, v in distinct.items()}
+    names = {k: np.asarray(v, dtype=object) for k, v in distinct.items()}  # fast to index
     return names, codes
 
 
@@ -308,6 +344,8 @@ def build_set(
     scale: str,
     attributes: Mapping[str, Mapping[str, Any]] | None = None,
     extra_provenance: Mapping[str, Any] | None = None,
+    threads: int = 1,
+    statistics: dict[str, dict[str, float]] | None = None,
 ) -> Path:
     """Assemble the training store of one split and scale.
 
@@ -328,6 +366,11 @@ def build_set(
         a string coordinate per sample; None or empty adds nothing.
     extra_provenance
         Extra fields of the provenance step (split rule, assignment, ...).
+    threads
+        Arrays encoded and written concurrently.
+    statistics
+        If given, filled with the normalization statistics of the written store (what
+        :func:`normalization_stats` computes from it), collected while writing.
 
     Raises
     ------
@@ -399,9 +442,7 @@ def build_set(
             hint="widen sets.z_range, lower sets.time_stride or shorten sets.lags.steps",
         )
     dtype = np.dtype(settings.dtype)
-    patch_shape = {n: first[n].shape[-2:] for n in patches}
-    widest = max([dtype.itemsize] + [dtype.itemsize * math.prod(s) for s in patch_shape.values()])
-    chunk = int(max(1, min(total, settings.chunk_mib * 2**20 // widest)))
+    patch_shape = {n: tuple(first[n].shape[-2:]) for n in patches}
     perm = None
     if settings.shuffle:
         perm = np.random.default_rng(settings.shuffle_seed).permutation(total)
@@ -411,59 +452,74 @@ def build_set(
         **{n: np.dtype("float64") for n in ("time", "z", "y", "x")},
         **{n: np.dtype("int32") for n in vocab},
     }
+    shapes = {n: patch_shape.get(n, ()) for n in dtypes}
+    layout = plan_layout(
+        {n: dt.itemsize * math.prod(shapes[n]) for n, dt in dtypes.items()},
+        total,
+        chunking=settings.chunking,
+        chunk_mib=settings.chunk_mib,
+        shard_mib=settings.shard_mib,
+    )
     coord_names = " ".join(
         ["case", "regime", *sorted(set(vocab) - set(LABELS)), "time", "z", "y", "x"]
     )
     with atomic_path(out) as tmp:
         root = zarr.open_group(str(tmp), mode="w-", zarr_format=3)
         arrays: dict[str, Any] = {}
+        lag_of = {lag.name: lag for lag in lags}
         for name, dt in dtypes.items():
-            shape: tuple[int, ...] = (total,)
-            chunks: tuple[int, ...] = (chunk,)
-            dims = ["sample"]
-            if name in patches:
-                shape = (total, *patch_shape[name])
-                chunks = (chunk, *patch_shape[name])
-                dims = ["sample", "py", "px"]
+            dims = ["sample", "py", "px"] if name in patches else ["sample"]
             label = name in vocab
+            attrs = dict(sample_attrs(name, first[name].attrs, stores)) if name in first else {}
+            if label:
+                attrs["long_name"] = _LABEL_LONG_NAMES.get(
+                    name, f"case attribute {name} of the sample's case"
+                )
+            elif name not in COORDS:
+                attrs["coordinates"] = coord_names
+            if name in lag_of:
+                lag = lag_of[name]
+                attrs.update(lag_attrs(first[lag.feature].attrs, lag, intervals))
+                attrs["coordinates"] = coord_names
             arrays[name] = root.create_array(
                 name,
-                shape=shape,
-                chunks=chunks,
+                shape=(total, *shapes[name]),
+                chunks=(layout.chunks[name], *shapes[name]),
+                shards=(layout.shard, *shapes[name]) if layout.shard else None,
                 dtype=str if label else dt,
                 compressors=compressors(settings.store),
                 fill_value="" if label else 0.0,
                 dimension_names=dims,
                 chunk_key_encoding=CHUNK_KEYS,
+                attributes=attrs,
             )
-            if name in first:
-                arrays[name].attrs.update(sample_attrs(name, first[name].attrs, stores))
-            if label:
-                arrays[name].attrs["long_name"] = _LABEL_LONG_NAMES.get(
-                    name, f"case attribute {name} of the sample's case"
-                )
-            elif name not in COORDS:
-                arrays[name].attrs["coordinates"] = coord_names
-        for lag in lags:
-            arrays[lag.name].attrs.update(lag_attrs(first[lag.feature].attrs, lag, intervals))
-            arrays[lag.name].attrs["coordinates"] = coord_names
-        sink = _Sink(arrays, names, dtypes)
-        writer = None
+        moments = None
+        if statistics is not None:
+            moments = {n: {} for n, dt in dtypes.items() if n not in vocab and is_statistic(n, dt)}
+        writer = _writer(
+            arrays, names, dtypes, shapes, layout, total, threads=threads, moments=moments
+        )
+        shuffler = None
         if perm is not None:
-            writer = _ShuffleWriter(sink, total, chunk, perm, tmp / ".scratch")
-        pos = 0
+            shuffler = ShuffleWriter(writer, layout.bucket, perm, tmp / ".scratch")
         for c in case_ids:
             t_idx, z_idx = kept[c]
-            for data in _case_pieces(stores[c], t_idx, z_idx, feats, cols, patches, codes[c], lags):
-                n = data["time"].size
-                if writer is None:
-                    sink.write(pos, pos + n, data)
+            group = zarr.open_group(str(inputs[c]), mode="r")
+            for data in _case_pieces(
+                stores[c], group, t_idx, z_idx, feats, cols, patches, codes[c], lags,
+                threads=threads,
+            ):  # fmt: skip
+                if shuffler is None:
+                    writer.add(data)
                 else:
-                    writer.add(pos, data)
-                pos += n
-        assert pos == total
-        if writer is not None:
-            writer.finish()
+                    shuffler.add(data)
+        if shuffler is not None:
+            shuffler.finish()
+        writer.close()
+        if moments is not None and statistics is not None:
+            statistics.clear()
+            for n in sorted(moments):
+                statistics[n] = merge_moments(moments[n][lo] for lo in sorted(moments[n]))
         prov_inputs = [dict(s.attrs) for s in stores.values()]
         step = provenance.new_step(
             "assemble",
@@ -494,6 +550,7 @@ def build_set(
                 "cases": case_ids,
                 "sample_labels": list(vocab),
                 "sample_order": "shuffled" if perm is not None else "case, time, z, y, x",
+                "sample_unit": layout.unit,
                 "history": (
                     history + f"\n{step['created']} lesprep assemble: {split} {scale} "
                     f"({total} samples)"
@@ -508,26 +565,34 @@ def build_set(
     return Path(out)
 
 
-class _Sink:
-    """Writes in-flight samples into the store's arrays, labels as strings."""
+def _writer(
+    arrays: Mapping[str, Any],
+    names: Mapping[str, np.ndarray],
+    dtypes: Mapping[str, np.dtype],
+    shapes: Mapping[str, tuple[int, ...]],
+    layout: SampleLayout,
+    total: int,
+    *,
+    threads: int,
+    moments: dict[str, dict[int, tuple[int, float, float]]] | None = None,
+) -> UnitWriter:
+    """A unit writer into the store's arrays that writes labels as strings.
 
-    def __init__(
-        self,
-        arrays: Mapping[str, Any],
-        names: Mapping[str, np.ndarray],
-        dtypes: Mapping[str, np.dtype],
-    ) -> None:
-        self.arrays = arrays
-        self.names = names
-        self.dtypes = dtypes
+    With ``moments``, every written unit of a statistic array adds its
+    :func:`block_moments` under ``moments[name][lo]``.
+    """
 
-    def write(self, lo: int, hi: int, data: Mapping[str, Any]) -> None:
-        for name, a in self.arrays.items():
-            v = np.asarray(data[name])
-            if name in self.names:
-                a[lo:hi] = self.names[name][v]
-            else:
-                a[lo:hi] = v.astype(self.dtypes[name], copy=False)
+    def write(name: str, lo: int, hi: int, values: np.ndarray) -> None:
+        if name in names:
+            arrays[name][lo:hi] = names[name][values]
+            return
+        stored = values.astype(dtypes[name], copy=False)
+        arrays[name][lo:hi] = stored
+        if moments is not None and name in moments:
+            moments[name][lo] = block_moments(stored)
+
+    units = {n: layout.write_unit(n) for n in arrays}
+    return UnitWriter(write, units, shapes, dtypes, total, threads=threads)
 
 
 def _empty_set(out: str | Path, *, split: str, scale: str, skipped: Mapping[str, str]) -> Path:
@@ -551,97 +616,78 @@ def _empty_set(out: str | Path, *, split: str, scale: str, skipped: Mapping[str,
     return Path(out)
 
 
-class _ShuffleWriter:
-    """Two-pass external shuffle.
+def block_moments(a: np.ndarray) -> tuple[int, float, float]:
+    """(count, mean, sum of squared deviations) of one block, in float64.
 
-    Pass 1 appends every sample, as one packed record with its final position, to the
-    scratch file of the output chunk it belongs to; pass 2 reads each chunk's file, puts
-    the records in place and writes the chunk once (labels still as codes in the records).
+    >>> block_moments(np.array([1.0, 2.0, 3.0], dtype=np.float32))
+    (3, 2.0, 2.0)
     """
+    a = np.asarray(a, dtype=np.float64).reshape(-1)
+    if a.size == 0:
+        return 0, 0.0, 0.0
+    mean = float(a.mean())
+    return int(a.size), mean, float(((a - mean) ** 2).sum())
 
-    def __init__(
-        self, sink: _Sink, total: int, chunk: int, perm: np.ndarray, scratch: Path
-    ) -> None:
-        self.sink = sink
-        self.total = total
-        self.chunk = chunk
-        self.perm = perm
-        self.nb = math.ceil(total / chunk)
-        self.dir = scratch
-        self.dir.mkdir(parents=True)
-        fields: list[Any] = [("_pos", np.int64)]
-        for name, arr in sink.arrays.items():
-            dt = sink.dtypes[name]
-            fields.append((name, dt, tuple(arr.shape[1:])) if arr.ndim > 1 else (name, dt))
-        self.record = np.dtype(fields)
 
-    def add(self, start: int, data: Mapping[str, np.ndarray]) -> None:
-        n = next(iter(data.values())).shape[0]
-        rec = np.empty(n, dtype=self.record)
-        rec["_pos"] = self.perm[start : start + n]
-        for name, a in data.items():
-            rec[name] = a
-        bucket = rec["_pos"] // self.chunk
-        order = np.argsort(bucket, kind="stable")
-        rec = rec[order]
-        bounds = np.searchsorted(bucket[order], np.arange(self.nb + 1))
-        for b in np.nonzero(np.diff(bounds))[0]:
-            with open(self.dir / f"{b}.bin", "ab") as fh:
-                fh.write(rec[bounds[b] : bounds[b + 1]].tobytes())
+def merge_moments(blocks: Iterable[tuple[int, float, float]]) -> dict[str, float]:
+    """Mean, population standard deviation and count of blocks merged in order.
 
-    def finish(self) -> None:
-        try:
-            for b in range(self.nb):
-                lo = b * self.chunk
-                hi = min(self.total, lo + self.chunk)
-                rec = np.fromfile(self.dir / f"{b}.bin", dtype=self.record)
-                if rec.size != hi - lo:
-                    raise RuntimeError(f"shuffle chunk {b}: {rec.size} samples, expected {hi - lo}")
-                rec = rec[np.argsort(rec["_pos"])]
-                self.sink.write(lo, hi, {name: rec[name] for name in self.sink.arrays})
-        finally:
-            shutil.rmtree(self.dir, ignore_errors=True)
+    The merge is exact in real arithmetic (Chan et al. 1979); in floating point it
+    depends on the order, so blocks are merged in sample order.
+
+    >>> merge_moments([block_moments(np.arange(3.0)), block_moments(np.arange(3.0, 10))])
+    {'mean': 4.5, 'std': 2.8722813232690143, 'count': 10}
+    """
+    n_tot, mean, m2 = 0, 0.0, 0.0
+    for n, ma, m2a in blocks:
+        if n == 0:
+            continue
+        delta = ma - mean
+        tot = n_tot + n
+        mean += delta * n / tot
+        m2 += m2a + delta * delta * n_tot * n / tot
+        n_tot = tot
+    return {"mean": mean, "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"), "count": n_tot}
+
+
+def is_statistic(name: str, dtype: Any) -> bool:
+    """Whether a set array gets normalization statistics (floating, not a coordinate)."""
+    return name not in COORDS and np.dtype(dtype).kind == "f"
 
 
 def normalization_stats(store: str | Path) -> dict[str, dict[str, float]]:
     """Mean and population standard deviation of every feature and patch variable.
 
-    Streams the store chunk by chunk and merges float64 moments exactly (Chan et al.
-    1979). Coordinates (case, regime, case attributes, time, z, y, x) are not features;
-    lagged features are.
+    Streams the store one shard (else chunk) at a time and merges float64 moments in
+    sample order (:func:`merge_moments`), the blocks in which :func:`build_set` computes
+    them while writing. Coordinates (case, regime, case attributes, time, z, y, x) are
+    not features; lagged features are.
     """
     root = zarr.open_group(str(store), mode="r")
     out: dict[str, dict[str, float]] = {}
     for name, arr in root.arrays():
-        if name in COORDS or np.dtype(arr.dtype).kind != "f":
+        if not is_statistic(name, arr.dtype):
             continue
-        n_tot, mean, m2 = 0, 0.0, 0.0
-        step = arr.chunks[0] * 4
-        for lo in range(0, arr.shape[0], step):
-            a = np.asarray(arr[lo : lo + step], dtype=np.float64).reshape(-1)
-            n = a.size
-            if n == 0:
-                continue
-            ma = float(a.mean())
-            m2a = float(((a - ma) ** 2).sum())
-            delta = ma - mean
-            tot = n_tot + n
-            mean += delta * n / tot
-            m2 += m2a + delta * delta * n_tot * n / tot
-            n_tot = tot
-        out[name] = {
-            "mean": mean,
-            "std": math.sqrt(m2 / n_tot) if n_tot else float("nan"),
-            "count": n_tot,
-        }
+        step = storage_length(arr)
+        n = arr.shape[0]
+        out[name] = merge_moments(block_moments(arr[lo : lo + step]) for lo in range(0, n, step))
     return out
 
 
 def write_normalization(
-    train_store: str | Path, out_json: str | Path, *, scale: str
+    train_store: str | Path,
+    out_json: str | Path,
+    *,
+    scale: str,
+    stats: Mapping[str, Mapping[str, float]] | None = None,
 ) -> dict[str, Any]:
-    """Compute train-only normalization statistics, write them as JSON and into attrs."""
-    stats = normalization_stats(train_store)  # {} for an empty store
+    """Write train-only normalization statistics as JSON and into attrs.
+
+    ``stats`` are those :func:`build_set` collected while writing the store; None
+    computes them from the store (:func:`normalization_stats`).
+    """
+    if stats is None:
+        stats = normalization_stats(train_store)  # {} for an empty store
     root = zarr.open_group(str(train_store), mode="r+")
     doc = {
         "scale": scale,

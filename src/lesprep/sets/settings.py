@@ -14,6 +14,7 @@ from lesprep.store import StoreSettings
 from lesprep.units import parse_quantity
 
 Dtype = Literal["float32", "float64"]
+Chunking = Literal["widest", "per-array"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -27,9 +28,15 @@ class SetSettings:
     time_stride
         Keep every n-th kept output time.
     shuffle, shuffle_seed
-        Store samples in a seeded random order.
+        Store samples in a seeded random order (else the natural order).
     chunk_mib
-        Target chunk size along ``sample`` (MiB).
+        Target chunk size along ``sample`` (MiB; the inner chunk when sharded).
+    chunking
+        ``per-array`` (each array's chunk sized by its own width) or ``widest`` (one
+        chunk length for all arrays, set by the widest); see :mod:`lesprep.sets.chunking`.
+    shard_mib
+        Target size of one common shard length of all arrays together (MiB); 0: no
+        sharding.
     dtype
         Stored floating-point type.
     store
@@ -45,6 +52,8 @@ class SetSettings:
     shuffle: bool
     shuffle_seed: int
     chunk_mib: float
+    chunking: Chunking
+    shard_mib: float
     dtype: Dtype
     store: StoreSettings
     lag_features: tuple[str, ...]
@@ -57,6 +66,10 @@ class SetSettings:
         features = tuple(str(f) for f in self.lag_features)
         if len(set(features)) != len(features):
             raise ConfigError(f"sets.lags.features lists a feature twice: {list(features)}")
+        if self.chunking not in ("widest", "per-array"):
+            raise ConfigError(f"sets.chunking is {self.chunking!r}; expected widest or per-array")
+        if self.shard_mib < 0:
+            raise ConfigError(f"sets.shard_mib is {self.shard_mib:g}; expected >= 0 (0: none)")
         if features and not steps:
             raise ConfigError("sets.lags.features is set but sets.lags.steps is empty")
         object.__setattr__(self, "lag_features", features)
@@ -85,6 +98,8 @@ class SetSettings:
             shuffle=bool(sets["shuffle"]),
             shuffle_seed=int(sets["shuffle_seed"]),
             chunk_mib=float(sets["chunk_mib"]),
+            chunking=sets["chunking"],
+            shard_mib=float(sets["shard_mib"]),
             dtype=dtype,
             store=store,
             lag_features=tuple(sets["lags"]["features"]),
@@ -99,6 +114,8 @@ class SetSettings:
             "shuffle": self.shuffle,
             "shuffle_seed": self.shuffle_seed,
             "chunk_mib": self.chunk_mib,
+            "chunking": self.chunking,
+            "shard_mib": self.shard_mib,
             "dtype": self.dtype,
             "store": self.store.to_dict(),
             "lags": {"features": list(self.lag_features), "steps": list(self.lag_steps)},
@@ -114,6 +131,8 @@ class SetSettings:
             shuffle=bool(d["shuffle"]),
             shuffle_seed=int(d["shuffle_seed"]),
             chunk_mib=float(d["chunk_mib"]),
+            chunking=d["chunking"],
+            shard_mib=float(d["shard_mib"]),
             dtype=d["dtype"],
             store=StoreSettings.from_dict(d["store"]),
             lag_features=tuple(d["lags"]["features"]),

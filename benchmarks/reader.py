@@ -5,9 +5,11 @@
 
 The set has 12 float32 features, the target ``cloud_fraction`` and float32 ``qc_patch``
 and ``w_patch`` of 16 x 16 per sample, eight cases in natural order, written the way
-``lesprep.sets.assemble`` writes a store (chunk length along ``sample`` from
-``--chunk-mib`` over the widest sample, blosc-lz4 level 5, v2-style chunk keys; no shards
-unless ``--shard-chunks``). One shuffled epoch at batch size 256 is timed for:
+``lesprep.sets.assemble`` writes a store (blosc-lz4 level 5, v2-style chunk keys; by
+default the assembly's own chunk and shard lengths, ``lesprep.sets.chunking.plan_layout``
+with the schema's defaults; ``--layout widest`` instead: one chunk length of
+``--chunk-mib`` of the widest sample, shards of ``--shard-chunks`` chunks). One shuffled
+epoch at batch size 256 is timed for:
 
 * the reader (two buffer sizes; the consumer only touches each batch);
 * a hand-written xarray loop, ``ds[names].isel(sample=idx)`` on ``xr.open_zarr`` (with its
@@ -54,22 +56,37 @@ TARGETS = {"vs_xarray": 10.0, "vs_oindex": 2.0, "vs_floor": 0.5, "memory_growth"
 # ------------------------------------------------------------------------ the synthetic set
 
 
-def write_set(path: Path, n: int, *, patch: int, chunk_mib: float, shard_chunks: int) -> dict:
-    """A set store of ``n`` samples in the layout of the set assembly."""
+def write_set(
+    path: Path, n: int, *, patch: int, chunk_mib: float, shard_chunks: int, layout: str
+) -> dict:
+    """A set store of ``n`` samples in the layout of the set assembly.
+
+    ``layout="assembly"``: the chunk and shard lengths the assembly gives a store of these
+    arrays with the schema's defaults (per-array chunks of 8 MiB in common shards of
+    64 MiB); ``"widest"``: one chunk length of ``chunk_mib`` of the widest array, shards of
+    ``shard_chunks`` chunks (1: none).
+    """
     import zarr
 
     from lesprep.sets.assemble import COORDS
+    from lesprep.sets.chunking import plan_layout
     from lesprep.store import CHUNK_KEYS, StoreSettings, compressors, consolidate
 
-    widest = 4 * patch * patch
-    chunk = int(max(1, min(n, chunk_mib * MIB // widest)))
-    shard = chunk * shard_chunks if shard_chunks > 1 else None
+    names = [*FEATURES, TARGET, *PATCHES, "case", "regime", "time", "z", "y", "x"]
+    widths = {k: (4 * patch * patch if k in PATCHES else 8 if k in COORDS else 4) for k in names}
+    if layout == "assembly":
+        plan = plan_layout(widths, n, chunking="per-array", chunk_mib=8.0, shard_mib=64.0)
+        lengths, shard = dict(plan.chunks), plan.shard
+    else:
+        chunk = int(max(1, min(n, chunk_mib * MIB // (4 * patch * patch))))
+        lengths = {k: chunk for k in names}
+        shard = chunk * shard_chunks if shard_chunks > 1 else None
     codecs = compressors(StoreSettings(codec="blosc-lz4", clevel=5))
     root = zarr.open_group(str(path), mode="w", zarr_format=3)
     arrays = {}
-    names = [*FEATURES, TARGET, *PATCHES, "case", "regime", "time", "z", "y", "x"]
     coords = "case regime time z y x"
     for name in names:
+        chunk = lengths[name]
         shape, chunks, dims = (n,), (chunk,), ["sample"]
         if name in PATCHES:
             shape, chunks, dims = (n, patch, patch), (chunk, patch, patch), ["sample", "py", "px"]
@@ -84,7 +101,7 @@ def write_set(path: Path, n: int, *, patch: int, chunk_mib: float, shard_chunks:
         if name not in COORDS:
             arrays[name].attrs["coordinates"] = coords
     per_case = math.ceil(n / CASES)
-    block = shard or chunk * 8
+    block = shard or max(lengths.values())
     rng = np.random.default_rng(0)
     stats: dict[str, list[float]] = {}
     for lo in range(0, n, block):
@@ -119,7 +136,7 @@ def write_set(path: Path, n: int, *, patch: int, chunk_mib: float, shard_chunks:
     root.attrs.update({"sample_labels": ["case", "regime"], "normalization": json.dumps(doc),
                        "sample_order": "case, time, z, y, x"})
     consolidate(path)
-    return {"samples": n, "chunk": chunk, "shard": shard}
+    return {"samples": n, "chunks": lengths, "shard": shard}
 
 
 def payload_bytes(n: int, patch: int) -> int:
@@ -267,6 +284,9 @@ def main() -> int:
     ap.add_argument("--patch", type=int, default=16)
     ap.add_argument("--chunk-mib", type=float, default=8.0,
                     help="target chunk MiB of the widest array (the set default, 8)")
+    ap.add_argument("--layout", choices=("assembly", "widest"), default="assembly",
+                    help="assembly: the set assembly's default layout; widest: --chunk-mib "
+                    "of the widest array, --shard-chunks chunks per shard")
     ap.add_argument("--shard-chunks", type=int, default=1, help="chunks per shard (1: none)")
     ap.add_argument("--batch", type=int, default=256)
     ap.add_argument("--buffers", default="4,16", help="buffer_units of the reader runs")
@@ -282,7 +302,11 @@ def main() -> int:
         return 0
     n = a.samples or (2**17 if a.quick else 2**20)
     a.out.mkdir(parents=True, exist_ok=True)
-    layout = f"p{a.patch}-c{a.chunk_mib:g}-s{a.shard_chunks}"
+    layout = (
+        f"p{a.patch}-assembly"
+        if a.layout == "assembly"
+        else f"p{a.patch}-c{a.chunk_mib:g}-s{a.shard_chunks}"
+    )
     results: dict[str, Any] = {"samples": n, "patch": a.patch, "batch": a.batch,
                                "layout": layout, "payload_gb": payload_bytes(n, a.patch) / 1e9,
                                "targets": TARGETS, "runs": {}}
@@ -294,7 +318,7 @@ def main() -> int:
         if not marker.exists():
             t0 = time.perf_counter()
             info = write_set(path, m, patch=a.patch, chunk_mib=a.chunk_mib,
-                             shard_chunks=a.shard_chunks)
+                             shard_chunks=a.shard_chunks, layout=a.layout)
             info["write_s"] = time.perf_counter() - t0
             info["disk_gb"] = dir_bytes(path) / 1e9
             marker.write_text(json.dumps(info))

@@ -68,8 +68,15 @@ def write_store(
     def put(name, values, dtype, dims):
         chunks = (chunk, *values.shape[1:])
         shards = None if shard is None else (shard, *values.shape[1:])
-        a = root.create_array(name, shape=values.shape, chunks=chunks, shards=shards,
-                              dtype=dtype, dimension_names=dims, chunk_key_encoding=CHUNK_KEYS)
+        a = root.create_array(
+            name,
+            shape=values.shape,
+            chunks=chunks,
+            shards=shards,
+            dtype=dtype,
+            dimension_names=dims,
+            chunk_key_encoding=CHUNK_KEYS,
+        )
         a[:] = values
 
     put("case", case.astype(str), str, ["sample"])
@@ -195,19 +202,26 @@ def test_normalization_from_store_and_file_inverts(store, raw):
             x = raw[name].astype(np.float64)
             expected = (x - x.mean()) / x.std()  # numpy, population std
             np.testing.assert_allclose(b[name], expected, rtol=1e-5, atol=1e-5)
-            np.testing.assert_allclose(r.denormalize(name, b[name]), raw[name], rtol=1e-5,
-                                       atol=1e-6 * doc["statistics"][name]["std"])
+            np.testing.assert_allclose(
+                r.denormalize(name, b[name]),
+                raw[name],
+                rtol=1e-5,
+                atol=1e-6 * doc["statistics"][name]["std"],
+            )
         np.testing.assert_array_equal(b["cloud_fraction"], raw["cloud_fraction"])
     with pytest.raises(ConfigError, match=r"no statistics of .theta_l_mean"):
         reader(store, statistics={"statistics": {"qt_mean": {"mean": 0, "std": 1}}})
 
 
 def test_filters_select_like_numpy(store, raw):
-    r = reader(store, z_range=(100, 300), cloudy_only=True, where={"regime": "cumulus"},
-               normalize=False)
+    r = reader(
+        store, z_range=(100, 300), cloudy_only=True, where={"regime": "cumulus"}, normalize=False
+    )
     got = np.sort(samples(r.epoch_batches(0)))
     want = np.flatnonzero(
-        (raw["z"] >= 100) & (raw["z"] <= 300) & (raw["cloud_fraction"] > 0)
+        (raw["z"] >= 100)
+        & (raw["z"] <= 300)
+        & (raw["cloud_fraction"] > 0)
         & (raw["regime"] == "cumulus")
     )
     np.testing.assert_array_equal(got, want)
@@ -248,15 +262,21 @@ def test_excluded_units_are_never_read(tmp_path, shard):
     np.testing.assert_array_equal(np.sort(got), np.flatnonzero(case == "cu-b"))
     wanted = {int(u) for u in np.unique(np.flatnonzero(case == "cu-b") // unit)}
     for name in (*FEATURES, *PATCHES):
-        touched = {int(k.split("/")[1].split(".")[0]) for k in counting.keys
-                   if k.startswith(name + "/") and not k.endswith(".json")}  # <name>/<i>.0.0
+        touched = {
+            int(k.split("/")[1].split(".")[0])
+            for k in counting.keys
+            if k.startswith(name + "/") and not k.endswith(".json")
+        }  # <name>/<i>.0.0
         assert touched == wanted, name
 
 
 def test_scene_labels_join_on_case_and_time(store, raw, tmp_path):
     times = np.unique(raw["time"])
-    rows = [(c, t, "train", int(i + 3 * j), False) for i, c in enumerate(CASES)
-            for j, t in enumerate(times)]
+    rows = [
+        (c, t, "train", int(i + 3 * j), False)
+        for i, c in enumerate(CASES)
+        for j, t in enumerate(times)
+    ]
     table = pd.DataFrame(rows, columns=["case", "time_s", "split", "label", "clear"])
     path = tmp_path / "regimes.tsv"
     table.to_csv(path, sep="\t", index=False, float_format="%.9g")
@@ -402,16 +422,28 @@ def test_reads_a_store_written_by_build_set(tmp_path):
             {
                 "qt_mean": (("time", "z", "y", "x"), rng.random(shape).astype("f4")),
                 "cloud_fraction": (("time", "z", "y", "x"), rng.random(shape).astype("f4")),
-                "qc_patch": (("time", "z", "y", "x", "py", "px"),
-                             rng.random((*shape, 4, 4)).astype("f4")),
+                "qc_patch": (
+                    ("time", "z", "y", "x", "py", "px"),
+                    rng.random((*shape, 4, 4)).astype("f4"),
+                ),
             },
-            coords={"time": [0.0, 600.0, 1200.0], "z": [50.0, 150.0, 250.0, 350.0],
-                    "y": [500.0, 1500.0], "x": [500.0, 1500.0]},
+            coords={
+                "time": [0.0, 600.0, 1200.0],
+                "z": [50.0, 150.0, 250.0, 350.0],
+                "y": [500.0, 1500.0],
+                "x": [500.0, 1500.0],
+            },
         )
         cases[c] = tmp_path / f"{c}.zarr"
         ds.to_zarr(cases[c], zarr_format=3, consolidated=True)
-    out = build_set(cases, {"c1": "cumulus"}, tmp_path / "set.zarr",
-                    set_settings(shuffle=True, chunk_mib=0.001), split="train", scale="1000m")
+    out = build_set(
+        cases,
+        {"c1": "cumulus"},
+        tmp_path / "set.zarr",
+        set_settings(shuffle=True, chunk_mib=0.001),
+        split="train",
+        scale="1000m",
+    )
     write_normalization(out, tmp_path / "normalization.json", scale="1000m")
     ref = open_set(out)
     r = BatchReader(out, batch_size=10, where={"regime": "cumulus"}, coords=("case",))
@@ -421,8 +453,12 @@ def test_reads_a_store_written_by_build_set(tmp_path):
     np.testing.assert_array_equal(np.sort(idx), np.flatnonzero(ref["case"].values == "c1"))
     qc = ref["qc_patch"].values[idx].astype(np.float64)
     flat = ref["qc_patch"].values.astype(np.float64)
-    np.testing.assert_allclose(np.concatenate([b["qc_patch"] for b in batches]),
-                               (qc - flat.mean()) / flat.std(), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(
+        np.concatenate([b["qc_patch"] for b in batches]),
+        (qc - flat.mean()) / flat.std(),
+        rtol=1e-5,
+        atol=1e-5,
+    )
 
 
 def test_framework_style_loader_resumes_mid_epoch(store):
@@ -434,6 +470,7 @@ def test_framework_style_loader_resumes_mid_epoch(store):
     assert sum(counts) == len(full)
     ds.starts = batchplan.round_robin_starts(counts, consumed)
     rest = list(fake_loader(ds, num_workers=3))
+
     # the same batches; a new loader starts its turns at worker 0, so they interleave anew
     def key(b):
         return tuple(b["sample"].tolist())

@@ -14,9 +14,7 @@ def test_move_is_numpy_rot90_after_flip(code):
     a = np.random.default_rng(code).random((3, 5, 5))
     b = np.flip(a, axis=2) if code >= 4 else a
     np.testing.assert_array_equal(symmetry.move(a, code), np.rot90(b, code % 4, axes=(1, 2)))
-    np.testing.assert_array_equal(
-        symmetry.move(symmetry.move(a, code), symmetry.inverse(code)), a
-    )
+    np.testing.assert_array_equal(symmetry.move(symmetry.move(a, code), symmetry.inverse(code)), a)
 
 
 def test_the_eight_elements_form_d4():

@@ -149,16 +149,15 @@ class BatchReader:
         self.labels = tuple(dict.fromkeys([*LABELS, *root.attrs.get("sample_labels", [])]))
         not_features = {*COORDS, *self.labels}
         floats = sorted(
-            n for n, a in arrays.items()
+            n
+            for n, a in arrays.items()
             if a.ndim == 1 and n not in not_features and np.dtype(a.dtype).kind == "f"
         )
         patch_vars = sorted(n for n, a in arrays.items() if a.ndim == 3)
         self.target = target
         if target is not None:
             self._need(arrays, [target], "target")
-        self.features = tuple(
-            [f for f in floats if f != target] if features is None else features
-        )
+        self.features = tuple([f for f in floats if f != target] if features is None else features)
         self.patches = tuple(patch_vars if patches is None else patches)
         self.coords = tuple(coords)
         self._need(arrays, self.features, "feature", allowed=floats)
@@ -166,8 +165,10 @@ class BatchReader:
         self._need(arrays, self.coords, "coordinate", allowed=[*COORDS, *self.labels])
         if target is not None and target in (*self.features, *self.patches):
             raise ConfigError(
-                f"{target!r} is both the target and an input", variable=target,
-                file=self.name, hint="leave the target out of features and patches",
+                f"{target!r} is both the target and an input",
+                variable=target,
+                file=self.name,
+                hint="leave the target out of features and patches",
             )
         self.batch_size = _positive(batch_size, "batch_size")
         self.epochs = int(epochs)
@@ -190,24 +191,28 @@ class BatchReader:
         self.unit = plan.storage_unit(
             [(arrays[n].shards or arrays[n].chunks)[0] for n in self.read_names or ["case"]]
         )
-        self.normalized = tuple(
-            [*self.features, *self.patches, *([target] if target and normalize_target else [])]
-        ) if normalize else ()
+        self.normalized = (
+            tuple(
+                [*self.features, *self.patches, *([target] if target and normalize_target else [])]
+            )
+            if normalize
+            else ()
+        )
         self.statistics: Statistics | None = None
         if normalize:
             self.statistics = read_statistics(statistics, root.attrs, self.name)
             self.statistics.check(list(self.normalized))
         self.where = dict(where or {})
         self._scene: NDArray[np.int64] | None = None
-        self.kept = self._select(
-            arrays, z_range, cloudy_only, scene_labels, label_fill
-        )
+        self.kept = self._select(arrays, z_range, cloudy_only, scene_labels, label_fill)
         self._per_unit = (
             plan.kept_per_unit(self.kept, self.unit)
             if self.kept is not None
             else np.diff(
-                [min(self.n_samples, u * self.unit)
-                 for u in range(plan.unit_count(self.unit, self.n_samples) + 1)]
+                [
+                    min(self.n_samples, u * self.unit)
+                    for u in range(plan.unit_count(self.unit, self.n_samples) + 1)
+                ]
             ).astype(np.int64)
         )
         self.units = np.flatnonzero(self._per_unit > 0).astype(np.int64)
@@ -223,8 +228,13 @@ class BatchReader:
                 self._root = zarr.open_group(str(self._path), mode="r")
         return self._root
 
-    def _need(self, arrays: Mapping[str, Any], names: Sequence[str], what: str,
-              allowed: Sequence[str] | None = None) -> None:
+    def _need(
+        self,
+        arrays: Mapping[str, Any],
+        names: Sequence[str],
+        what: str,
+        allowed: Sequence[str] | None = None,
+    ) -> None:
         for name in names:
             if name not in arrays or (allowed is not None and name not in allowed):
                 choices = sorted(allowed if allowed is not None else arrays)
@@ -274,14 +284,23 @@ class BatchReader:
                     hint="augment=False",
                 )
 
-    def _select(self, arrays: Mapping[str, Any], z_range: Sequence[float] | None,
-                cloudy_only: bool, scene_labels: str | Path | None,
-                label_fill: int | None) -> NDArray[np.bool_] | None:
+    def _select(
+        self,
+        arrays: Mapping[str, Any],
+        z_range: Sequence[float] | None,
+        cloudy_only: bool,
+        scene_labels: str | Path | None,
+        label_fill: int | None,
+    ) -> NDArray[np.bool_] | None:
         """Per-sample selection, read block by block from the small 1-D arrays."""
         names = set(self.where) - {selection.SCENE_KEY}
         for name in names:
-            self._need(arrays, [name], "1-D variable for a condition",
-                       allowed=[n for n, a in arrays.items() if a.ndim == 1])
+            self._need(
+                arrays,
+                [name],
+                "1-D variable for a condition",
+                allowed=[n for n, a in arrays.items() if a.ndim == 1],
+            )
         if selection.SCENE_KEY in self.where and scene_labels is None:
             raise ConfigError(
                 f"a condition on {selection.SCENE_KEY!r} needs the regimes table",
@@ -304,16 +323,22 @@ class BatchReader:
             if table is not None:
                 assert self._scene is not None
                 self._scene[lo:hi] = selection.join_scene_labels(
-                    self._column(arrays, "case", lo, hi), self._column(arrays, "time", lo, hi),
-                    table, source=str(scene_labels), fill=label_fill,
+                    self._column(arrays, "case", lo, hi),
+                    self._column(arrays, "time", lo, hi),
+                    table,
+                    source=str(scene_labels),
+                    fill=label_fill,
                 )
             if z_range is not None:
                 masks.append(selection.range_mask(self._column(arrays, "z", lo, hi), z_range))
             if cloudy_only:
                 masks.append(self._column(arrays, "cloud_fraction", lo, hi) > 0)
             for name, wanted in self.where.items():
-                values = (self._scene[lo:hi] if name == selection.SCENE_KEY and
-                          self._scene is not None else self._column(arrays, name, lo, hi))
+                values = (
+                    self._scene[lo:hi]
+                    if name == selection.SCENE_KEY and self._scene is not None
+                    else self._column(arrays, name, lo, hi)
+                )
                 masks.append(selection.condition_mask(values, wanted))
             if kept is not None:
                 piece = selection.combine(masks, hi - lo)
@@ -356,8 +381,12 @@ class BatchReader:
         ``epoch`` and ``batch`` (batches of that epoch already delivered) plus the
         settings the position depends on, which :meth:`restore_state` checks.
         """
-        return {"format": STATE_FORMAT, "epoch": self._epoch, "batch": self._batch,
-                **self._fingerprint()}
+        return {
+            "format": STATE_FORMAT,
+            "epoch": self._epoch,
+            "batch": self._batch,
+            **self._fingerprint(),
+        }
 
     def restore_state(self, state: Mapping[str, Any]) -> None:
         """Continue from a :meth:`save_state` position (same store, settings and worker).
@@ -381,8 +410,7 @@ class BatchReader:
     # -- the plan -------------------------------------------------------------------------
 
     def _groups(self, epoch: int) -> list[NDArray[np.int64]]:
-        order = plan.epoch_unit_order(self.units, epoch=epoch, seed=self.seed,
-                                      shuffle=self.shuffle)
+        order = plan.epoch_unit_order(self.units, epoch=epoch, seed=self.seed, shuffle=self.shuffle)
         mine = plan.worker_units(order, self.worker, self.workers)
         return plan.buffer_groups(mine, self.buffer_units)
 
@@ -392,8 +420,9 @@ class BatchReader:
 
     def batches_in_epoch(self, epoch: int) -> int:
         """Batches this worker delivers in ``epoch``."""
-        return plan.batch_count(self.samples_in_epoch(epoch), self.batch_size,
-                                drop_last=self.drop_last)
+        return plan.batch_count(
+            self.samples_in_epoch(epoch), self.batch_size, drop_last=self.drop_last
+        )
 
     # -- iteration ------------------------------------------------------------------------
 
@@ -441,18 +470,22 @@ class BatchReader:
                     future = ahead.submit(self._read, groups[g + 1], spaces[(g + 1) % 2])
                 codes = None
                 if self.augment:
-                    codes = plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g, 1
-                                            ).integers(0, 8, size=buf.samples.size
-                                                       ).astype(np.int8)
+                    codes = (
+                        plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g, 1)
+                        .integers(0, 8, size=buf.samples.size)
+                        .astype(np.int8)
+                    )
                 i, skip = skip, 0
                 while i < buf.samples.size and pos < end:
                     take = min(bs - filled, buf.samples.size - i, end - pos)
                     rows = buf.positions[i : i + take]
-                    pieces.append((
-                        {n: a[rows] for n, a in data.items()},
-                        buf.samples[i : i + take],
-                        None if codes is None else codes[i : i + take],
-                    ))
+                    pieces.append(
+                        (
+                            {n: a[rows] for n, a in data.items()},
+                            buf.samples[i : i + take],
+                            None if codes is None else codes[i : i + take],
+                        )
+                    )
                     filled, i, pos = filled + take, i + take, pos + take
                     if filled == bs or pos == end:
                         yield self._finish(pieces)
@@ -464,10 +497,14 @@ class BatchReader:
             ahead.shutdown(wait=True, cancel_futures=True)
 
     def _buffer(self, epoch: int, g: int, units: NDArray[np.int64]) -> plan.Buffer:
-        rng = (plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g)
-               if self.shuffle else None)
-        return plan.plan_buffer(units, self.kept, unit=self.unit, n_samples=self.n_samples,
-                                rng=rng, index=g)
+        rng = (
+            plan.buffer_rng(self.seed, epoch, self.worker, self.workers, g)
+            if self.shuffle
+            else None
+        )
+        return plan.plan_buffer(
+            units, self.kept, unit=self.unit, n_samples=self.n_samples, rng=rng, index=g
+        )
 
     def _read(self, units: NDArray[np.int64], space: Batch) -> Batch:
         """Every read array over the units' full ranges, concatenated in unit order.
@@ -486,8 +523,9 @@ class BatchReader:
                 out[n] = np.empty(rows, dtype=object)
                 continue
             if n not in space:
-                space[n] = np.empty((self.buffer_units * self.unit, *a.shape[1:]),
-                                    dtype=np.dtype(a.dtype))
+                space[n] = np.empty(
+                    (self.buffer_units * self.unit, *a.shape[1:]), dtype=np.dtype(a.dtype)
+                )
             out[n] = space[n][:rows]
 
         def read(n: str, k: int) -> None:
@@ -517,8 +555,9 @@ class BatchReader:
             ids = np.concatenate([p[1] for p in pieces])
             codes = None if pieces[0][2] is None else np.concatenate([p[2] for p in pieces])
         if codes is not None:
-            moved = {n: batch[n] for n in [*self.features, *self.patches, self.target]
-                     if n is not None}
+            moved = {
+                n: batch[n] for n in [*self.features, *self.patches, self.target] if n is not None
+            }
             batch.update(symmetry.apply(moved, codes, vectors=self.vectors))
             batch["symmetry"] = codes
         if self.statistics is not None:

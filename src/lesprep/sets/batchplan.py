@@ -195,8 +195,9 @@ def buffer_rng(
     seed: int, epoch: int, worker: int, workers: int, index: int, stream: int = 0
 ) -> np.random.Generator:
     """The random generator of one buffer; ``stream`` separates independent uses."""
-    return np.random.default_rng([int(seed), int(epoch), int(worker), int(workers), int(index),
-                                  int(stream)])
+    return np.random.default_rng(
+        [int(seed), int(epoch), int(worker), int(workers), int(index), int(stream)]
+    )
 
 
 def plan_buffer(

@@ -113,8 +113,9 @@ def from_document(doc: Mapping[str, Any], source: str) -> Statistics:
     return Statistics(mean, std, source)
 
 
-def read_statistics(source: str | Path | Mapping[str, Any], attrs: Mapping[str, Any],
-                    store: str) -> Statistics:
+def read_statistics(
+    source: str | Path | Mapping[str, Any], attrs: Mapping[str, Any], store: str
+) -> Statistics:
     """Statistics from a JSON file, a document, or (``source`` None) the store attribute.
 
     Parameters
@@ -145,7 +146,8 @@ def read_statistics(source: str | Path | Mapping[str, Any], attrs: Mapping[str, 
         doc = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError) as err:
         raise ConfigError(
-            f"cannot read normalization statistics: {err}", file=str(path),
+            f"cannot read normalization statistics: {err}",
+            file=str(path),
             hint="expected the normalization.json the workflow writes next to the sets",
         ) from err
     return from_document(doc, str(path))

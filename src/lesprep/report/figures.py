@@ -26,21 +26,20 @@ Conventions
 from __future__ import annotations
 
 import math
-import os
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
-from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LogNorm
 from matplotlib.figure import Figure
 from numpy.typing import ArrayLike, NDArray
 
-from lesprep import __version__, provenance
+from lesprep import provenance
 from lesprep.errors import InputError
 from lesprep.layout import ResultsLayout
+from lesprep.report.canvas import new_figure, save_png
 from lesprep.report.stores import SET_CHUNK, opened_store, set_slices
 from lesprep.schemes import sundqvist_cloud_fraction
 
@@ -59,32 +58,11 @@ __all__ = [
 DEFAULT_RH_CRITICAL = 0.8
 """Critical relative humidity used when a store records none (common practice)."""
 
-_DPI = 120
 _SPINUP_COLOUR = "0.6"
 _KG_M2 = "kg m$^{-2}$"
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-def _figure(width: float, height: float) -> Figure:
-    fig = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
-    FigureCanvasAgg(fig)
-    return fig
-
-
-def _save(fig: Figure, out_png: str | Path) -> Path:
-    """Write ``fig`` as PNG into a temporary sibling and rename it to ``out_png``."""
-    out = Path(out_png)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    try:
-        fig.savefig(tmp, format="png", metadata={"Software": f"lesprep {__version__}"})
-        os.replace(tmp, out)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return out
 
 
 def _case_name(ds: xr.Dataset, path: str | Path) -> str:
@@ -237,7 +215,7 @@ def case_timeseries(
         xlabel = f"time since {_origin_text(ds)} (h)"
     first = float(np.min(raw)) if raw.size else float(kept[0])
     hours = kept / 3600.0
-    fig = _figure(7.0, 5.0)
+    fig = new_figure(7.0, 5.0)
     ax_cover, ax_lwp = fig.subplots(2, 1, sharex=True)
     ax_cover.plot(hours, cover, "o-", color="tab:blue", label="kept output times")
     ax_lwp.plot(hours, lwp, "o-", color="tab:green", label="kept output times")
@@ -264,7 +242,7 @@ def case_timeseries(
     handles, labels = ax_cover.get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside lower center", ncols=2, fontsize="small")
     fig.suptitle(f"Case {case}: domain cloud cover and mean liquid water path")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -306,7 +284,7 @@ def case_profiles(canonical_path: str | Path, out_png: str | Path) -> Figure:
         z_km = np.asarray(ds["z"].values, dtype=np.float64) / 1000.0
         case = _case_name(ds, canonical_path)
         nt = ds.sizes["time"]
-    fig = _figure(8.0, 4.5)
+    fig = new_figure(8.0, 4.5)
     axes = fig.subplots(1, 3, sharey=True)
     series = (
         (prof["cf"], "cloud fraction (1)", "tab:blue"),
@@ -321,7 +299,7 @@ def case_profiles(canonical_path: str | Path, out_png: str | Path) -> Figure:
     axes[0].set_ylabel("height (km)")
     axes[0].set_ylim(0.0, float(z_km[-1]) + 0.5 * float(z_km[0]))
     fig.suptitle(f"Case {case}: mean profiles over {nt} kept output time(s)")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -369,7 +347,7 @@ def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: in
         origin = _origin_text(ds)
     xe = np.concatenate([x - dx / 2, [x[-1] + dx / 2]]) / 1000.0
     ye = np.concatenate([y - dx / 2, [y[-1] + dx / 2]]) / 1000.0
-    fig = _figure(6.0, 5.0)
+    fig = new_figure(6.0, 5.0)
     ax = fig.subplots()
     top = float(lwp.max()) if lwp.size and float(lwp.max()) > 0 else 1e-3
     mesh = ax.pcolormesh(xe, ye, lwp, cmap="Blues_r", vmin=0.0, vmax=top, shading="flat")
@@ -381,7 +359,7 @@ def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: in
     ax.set_title(
         f"Case {case}: liquid water path\nat {t_h:.2f} h since {origin}", fontsize="medium"
     )
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -440,7 +418,7 @@ def scale_target_distribution(
     """
     edges = np.linspace(0.0, 1.0, int(bins) + 1)
     width = 1.0 / int(bins)
-    fig = _figure(6.5, 4.5)
+    fig = new_figure(6.5, 4.5)
     ax = fig.subplots()
     scales = []
     drawn = False
@@ -463,7 +441,7 @@ def scale_target_distribution(
     ax.legend(loc="upper center", fontsize="small")
     scale = scales[0] if scales[0] != "?" else scales[1]
     ax.set_title(f"Target cloud fraction at scale {scale}: train and test splits")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -535,7 +513,7 @@ def scale_cf_vs_rh(
                 okg = np.isfinite(rh) & np.isfinite(g)
                 g_sum += np.histogram(rh[okg], bins=rh_edges, weights=g[okg])[0]
                 g_n += np.histogram(rh[okg], bins=rh_edges)[0]
-    fig = _figure(6.5, 5.0)
+    fig = new_figure(6.5, 5.0)
     ax = fig.subplots()
     n = int(counts.sum())
     masked = np.ma.masked_equal(counts.T, 0.0)
@@ -583,7 +561,7 @@ def scale_cf_vs_rh(
     ax.set_ylabel("cloud fraction of the coarse cell (1)")
     ax.legend(loc="upper left", fontsize="small")
     ax.set_title(f"Cloud fraction against RH at scale {scale}, train split ({n:,} samples)")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 

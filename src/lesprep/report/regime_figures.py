@@ -18,7 +18,6 @@ Conventions
 
 from __future__ import annotations
 
-import os
 from collections.abc import Mapping
 from itertools import combinations
 from pathlib import Path
@@ -26,12 +25,11 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
-from lesprep import __version__
 from lesprep.layout import REGIME_FIGURES
+from lesprep.report.canvas import new_figure, save_png
 from lesprep.report.regimes import CLEAR_LABEL, descriptor_frame, read_regime_fit, write_regimes
 from lesprep.report.settings import RegimeSettings
 
@@ -44,29 +42,8 @@ __all__ = [
     "write_regime_outputs",
 ]
 
-_DPI = 120
 _CLEAR_COLOUR = "0.8"
 _MAX_PANELS_DESCRIPTORS = 4
-
-
-def _figure(width: float, height: float) -> Figure:
-    fig = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
-    FigureCanvasAgg(fig)
-    return fig
-
-
-def _save(fig: Figure, out_png: str | Path) -> Path:
-    """Write ``fig`` as PNG into a temporary sibling and rename it to ``out_png``."""
-    out = Path(out_png)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    try:
-        fig.savefig(tmp, format="png", metadata={"Software": f"lesprep {__version__}"})
-        os.replace(tmp, out)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return out
 
 
 def label_colours(labels: np.ndarray) -> list[Any]:
@@ -109,7 +86,7 @@ def regime_silhouette(fit_json: str | Path, out_png: str | Path) -> Figure:
     """
     fit = read_regime_fit(fit_json)
     scores = {int(k): float(v) for k, v in fit["silhouette"].items()}
-    fig = _figure(5.0, 3.5)
+    fig = new_figure(5.0, 3.5)
     ax = fig.add_subplot()
     if scores:
         ks = sorted(scores)
@@ -129,7 +106,7 @@ def regime_silhouette(fit_json: str | Path, out_png: str | Path) -> Figure:
     ax.set_xlabel("number of regimes k")
     ax.set_ylabel("mean silhouette (1)")
     ax.set_title(f"Regimes: k-means on {fit['n_fit']} cloudy train scenes")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -167,7 +144,7 @@ def regime_descriptors(
         pairs = [("time_h", names[0])]
     ncol = min(3, max(1, len(pairs)))
     nrow = max(1, -(-len(pairs) // ncol))
-    fig = _figure(3.6 * ncol, 3.2 * nrow)
+    fig = new_figure(3.6 * ncol, 3.2 * nrow)
     if not pairs:
         ax = fig.add_subplot()
         ax.text(
@@ -201,7 +178,7 @@ def regime_descriptors(
     ]
     fig.legend(handles=handles, loc="outside right upper", title="label")
     fig.suptitle("Scene descriptors coloured by regime label")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 
@@ -229,7 +206,7 @@ def regime_timeline(regimes_tsv: str | Path, out_png: str | Path) -> Figure:
         .sort_values(["rank", "case"], kind="stable")
     )
     rows = {c: i for i, c in enumerate(cases["case"])}
-    fig = _figure(7.0, 1.2 + 0.35 * max(1, len(rows)))
+    fig = new_figure(7.0, 1.2 + 0.35 * max(1, len(rows)))
     ax = fig.add_subplot()
     y = table["case"].map(rows).to_numpy(dtype=np.float64)
     ax.scatter(
@@ -241,7 +218,7 @@ def regime_timeline(regimes_tsv: str | Path, out_png: str | Path) -> Figure:
     ax.invert_yaxis()
     ax.set_xlabel("time (h)")
     ax.set_title("Regime label of each case through time (grey: clear)")
-    _save(fig, out_png)
+    save_png(fig, out_png)
     return fig
 
 

@@ -36,16 +36,8 @@ CASES = {"sc-ostra-01": "alpha", "sc-ostra-02": "beta", "cu-marro-01": "alpha"}
 REGIMES = {"sc-ostra-01": "stratocumulus", "sc-ostra-02": "stratocumulus", "cu-marro-01": "cumulus"}
 
 
-@pytest.fixture(scope="module")
-def case_stores(tmp_path_factory, demo_root):
-    out = tmp_path_factory.mktemp("cases")
-    ing = ingest_settings(
-        spinup="1 h",
-        cloud_threshold="1e-5 kg/kg",
-    )
-    co = coarsen_settings(
-        scales=tuple(parse_scales(["400 m"])), patch_scales=("400m",), patch_size=4
-    )
+def _coarsened_cases(demo_root, out, ing, co) -> dict[str, Path]:
+    """Each case of CASES ingested and coarsened to 400 m: case -> its scale store."""
     stores = {}
     for case, flavour in CASES.items():
         canon = ingest_case(
@@ -58,6 +50,19 @@ def case_stores(tmp_path_factory, demo_root):
         )
         stores[case] = coarsen_case(canon, {"400m": out / case / "scale-400m.zarr"}, co)["400m"]
     return stores
+
+
+@pytest.fixture(scope="module")
+def case_stores(tmp_path_factory, demo_root):
+    out = tmp_path_factory.mktemp("cases")
+    ing = ingest_settings(
+        spinup="1 h",
+        cloud_threshold="1e-5 kg/kg",
+    )
+    co = coarsen_settings(
+        scales=tuple(parse_scales(["400 m"])), patch_scales=("400m",), patch_size=4
+    )
+    return _coarsened_cases(demo_root, out, ing, co)
 
 
 def build(case_stores, cases, out, statistics=None, **kw):
@@ -353,18 +358,7 @@ def lag_stores(tmp_path_factory, demo_root):
     out = tmp_path_factory.mktemp("lagcases")
     ing = ingest_settings(spinup="0 h", cloud_threshold="1e-5 kg/kg")
     co = coarsen_settings(scales=tuple(parse_scales(["400 m"])), patch_scales=())
-    stores = {}
-    for case, flavour in CASES.items():
-        canon = ingest_case(
-            case=case,
-            raw=str(demo_root / case / "*.nc"),
-            varmap=REPO / f"config/varmaps/flavour-{flavour}.yaml",
-            settings=ing,
-            out=out / case / "canonical.zarr",
-            regime=REGIMES[case],
-        )
-        stores[case] = coarsen_case(canon, {"400m": out / case / "scale-400m.zarr"}, co)["400m"]
-    return stores
+    return _coarsened_cases(demo_root, out, ing, co)
 
 
 def lag_set(case_stores, tmp_path, name="lag.zarr", steps=(1, 2), **kw):

@@ -18,6 +18,7 @@ import numpy.typing as npt
 from lesprep.canonical import derived
 from lesprep.scales.comoments import hierarchical_comoments, subgrid_tke
 from lesprep.scales.conserved import PER_SLAB, conserved_fields, inputs_of
+from lesprep.scales.layers import LayerGrid, layer_store_label
 from lesprep.scales.moments import (
     block_mean,
     hierarchical_fractions,
@@ -28,6 +29,7 @@ from lesprep.scales.moments import (
 from lesprep.scales.patches import extract_patches, patch_geometry
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
+from lesprep.scales.vertical import LayerStatistics, dry_density_means, projected_cover_update
 from lesprep.schemes import gaussian_cloud_fraction_from_sums, sundqvist_cloud_fraction
 
 
@@ -70,6 +72,10 @@ GAUSSIAN_INPUTS = ("qt", "theta_l")
 
 WINDS = ("u", "v", "w")
 """Wind components: with all three in a store, the sub-grid TKE is computed."""
+
+LAYER_FRACTIONS = ("cloud_volume_fraction", "cloud_area_fraction")
+"""Cloud fractions of a layer store: the cloudy fine cells' share of the layer's weight,
+and the projected cover (fine columns with any cloudy cell in the layer)."""
 
 
 def statistic_variables(settings: CoarsenSettings, stored: Sequence[str]) -> tuple[str, ...]:
@@ -193,6 +199,11 @@ class StepCoarsener:
         z-chunk (:func:`z_chunk_levels`) are kept as :class:`ZPieces` and each finished
         chunk row is handed out by :meth:`take_rows` as soon as a slab completes it
         (``drh_dz``, which needs the whole column, is always returned by :meth:`finish`).
+    layers
+        Resolved target layer sets (:mod:`lesprep.scales.layers`): every scale a set
+        applies to also gets its statistics on the set's layers
+        (:mod:`lesprep.scales.vertical`), returned by :meth:`finish` under the store label
+        :func:`~lesprep.scales.layers.layer_store_label`.
     """
 
     def __init__(
@@ -207,6 +218,7 @@ class StepCoarsener:
         stream: tuple[float, int] | None = None,
         stored: Sequence[str] = (),
         surface: Sequence[str] = (),
+        layers: Sequence[LayerGrid] = (),
     ) -> None:
         self.stream = stream
         self.rows: list[tuple[str, int, dict[str, np.ndarray]]] = []
@@ -224,6 +236,18 @@ class StepCoarsener:
         self.tke = all(w in self.need for w in WINDS)
         self.quantized: dict[str, int] = {}
         self.blocks: dict[str, int] = {}
+        self.layer_stores = [
+            (s, g, layer_store_label(s.label, g.spec.name))
+            for s in self.scales
+            for g in layers
+            if g.spec.applies_to(s.label)
+        ]
+        self.layers = {g.spec.name: g for _, g, _ in self.layer_stores}
+        self.density_factors = sorted(
+            {s.factor for s, g, _ in self.layer_stores if g.spec.weighting == "mass"}
+        )
+        full = [*settings.moments, *GAUSSIAN_INPUTS, *(WINDS if self.tke else ())]
+        self.layer_full = [v for v in self.need if v in full]
 
     def begin(self) -> None:
         """Allocate the output arrays of a new time step."""
@@ -236,26 +260,41 @@ class StepCoarsener:
         for s in self.scales:
             f = s.factor
             c3 = (nz, ny // f, nx // f)
-            names = []
-            for v in self.need:
-                names.append(f"{v}_mean")
-                if v in st.moments:
-                    names += [f"{v}_var", f"{v}_skew"]
-            names += [covariance_name(a, b) for a, b in self.pairs]
-            names += ["tke_sgs"] if self.tke else []
-            names += ["p_mean", "cloud_fraction", "cloud_fraction_zero", "rh_of_means"]
-            names += ["drh_dz", "cf_sundqvist", "cf_gaussian"]
-            d: dict[str, Any] = {n: self._column(n, c3) for n in names}
-            for n in ("lwp_mean", "lwp_var", "cloud_cover"):
-                d[n] = np.empty(c3[1:], dtype=dt)
-            for v in self.surface:
-                for kind in ("mean", "var", "skew"):
-                    d[f"{v}_{kind}"] = np.empty(c3[1:], dtype=dt)
+            d: dict[str, Any] = {n: self._column(n, c3) for n in self._level_names()}
+            d.update(self._column_outputs(c3[1:]))
             if s.label in st.patch_scales:
                 _, edge = patch_geometry(f, st.patch_size, st.patch_halo)
                 for v in st.patch_variables:
                     d[f"{v}_patch"] = self._column(f"{v}_patch", (*c3, edge, edge))
             self.out[s.label] = d
+        self.stats: dict[str, LayerStatistics] = {}
+        for s, g, lab in self.layer_stores:
+            f = s.factor
+            c3 = (g.nl, ny // f, nx // f)
+            names = [*self._level_names(), *LAYER_FRACTIONS]
+            self.out[lab] = {n: np.empty(c3, dtype=dt) for n in names}
+            self.out[lab].update(self._column_outputs(c3[1:]))
+            self.stats[lab] = LayerStatistics(g, c3[1:], f * f)
+        self.cover = {n: np.zeros((g.nl, ny, nx), np.int8) for n, g in self.layers.items()}
+
+    def _level_names(self) -> list[str]:
+        """Names of the per-level (or per-layer) outputs of a scale, patches aside."""
+        names = []
+        for v in self.need:
+            names.append(f"{v}_mean")
+            if v in self.settings.moments:
+                names += [f"{v}_var", f"{v}_skew"]
+        names += [covariance_name(a, b) for a, b in self.pairs]
+        names += ["tke_sgs"] if self.tke else []
+        names += ["p_mean", "cloud_fraction", "cloud_fraction_zero", "rh_of_means"]
+        names += ["drh_dz", "cf_sundqvist", "cf_gaussian"]
+        return names
+
+    def _column_outputs(self, shape: tuple[int, ...]) -> dict[str, np.ndarray]:
+        """Empty column (2-D) outputs: liquid water path, cover, surface-field moments."""
+        names = ["lwp_mean", "lwp_var", "cloud_cover"]
+        names += [f"{v}_{kind}" for v in self.surface for kind in ("mean", "var", "skew")]
+        return {n: np.empty(shape, dtype=self.dtype) for n in names}
 
     def _column(self, name: str, shape: tuple[int, ...]) -> Any:
         if self.stream is not None and name != "drh_dz":
@@ -372,6 +411,8 @@ class StepCoarsener:
                     extract_patches(
                         src, f, st.patch_size, st.patch_halo, means=means, out=d[f"{v}_patch"][sl]
                     )
+        if self.layer_stores:
+            self._add_layers(z0, fine, moments, cov, cf, cf0, p_fine, p_means, refs, mask)
         for s in self.scales:
             ready: dict[int, dict[str, np.ndarray]] = {}
             for name, arr in self.out[s.label].items():
@@ -379,6 +420,108 @@ class StepCoarsener:
                     for zs, piece in arr.take_complete(z0 + k):
                         ready.setdefault(zs, {})[name] = piece
             self.rows.extend((s.label, zs, part) for zs, part in sorted(ready.items()))
+
+    def _add_layers(
+        self,
+        z0: int,
+        fine: Mapping[str, np.ndarray],
+        moments: Mapping[str, Mapping[int, Any]],
+        cov: Mapping[tuple[str, str], Mapping[int, Any]],
+        cf: Mapping[int, np.ndarray],
+        cf0: Mapping[int, np.ndarray],
+        p_fine: np.ndarray,
+        p_means: Mapping[int, np.ndarray] | None,
+        refs: Mapping[str, np.ndarray],
+        mask: np.ndarray,
+    ) -> None:
+        """Merge this slab's per-level block statistics into every layer store's sums
+        (:mod:`lesprep.scales.vertical`) and its cloud mask into the projected covers."""
+        for name, g in self.layers.items():
+            projected_cover_update(self.cover[name], mask, z0, g)
+        rho: dict[int, np.ndarray] = {}
+        for f, parent in plan_hierarchy(self.density_factors).items():
+            if parent is None:
+                rho[f] = dry_density_means(p_fine, fine["T"], fine["qv"], f)
+            else:
+                rho[f] = block_mean(rho[parent], f // parent)
+
+        def level_mean(v: str, f: int) -> np.ndarray:
+            m = moments[v][f].mean
+            return m + refs[v][:, None, None] if v in refs else m
+
+        for s, g, lab in self.layer_stores:
+            f = s.factor
+            acc = self.stats[lab]
+            w = rho[f] if g.spec.weighting == "mass" else None
+            for v in self.need:
+                if v in self.layer_full:
+                    acc.add_moments(v, z0, moments[v][f], w, offset=refs.get(v))
+                else:
+                    acc.add_mean(v, z0, level_mean(v, f), w)
+            for a, b in self.pairs:
+                acc.add_comoment(
+                    (a, b), z0, level_mean(a, f), level_mean(b, f), cov[(a, b)][f].cov_sum, w
+                )
+            acc.add_mean("p", z0, p_means[f] if p_means is not None else p_fine, w)
+            acc.add_mean("cloud_volume_fraction", z0, cf[f], w)
+            acc.add_mean("cloud_fraction_zero", z0, cf0[f], w)
+
+    def _finish_layers(self) -> None:
+        """Layer statistics of the time step into the layer stores' outputs."""
+        st = self.settings
+        covers: dict[str, dict[int, np.ndarray]] = {}
+        for name, cover in self.cover.items():
+            factors = sorted({s.factor for s, g, _ in self.layer_stores if g.spec.name == name})
+            covers[name] = hierarchical_fractions(cover, factors)
+        for s, g, lab in self.layer_stores:
+            f = s.factor
+            d = self.out[lab]
+            acc = self.stats[lab]
+            means: dict[str, np.ndarray] = {}
+            full = {}
+            for v in self.need:
+                if v in self.layer_full:
+                    full[v] = bm = acc.moments(v)
+                    means[v] = bm.mean
+                    if v in st.moments:
+                        bm.variance_and_skewness(
+                            out=(d[f"{v}_var"], d[f"{v}_skew"]), mean_out=d[f"{v}_mean"]
+                        )
+                        continue
+                else:
+                    means[v] = acc.mean(v)
+                d[f"{v}_mean"][...] = means[v]
+            p3 = acc.mean("p")
+            d["p_mean"][...] = p3
+            vol = acc.mean("cloud_volume_fraction")
+            proj = covers[g.spec.name][f]
+            d["cloud_volume_fraction"][...] = vol
+            d["cloud_area_fraction"][...] = proj
+            d["cloud_fraction"][...] = vol if g.spec.target == "volume" else proj
+            d["cloud_fraction_zero"][...] = acc.mean("cloud_fraction_zero")
+            rh = derived.relative_humidity(p3, means["T"], means["qv"])
+            d["rh_of_means"][...] = rh
+            sundqvist_cloud_fraction(rh, st.rh_critical, out=d["cf_sundqvist"])
+            d["drh_dz"][...] = vertical_derivative(rh, g.centres, axis=0)
+            for a, b in self.pairs:
+                d[covariance_name(a, b)][...] = acc.covariance((a, b))
+            if self.tke:
+                d["tke_sgs"][...] = subgrid_tke(*(full[w].variance() for w in WINDS))
+            qt, thl = (full[v] for v in GAUSSIAN_INPUTS)
+            gaussian_cloud_fraction_from_sums(
+                qt.mean,
+                thl.mean,
+                p3,
+                qt.m2,
+                thl.m2,
+                acc.covariance(GAUSSIAN_INPUTS),
+                1,
+                out=d["cf_gaussian"],
+            )
+            for n, a in self.out[s.label].items():  # the column outputs of the scale
+                if a.ndim == 2:
+                    d[n][...] = a
+            acc.reset()
 
     def finish(
         self, lwp: np.ndarray, surface: Mapping[str, np.ndarray] | None = None
@@ -400,12 +543,14 @@ class StepCoarsener:
                 surf[v][f].variance_and_skewness(
                     out=(d[f"{v}_var"], d[f"{v}_skew"]), mean_out=d[f"{v}_mean"]
                 )
+        self._finish_layers()
         out = {
             lab: {n: a for n, a in d.items() if not isinstance(a, ZPieces)}
             for lab, d in self.out.items()
         }
         self.out = {}
         self.rh64 = {}
+        self.cover = {}
         return out
 
 
@@ -417,6 +562,7 @@ def coarse_fields(
     *,
     dtype: npt.DTypeLike = np.float64,
     slab_levels: int | None = None,
+    layers: Sequence[LayerGrid] = (),
 ) -> dict[str, dict[str, np.ndarray]]:
     """All coarse fields of one output time, per scale label.
 
@@ -438,6 +584,8 @@ def coarse_fields(
         ``drh_dz``, ``cf_sundqvist``) are computed from the float64 means before rounding.
     slab_levels
         Levels coarsened at a time (default: all); the result does not depend on it.
+    layers
+        Resolved target layer sets; their stores are returned under their store labels.
     """
     shape = tuple(np.shape(fine["qc"]))
     p = np.asarray(fine["p"])
@@ -452,6 +600,7 @@ def coarse_fields(
         p_profile=p if p.ndim == 1 else None,
         stored=stored,
         surface=surface,
+        layers=layers,
     )
     step.begin()
     names = slab_inputs(settings, p_is_3d=p.ndim == 3, stored=stored)

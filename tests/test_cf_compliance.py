@@ -32,6 +32,7 @@ from lesprep.canonical.ingest import ingest_case
 from lesprep.catalogue import temperature_metadata
 from lesprep.raw.timeaxis import NOMINAL_ORIGIN, cf_time_units
 from lesprep.scales.coarsen import coarsen_case
+from lesprep.scales.layers import LayerSetSpec
 from lesprep.scales.spec import parse_scales
 from lesprep.sets.assemble import build_set
 from lesprep.store import export_netcdf, open_store
@@ -47,6 +48,14 @@ CASES = {"sc-ostra-01": "alpha", "sc-ostra-02": "beta"}
 """Flavour alpha writes time as seconds since the start of the run, beta as hours since
 a date: both kinds of time origin."""
 REGIMES = {"sc-ostra-01": "stratocumulus", "sc-ostra-02": "stratocumulus"}
+LAYERS = LayerSetSpec(
+    name="cf",
+    kind="pressure",
+    interfaces=(1.02e5, 1.0e5, 9.6e4, 9.0e4, 8.0e4),
+    source="config",
+    scales=("400m",),
+)
+"""A pressure layer set (mapped to heights per case) for the layer store's check."""
 
 PATCH_ORDER = (
     "{}'s spatio-temporal dimensions are not in the recommended order T, Z, Y, X and/or "
@@ -60,7 +69,12 @@ contiguous, indexed like every other output of the scale store, and a set stacks
 ``(sample, py, px)``; moving ``py, px`` first would scatter one cell's patch over the
 whole store."""
 
-KEPT_WARNINGS: dict[str, set[str]] = {"canonical": set(), "scale": set(), "set": set()}
+KEPT_WARNINGS: dict[str, set[str]] = {
+    "canonical": set(),
+    "scale": set(),
+    "layer": set(),
+    "set": set(),
+}
 """Checker warnings kept on purpose, per kind of store (the text the checker prints),
 besides :data:`PATCH_ORDER` for each patch variable of a scale store."""
 
@@ -86,6 +100,7 @@ def stores(tmp_path_factory, demo_root) -> dict[str, Path]:
         patch_scales=("400m",),
         patch_size=4,
         covariances=(("qv", "T"),),
+        layers=(LAYERS,),
     )
     paths: dict[str, Path] = {}
     scale: dict[str, Path] = {}
@@ -99,8 +114,17 @@ def stores(tmp_path_factory, demo_root) -> dict[str, Path]:
             regime=REGIMES[case],
         )
         paths[f"canonical-{flavour}"] = canon
-        scale[case] = coarsen_case(canon, {"400m": out / case / "scale-400m.zarr"}, co)["400m"]
+        written = coarsen_case(
+            canon,
+            {
+                "400m": out / case / "scale-400m.zarr",
+                "400m_layers-cf": out / case / "scale-400m_layers-cf.zarr",
+            },
+            co,
+        )
+        scale[case] = written["400m"]
         paths[f"scale-{flavour}"] = scale[case]
+        paths[f"layer-{flavour}"] = written["400m_layers-cf"]
     paths["set"] = build_set(
         scale,
         REGIMES,
@@ -132,7 +156,9 @@ def failed(results: list[dict]) -> set[str]:
     return out
 
 
-@pytest.mark.parametrize("kind", ["canonical-alpha", "canonical-beta", "scale-alpha", "set"])
+@pytest.mark.parametrize(
+    "kind", ["canonical-alpha", "canonical-beta", "scale-alpha", "layer-beta", "set"]
+)
 def test_checker_finds_no_error(stores, tmp_path, kind):
     report = check(stores[kind], tmp_path)
     assert failed(report["high_priorities"]) == set()  # the checker's Errors section

@@ -13,8 +13,10 @@ SETTINGS = WorkflowSettings.from_config(config)
 LAYOUT = SETTINGS.results
 CASES = {row.case: row for row in SETTINGS.case_sheet()}
 CODE = stage_code_versions()
-SCALE_LABELS = list(SETTINGS.coarsen.labels)
-SCALE_GROUPS = dict(SETTINGS.coarsen.groups)
+# Store labels: every scale's store and its layer stores (scale-<label>_layers-<name>);
+# the sets, normalization and figures treat each the same way.
+SCALE_LABELS = list(SETTINGS.coarsen.store_labels)
+SCALE_GROUPS = {g: SETTINGS.coarsen.for_group(g).store_labels for g in SETTINGS.coarsen.groups}
 
 # The split is computed once, here; the splits job writes this assignment and its notes.
 ASSIGNMENT, SPLIT_MESSAGES = assign_splits(

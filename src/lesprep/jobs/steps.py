@@ -74,7 +74,7 @@ def _coarsen(smk: Any) -> None:
 
     p = smk.params.settings
     settings = CoarsenSettings.from_dict(p["coarsen"])
-    outputs = dict(zip(settings.labels, list(smk.output.stores), strict=True))
+    outputs = dict(zip(settings.store_labels, list(smk.output.stores), strict=True))
     coarsen_case(smk.input.canonical, outputs, settings, config_record=p)
 
 

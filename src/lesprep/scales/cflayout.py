@@ -9,6 +9,7 @@ their own entries here.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -17,6 +18,7 @@ import xarray as xr
 from lesprep import catalogue
 from lesprep.canonical.mask import describe_threshold
 from lesprep.raw.grid import horizontal_attrs
+from lesprep.scales.layers import LayerGrid
 from lesprep.scales.settings import CoarsenSettings
 from lesprep.scales.spec import Scale
 from lesprep.scales.step import GAUSSIAN_INPUTS, covariance_name, z_chunk_levels
@@ -120,8 +122,9 @@ def output_attrs(
             "cell_methods": "area: mean",
         },
     }
+    table.update(LAYER_FRACTION_ATTRS)
     if name in table:
-        return table[name]
+        return dict(table[name])
     var = _entry(base, canon) if kind in ("mean", "var", "skew", "patch") else None
     if var is not None and kind == "mean":
         a = {"standard_name": var.standard_name} if var.standard_name else {}
@@ -222,4 +225,88 @@ def scale_layout(
         }
         out[axis] = coord((axis,), bounds.mean(axis=1), attrs)
         out[f"{axis}_bounds"] = coord((axis, "nv"), bounds, {"units": "m"})
+    return out
+
+
+WEIGHTING_TEXT = {
+    "mass": "weighted by dry-air mass",
+    "thickness": "weighted by layer-overlap thickness",
+}
+"""How a layer store's vertical statistics are weighted, as cell_methods comments."""
+
+
+def layer_attrs(name: str, attrs: Mapping[str, str], weighting: str, target: str) -> dict[str, str]:
+    """Attributes of a layer-store output from its per-level attributes: the cell methods
+    say the horizontal and the weighted vertical statistic (CF 7.3: ``area: z: mean``)."""
+    how = WEIGHTING_TEXT[weighting]
+    a = dict(attrs)
+    if name == "cloud_fraction":
+        copy = "cloud_volume_fraction" if target == "volume" else "cloud_area_fraction"
+        a = layer_attrs(copy, LAYER_FRACTION_ATTRS[copy], weighting, target)
+        a["comment"] = f"the training target: a copy of {copy} (coarsen.layers target)"
+        return a
+    if name == "cloud_area_fraction":
+        return a  # a projected cover: an area mean of column flags, no vertical weights
+    methods = a.get("cell_methods", "")
+    if methods == "area: mean":
+        a["cell_methods"] = f"area: z: mean (comment: {how})"
+    elif methods == "area: variance":
+        a["cell_methods"] = f"area: z: variance (comment: {how}; population)"
+    if "long_name" in a:
+        a["long_name"] = a["long_name"].replace("block mean", "block-and-layer mean")
+    if name not in ("lwp_mean", "lwp_var", "cloud_cover") and "comment" not in a:
+        a["comment"] = f"statistic over the whole 3-D cell (block x layer), {how}"
+    return a
+
+
+LAYER_FRACTION_ATTRS: dict[str, dict[str, str]] = {
+    "cloud_volume_fraction": {
+        "standard_name": "cloud_volume_fraction_in_atmosphere_layer",
+        "long_name": "cloudy fine cells' share of the weight of the block and layer",
+        "units": "1",
+        "cell_methods": "area: mean",
+    },
+    "cloud_area_fraction": {
+        "standard_name": "cloud_area_fraction_in_atmosphere_layer",
+        "long_name": "projected cloud cover of the layer: fraction of fine columns of the "
+        "block with a cloudy cell at any fine level overlapping the layer",
+        "units": "1",
+        "cell_methods": "area: mean",
+    },
+}
+"""Attributes of the two cloud fractions of a layer store (before :func:`layer_attrs`)."""
+
+
+def layer_layout(
+    canon: xr.Dataset,
+    s: Scale,
+    grid: LayerGrid,
+    sample: Mapping[str, Any],
+    settings: CoarsenSettings,
+    threshold: float,
+) -> dict[str, ArraySpec]:
+    """Layout of a layer store: the scale store's layout on the layers of ``grid``, whose
+    ``z`` is the layer centres with CF bounds at the interfaces."""
+    spec = grid.spec
+    out = scale_layout(canon, s, sample, settings, threshold, 1)
+    for name, a in list(out.items()):
+        if name in sample:
+            attrs = layer_attrs(name, a.attrs, spec.weighting, spec.target)
+            out[name] = replace(a, attrs=attrs)
+    zattrs = dict(canon.z.attrs)
+    zattrs["long_name"] = f"height of the centres of target layers {spec.name!r}"
+    zattrs["comment"] = "midpoint of each layer's interfaces (z_bounds)"
+    for name, values, attrs in (
+        ("z", grid.centres, zattrs),
+        ("z_bounds", grid.bounds, {"units": "m"}),
+    ):
+        dims = ("z",) if values.ndim == 1 else ("z", "nv")
+        out[name] = ArraySpec(
+            dims=dims,
+            shape=values.shape,
+            chunks=values.shape,
+            dtype="float64",
+            data=values,
+            attrs=attrs,
+        )
     return out

@@ -44,7 +44,8 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ScaleError
-from lesprep.scales.cflayout import scale_layout
+from lesprep.scales.cflayout import layer_layout, scale_layout
+from lesprep.scales.layers import LayerGrid, resolve_layers, split_store_label
 from lesprep.scales.patches import patch_geometry
 from lesprep.scales.reader import FineReader
 from lesprep.scales.settings import CoarsenSettings
@@ -87,6 +88,29 @@ def resolve_for_case(
     return scales, skipped
 
 
+def case_layers(settings: CoarsenSettings, canon: Any, case: str) -> dict[str, LayerGrid]:
+    """The configured layer sets resolved for a case (name -> grid).
+
+    Heights come from the canonical store's cell faces (``z_bounds``); pressure sets are
+    mapped with the horizontal-mean pressure profile at the case's first kept output time
+    (fixed per case, so appending output times never moves the layers).
+    """
+    if not settings.layers:
+        return {}
+    zb = np.asarray(canon.z_bounds.values, dtype=np.float64)
+    faces = np.append(zb[:, 0], zb[-1, 1])
+    z = np.asarray(canon.z.values, dtype=np.float64)
+    p = canon["p"]
+    profile = None
+    if any(g.kind == "pressure" for g in settings.layers):
+        first = p if "time" not in p.dims else p.isel(time=0)
+        other = [d for d in first.dims if d != "z"]
+        profile = np.asarray(first.astype(np.float64).mean(other).values)
+    return {
+        g.name: resolve_layers(g, faces, z=z, p_profile=profile, case=case) for g in settings.layers
+    }
+
+
 def coarsen_case(
     canonical: str | Path,
     outputs: Mapping[str, str | Path],
@@ -101,8 +125,9 @@ def coarsen_case(
     canonical
         The case's canonical store.
     outputs
-        Scale label -> store path to write. A skipped scale (``on_misfit: skip``) gets a
-        store with no data variables whose provenance records why.
+        Store label -> store path to write (:attr:`CoarsenSettings.store_labels`: the
+        scales' stores and their layer stores). A skipped scale (``on_misfit: skip``) gets
+        stores with no data variables whose provenance records why.
     settings
         Coarsening settings (their scales must cover the labels of ``outputs``).
     config_record
@@ -121,18 +146,29 @@ def coarsen_case(
     nx, ny = canon.sizes["x"], canon.sizes["y"]
     scales, skipped = resolve_for_case(settings, dx, nx, ny, case=case)
     scales = [s for s in scales if s.label in outputs]
+    layers = case_layers(settings, canon, case)
+    layer_of = {
+        lab: (s, layers[name])
+        for lab in outputs
+        for s in scales
+        for name in [split_store_label(lab)[1]]
+        if name is not None and split_store_label(lab)[0] == s.label
+    }
     z = canon.z.values.astype(np.float64)
     written: dict[str, Path] = {}
     codecs = compressors(settings.store)
 
+    def layout(lab: str, sample: Mapping[str, Any], slab: int) -> Any:
+        if lab in layer_of:
+            s, grid = layer_of[lab]
+            return layer_layout(canon, s, grid, sample, settings, threshold)
+        s = next(x for x in scales if x.label == lab)
+        return scale_layout(canon, s, sample, settings, threshold, slab)
+
     def create_all(shapes: Mapping[str, Mapping[str, Any]], slab: int) -> dict[str, zarr.Group]:
         return {
-            s.label: create_store(
-                tmps[s.label],
-                scale_layout(canon, s, shapes[s.label], settings, threshold, slab),
-                codecs=codecs,
-            )
-            for s in scales
+            lab: create_store(tmps[lab], layout(lab, sample, slab), codecs=codecs)
+            for lab, sample in shapes.items()
         }
 
     # The pool is left (and a pending store creation finished) before the outputs are
@@ -145,7 +181,7 @@ def coarsen_case(
         writers: dict[str, TimeWriter] = {}
         creating: Future[dict[str, zarr.Group]] | None = None
         # One buffer budget shared by all scales: memory does not grow with their number.
-        limit = WRITE_BUFFER_BYTES // max(1, len(scales))
+        limit = WRITE_BUFFER_BYTES // max(1, len(scales) + len(layer_of))
         with FineReader(canonical, settings) as reader:
             step = StepCoarsener(
                 z,
@@ -157,6 +193,7 @@ def coarsen_case(
                 stream=(settings.chunk_mib, reader.levels),
                 stored=reader.stored,
                 surface=reader.surface,
+                layers=list({g.spec.name: g for _, g in layer_of.values()}.values()),
             )
             last = reader.bounds[-1][0]
             rows: list[tuple[int, str, int, dict[str, np.ndarray]]] = []
@@ -180,8 +217,10 @@ def coarsen_case(
                 if z0 != last:
                     continue
                 fields = step.finish(reader.lwp(j), reader.surface_fields(j))
-                for s in scales:
-                    writers[s.label].add(j, fields.pop(s.label))
+                for lab, part in fields.items():
+                    if lab in writers:  # a layer store not asked for is not written
+                        writers[lab].add(j, part)
+                del fields
             quantized = {
                 v: {"blocks": n, "of": step.blocks[v], "scale": scales[0].label}
                 for v, n in step.quantized.items()
@@ -202,16 +241,20 @@ def coarsen_case(
         for w in writers.values():
             w.flush()
         for lab, tmp in tmps.items():
-            s = next((x for x in scales if x.label == lab), None)
+            scale_lab, layer_name = split_store_label(lab)
+            s = next((x for x in scales if x.label == scale_lab), None)
             if s is None:
                 g = create_store(tmp, {})
                 reason = next(
-                    (k["reason"] for k in skipped if _label(k["scale"]) == lab), "not computed"
+                    (k["reason"] for k in skipped if _label(k["scale"]) == scale_lab),
+                    "not computed",
                 )
-                info = {"scale": lab, "skip_reason": reason}
+                info = {"scale": scale_lab, "skip_reason": reason}
             else:
                 g = groups[lab]
-                info = {"scale": lab, "factor": s.factor, "length_m": s.length_m, "dx": dx}
+                info = {"scale": scale_lab, "factor": s.factor, "length_m": s.length_m, "dx": dx}
+            if layer_name is not None:
+                info["layers"] = layer_record(layers.get(layer_name), layer_name)
             step = provenance.new_step(
                 "coarsen",
                 case=case,
@@ -235,7 +278,7 @@ def coarsen_case(
             if s is not None:
                 attrs.update(
                     {
-                        "scale": lab,
+                        "scale": scale_lab,
                         "factor": s.factor,
                         "length_m": s.length_m,
                         "patch_size": settings.patch_size if lab in settings.patch_scales else 0,
@@ -244,6 +287,17 @@ def coarsen_case(
                         "variance_convention": "population (M2 / n)",
                     }
                 )
+                if layer_name is not None:
+                    grid = layers[layer_name]
+                    attrs.update(
+                        {
+                            "layers": layer_name,
+                            "vertical_weighting": grid.spec.weighting,
+                            "cloud_fraction_target": grid.spec.target,
+                            "layer_interfaces_m": [float(v) for v in grid.faces],
+                            "patch_size": 0,
+                        }
+                    )
             else:
                 attrs["skipped"] = info["skip_reason"]
             g.attrs.update(provenance.extend(attrs, step, f"coarsened case {case} to {lab}"))
@@ -251,6 +305,21 @@ def coarsen_case(
             written[lab] = Path(outputs[lab])
     canon.close()
     return written
+
+
+def layer_record(grid: LayerGrid | None, name: str) -> dict[str, Any]:
+    """Provenance of a layer store's layers: the set as configured and as resolved."""
+    if grid is None:
+        return {"name": name}
+    rec: dict[str, Any] = {
+        **grid.spec.to_dict(),
+        "interfaces_m": [float(v) for v in grid.faces],
+        "notes": list(grid.notes),
+    }
+    if grid.pressure_faces is not None:
+        rec["interfaces_pa"] = [float(v) for v in grid.pressure_faces]
+        rec["pressure_profile"] = "horizontal mean at the first kept output time"
+    return rec
 
 
 def _label(text: str) -> str:

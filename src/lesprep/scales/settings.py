@@ -9,10 +9,12 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any, Literal
 
 from lesprep import catalogue
 from lesprep.errors import ConfigError
+from lesprep.scales.layers import LayerSetSpec, layer_store_label, parse_layer_sets
 from lesprep.scales.spec import ScaleSpec, parse_scale, parse_scales
 from lesprep.store import StoreSettings
 
@@ -46,6 +48,9 @@ class CoarsenSettings:
         Target chunk size of the scale stores (MiB).
     store
         Compressor settings.
+    layers
+        Target layer sets (:mod:`lesprep.scales.layers`); each scale a set applies to
+        also gets a store on its layers.
     """
 
     scales: tuple[ScaleSpec, ...]
@@ -60,6 +65,7 @@ class CoarsenSettings:
     dtype: Dtype
     chunk_mib: float
     store: StoreSettings
+    layers: tuple[LayerSetSpec, ...] = ()
 
     def __post_init__(self) -> None:
         catalogue.check_names(self.moments, what="coarsen.moments", use="moments")
@@ -82,6 +88,18 @@ class CoarsenSettings:
         """Store labels of the scales, in order."""
         return tuple(s.label for s in self.scales)
 
+    @property
+    def store_labels(self) -> tuple[str, ...]:
+        """Labels of every store a job writes: the scales', then each scale's layer
+        stores (:func:`~lesprep.scales.layers.layer_store_label`)."""
+        layered = [
+            layer_store_label(s.label, g.name)
+            for s in self.scales
+            for g in self.layers
+            if g.applies_to(s.label)
+        ]
+        return (*self.labels, *layered)
+
     def to_dict(self) -> dict[str, Any]:
         """Plain form (job params, provenance); :meth:`from_dict` inverts it."""
         return {
@@ -97,6 +115,7 @@ class CoarsenSettings:
             "dtype": self.dtype,
             "chunk_mib": self.chunk_mib,
             "store": self.store.to_dict(),
+            "layers": [g.to_dict() for g in self.layers],
         }
 
     @classmethod
@@ -115,6 +134,7 @@ class CoarsenSettings:
             dtype=d["dtype"],
             chunk_mib=float(d["chunk_mib"]),
             store=StoreSettings.from_dict(d["store"]),
+            layers=tuple(LayerSetSpec.from_dict(g) for g in d.get("layers", [])),
         )
 
 
@@ -133,6 +153,9 @@ class CoarsenPlan:
     ) -> CoarsenPlan:
         """Parse the validated ``coarsen`` section once."""
         scales = tuple(parse_scales(coarsen["scales"]))
+        layers = parse_layer_sets(
+            coarsen.get("layers", []), [s.label for s in scales], base=Path.cwd()
+        )
         patches = coarsen["patches"]
         patch_scales = tuple(parse_scale(v).label for v in patches["scales"])
         base = CoarsenSettings(
@@ -148,6 +171,7 @@ class CoarsenPlan:
             dtype=dtype,
             chunk_mib=float(coarsen["chunk_mib"]),
             store=store,
+            layers=layers,
         )
         groups = scale_groups(scales, coarsen["groups"])
         return cls(scales=scales, groups=groups, patch_scales=patch_scales, base=base)
@@ -156,6 +180,11 @@ class CoarsenPlan:
     def labels(self) -> tuple[str, ...]:
         """Every scale label, in configured order."""
         return tuple(s.label for s in self.scales)
+
+    @property
+    def store_labels(self) -> tuple[str, ...]:
+        """Every store label: each group's scale stores, then its layer stores."""
+        return tuple(lab for g in self.groups for lab in self.for_group(g).store_labels)
 
     def for_group(self, group: str) -> CoarsenSettings:
         """Settings of one group's jobs: only its scales and the patches of those scales.
@@ -168,6 +197,7 @@ class CoarsenPlan:
             self.base,
             scales=tuple(s for s in self.scales if s.label in labels),
             patch_scales=tuple(lab for lab in self.patch_scales if lab in labels),
+            layers=tuple(g for g in self.base.layers if any(g.applies_to(x) for x in labels)),
         )
 
 

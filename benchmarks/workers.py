@@ -168,6 +168,14 @@ EXTENDED_VARIABLES = {
 covariance pairs on top of the default coarsening."""
 
 
+BENCH_LAYERS = {
+    "name": "lowtrop13",
+    "file": str(Path(__file__).resolve().parents[1] / "resources/layers/lowtrop13.txt"),
+}
+"""``COARSEN_LAYERS=on`` (``--worker-env``): the demo's layer set (13 layers, mass
+weighting) on every scale, for the cost of vertical coarsening."""
+
+
 def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
     """The workflow's settings for the benchmark case, built as the workflow builds them."""
     from lesprep.jobs.settings import WorkflowSettings
@@ -182,6 +190,8 @@ def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
     }
     if os.environ.get("COARSEN_VARIABLES", "default") == "extended":
         coarsen.update(EXTENDED_VARIABLES)
+    if os.environ.get("COARSEN_LAYERS", "off") == "on":
+        coarsen["layers"] = [dict(BENCH_LAYERS)]
     return WorkflowSettings.from_config(
         {
             "cases": "unused.tsv",
@@ -219,8 +229,14 @@ def w_jit_warm() -> dict[str, Any]:
     fine["lwp"] = rng.random(shape[1:])
     settings = _coarsen_settings(["100 m", "200 m", "800 m"], ["800 m"])
     scales = [s.resolve(50.0, 32, 32, case="warm") for s in parse_scales(["100m", "200m", "800m"])]
-    coarse_fields(fine, np.arange(4.0) * 50 + 25, scales, settings)
+    from lesprep.scales.layers import LayerSetSpec, resolve_layers
+
+    spec = LayerSetSpec(name="warm", kind="height", interfaces=(0.0, 70.0, 200.0), source="x")
+    layers = [resolve_layers(spec, np.arange(5.0) * 50)]
+    coarse_fields(fine, np.arange(4.0) * 50 + 25, scales, settings, layers=layers)
     coarse_fields(fine, np.arange(4.0) * 50 + 25, scales, settings, dtype=np.float32)
+    fine32 = {k: v.astype(np.float32) if v.dtype == np.float64 else v for k, v in fine.items()}
+    coarse_fields(fine32, np.arange(4.0) * 50 + 25, scales, settings, layers=layers)
     _warm_ingest_kernels(np)
     return {"time_s": time.perf_counter() - t0}
 
@@ -369,13 +385,9 @@ def w_coarsen(
     """lesprep.scales.coarsen.coarsen_case for every scale of the case in one call."""
     import_lesprep()
     from lesprep.scales.coarsen import coarsen_case
-    from lesprep.scales.spec import parse_scale
 
     settings = _coarsen_settings(scales, patch_scales)
-    outputs = {
-        parse_scale(s).label: str(Path(outdir) / f"scale-{parse_scale(s).label}.zarr")
-        for s in scales
-    }
+    outputs = {lab: str(Path(outdir) / f"scale-{lab}.zarr") for lab in settings.store_labels}
     for p in outputs.values():
         remove(p)
     Path(outdir).mkdir(parents=True, exist_ok=True)

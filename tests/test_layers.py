@@ -4,6 +4,7 @@ computations, xarray's own coarsen, the hypsometric equation and conservation.""
 from __future__ import annotations
 
 import logging
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -21,12 +22,13 @@ from lesprep.scales.layers import (
 from lesprep.scales.spec import Scale
 from lesprep.scales.step import coarse_fields
 from lesprep.scales.vertical import dry_density_means
-from settings_helpers import coarsen_settings
+from settings_helpers import coarsen_settings, workflow_settings
 
 SETTINGS = coarsen_settings(
     scales=(), moments=("qc", "w", "qv", "T", "qt"), covariances=(("w", "qt"),)
 )
 DX = 50.0
+DEMO_LAYERS = Path(__file__).resolve().parents[1] / "resources/layers/lowtrop13.txt"
 
 
 def scale(f: int) -> Scale:
@@ -278,19 +280,34 @@ def test_clipping_is_named_and_dropped_layers_listed(caplog):
         resolve_layers(layer_set([500.0, 600.0]), faces)
 
 
+def parse(entries, scales=("1 km",)):
+    """Layer sets parsed the way the workflow parses them (schema defaults filled)."""
+    return workflow_settings(
+        coarsen={"scales": list(scales), "layers": entries}
+    ).coarsen.base.layers
+
+
 def test_layer_set_validation(tmp_path):
     with pytest.raises(ConfigError, match="not monotonic at 1-2"):
         layer_set([0.0, 100.0, 50.0])
     with pytest.raises(ConfigError, match="mixes heights and pressures"):
-        parse_layer_sets([{"name": "a", "interfaces": ["0 m", "900 hPa"]}], [], base=tmp_path)
+        parse([{"name": "a", "interfaces": ["0 m", "900 hPa"]}])
     with pytest.raises(ConfigError, match="has no units"):
         parse_layer_sets([{"name": "a", "interfaces": [0, 100]}], [], base=tmp_path)
     with pytest.raises(ConfigError, match=r"not in coarsen\.scales"):
-        entry = {"name": "a", "interfaces": ["0 m", "1 km"], "scales": ["2 km"]}
-        parse_layer_sets([entry], ["1000m"], base=tmp_path)
+        parse([{"name": "a", "interfaces": ["0 m", "1 km"], "scales": ["2 km"]}])
+    with pytest.raises(ConfigError, match="either `interfaces` or `file`"):
+        parse([{"name": "a"}])
+    with pytest.raises(ConfigError, match="weighting"):
+        parse([{"name": "a", "interfaces": ["0 m", "1 km"], "weighting": "volume"}])
     f = tmp_path / "low.txt"
     f.write_text("# interfaces\n1000 hPa\n950 hPa  # cloud base\n\n850 hPa\n")
-    (spec,) = parse_layer_sets([{"name": "low", "file": "low.txt"}], [], base=tmp_path)
+    (spec,) = parse([{"name": "low", "file": str(f)}])
     assert spec.kind == "pressure" and spec.interfaces == (1.0e5, 9.5e4, 8.5e4)
+    assert (spec.weighting, spec.target, spec.scales) == ("mass", "volume", ())  # defaults
     with pytest.raises(ConfigError, match="cannot read the layer file"):
-        parse_layer_sets([{"name": "b", "file": "missing.txt"}], [], base=tmp_path)
+        parse([{"name": "b", "file": str(tmp_path / "missing.txt")}])
+    demo = workflow_settings(
+        coarsen={"scales": ["1 km"], "layers": [{"name": "d", "file": str(DEMO_LAYERS)}]}
+    ).coarsen
+    assert demo.store_labels == ("1000m", "1000m_layers-d")

@@ -37,6 +37,10 @@ def _schema(name: str, schema_dir: Path | None = None) -> dict[str, Any]:
 
 def _fill_defaults(instance: Any, schema: Mapping[str, Any]) -> None:
     """Fill ``default`` values in place, recursing where the parent exists."""
+    if isinstance(instance, list) and isinstance(schema.get("items"), Mapping):
+        for item in instance:  # objects in a list (e.g. coarsen.layers) get theirs too
+            _fill_defaults(item, schema["items"])
+        return
     if not isinstance(instance, dict):
         return
     for key, sub in schema.get("properties", {}).items():

@@ -236,35 +236,41 @@ WEIGHTING_TEXT = {
 
 
 def layer_attrs(name: str, attrs: Mapping[str, str], weighting: str, target: str) -> dict[str, str]:
-    """Attributes of a layer-store output from its per-level attributes: the cell methods
-    say the horizontal and the weighted vertical statistic (CF 7.3: ``area: z: mean``)."""
+    """Attributes of a 3-D layer-store output from its per-level attributes: the cell
+    methods say the horizontal and the weighted vertical statistic (CF 7.3: ``area: z:
+    mean``, the weighting as non-standardized information in parentheses, CF 7.3.3)."""
     how = WEIGHTING_TEXT[weighting]
     a = dict(attrs)
     if name == "cloud_fraction":
         copy = "cloud_volume_fraction" if target == "volume" else "cloud_area_fraction"
         a = layer_attrs(copy, LAYER_FRACTION_ATTRS[copy], weighting, target)
         a["comment"] = f"the training target: a copy of {copy} (coarsen.layers target)"
+        if "standard_name" not in a:
+            a["long_name"] = a["long_name"].replace("cloud volume fraction", "cloud fraction")
         return a
     if name == "cloud_area_fraction":
         return a  # a projected cover: an area mean of column flags, no vertical weights
     methods = a.get("cell_methods", "")
     if methods == "area: mean":
-        a["cell_methods"] = f"area: z: mean (comment: {how})"
+        a["cell_methods"] = f"area: z: mean ({how})"
     elif methods == "area: variance":
-        a["cell_methods"] = f"area: z: variance (comment: {how}; population)"
+        a["cell_methods"] = f"area: z: variance ({how}; population)"
     if "long_name" in a:
         a["long_name"] = a["long_name"].replace("block mean", "block-and-layer mean")
-    if name not in ("lwp_mean", "lwp_var", "cloud_cover") and "comment" not in a:
+    if "comment" not in a:
         a["comment"] = f"statistic over the whole 3-D cell (block x layer), {how}"
     return a
 
 
 LAYER_FRACTION_ATTRS: dict[str, dict[str, str]] = {
     "cloud_volume_fraction": {
-        "standard_name": "cloud_volume_fraction_in_atmosphere_layer",
-        "long_name": "cloudy fine cells' share of the weight of the block and layer",
+        "long_name": "cloud volume fraction: cloudy fine cells' share of the weight of the "
+        "block and layer",
         "units": "1",
         "cell_methods": "area: mean",
+        "comment": "no standard_name: the CF standard name table (v93) has none for a "
+        "volume fraction of cloud (cloud_area_fraction_in_atmosphere_layer is the projected "
+        "cover, stored as cloud_area_fraction)",
     },
     "cloud_area_fraction": {
         "standard_name": "cloud_area_fraction_in_atmosphere_layer",
@@ -290,7 +296,7 @@ def layer_layout(
     spec = grid.spec
     out = scale_layout(canon, s, sample, settings, threshold, 1)
     for name, a in list(out.items()):
-        if name in sample:
+        if name in sample and "z" in a.dims:  # column quantities keep their attributes
             attrs = layer_attrs(name, a.attrs, spec.weighting, spec.target)
             out[name] = replace(a, attrs=attrs)
     zattrs = dict(canon.z.attrs)

@@ -238,7 +238,7 @@ def parse_layer_sets(
             raise ConfigError(
                 f"coarsen.layers {name!r} ({source}) mixes heights and pressures; expected one kind"
             )
-        scales = tuple(parse_scale(v).label for v in e.get("scales", []))
+        scales = tuple(parse_scale(v).label for v in e["scales"])
         unknown = [s for s in scales if s not in scale_labels]
         if unknown:
             raise ConfigError(
@@ -251,9 +251,9 @@ def parse_layer_sets(
                 kind=kinds.pop() if kinds else "height",
                 interfaces=tuple(v for _, v in parsed),
                 source=source,
-                weighting=e.get("weighting", "mass"),
+                weighting=e["weighting"],
                 scales=scales,
-                target=e.get("target", "volume"),
+                target=e["target"],
             )
         )
     names = [s.name for s in out]

@@ -153,9 +153,7 @@ class CoarsenPlan:
     ) -> CoarsenPlan:
         """Parse the validated ``coarsen`` section once."""
         scales = tuple(parse_scales(coarsen["scales"]))
-        layers = parse_layer_sets(
-            coarsen.get("layers", []), [s.label for s in scales], base=Path.cwd()
-        )
+        layers = parse_layer_sets(coarsen["layers"], [s.label for s in scales], base=Path.cwd())
         patches = coarsen["patches"]
         patch_scales = tuple(parse_scale(v).label for v in patches["scales"])
         base = CoarsenSettings(

@@ -441,13 +441,6 @@ class LayerStatistics:
             return np.where(W > 0, CC / W, 0.0)
 
 
-def layer_centre_derivative(values: np.ndarray, grid: LayerGrid) -> np.ndarray:
-    """d(values)/dz between layer centres on the stretched layer grid (axis 0)."""
-    from lesprep.scales.step import vertical_derivative
-
-    return vertical_derivative(values, grid.centres, axis=0)
-
-
 def projected_cover_update(cover: np.ndarray, mask: np.ndarray, z0: int, grid: LayerGrid) -> None:
     """OR each fine level's cloud mask into the fine-column flags of the layers it
     overlaps: ``cover[l, y, x]`` is 1 when any fine level overlapping layer ``l`` is

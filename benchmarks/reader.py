@@ -44,8 +44,18 @@ import numpy as np
 from helpers import HERE, MIB, dir_bytes, status_kib, warm
 
 FEATURES = (
-    "qt_mean", "qt_var", "qt_skew", "theta_l_mean", "theta_l_var", "w_mean",
-    "w_var", "w_skew", "qc_mean", "qc_var", "rh_mean", "p_mean",
+    "qt_mean",
+    "qt_var",
+    "qt_skew",
+    "theta_l_mean",
+    "theta_l_var",
+    "w_mean",
+    "w_var",
+    "w_skew",
+    "qc_mean",
+    "qc_var",
+    "rh_mean",
+    "p_mean",
 )
 PATCHES = ("qc_patch", "w_patch")
 TARGET = "cloud_fraction"
@@ -92,10 +102,14 @@ def write_set(
             shape, chunks, dims = (n, patch, patch), (chunk, patch, patch), ["sample", "py", "px"]
         label = name in ("case", "regime")
         arrays[name] = root.create_array(
-            name, shape=shape, chunks=chunks,
+            name,
+            shape=shape,
+            chunks=chunks,
             shards=None if shard is None else (shard, *chunks[1:]),
             dtype=str if label else ("float64" if name in COORDS else "float32"),
-            compressors=codecs, fill_value="" if label else 0.0, dimension_names=dims,
+            compressors=codecs,
+            fill_value="" if label else 0.0,
+            dimension_names=dims,
             chunk_key_encoding=CHUNK_KEYS,
         )
         if name not in COORDS:
@@ -126,15 +140,24 @@ def write_set(
         data["z"] = 100.0 * ((local // 1024) % 40)
         data["time"] = 600.0 * (local // 40960)
         if lo == 0:  # statistics of the first block stand in for the train statistics
-            stats = {k: [float(np.mean(v)), float(np.std(v))] for k, v in data.items()
-                     if k in (*FEATURES, TARGET, *PATCHES)}
+            stats = {
+                k: [float(np.mean(v)), float(np.std(v))]
+                for k, v in data.items()
+                if k in (*FEATURES, TARGET, *PATCHES)
+            }
         with ThreadPoolExecutor(2) as pool:
-            for f in [pool.submit(arrays[k].__setitem__, slice(lo, hi), v)
-                      for k, v in data.items()]:
+            for f in [
+                pool.submit(arrays[k].__setitem__, slice(lo, hi), v) for k, v in data.items()
+            ]:
                 f.result()
     doc = {"statistics": {k: {"mean": mu, "std": sd, "count": 0} for k, (mu, sd) in stats.items()}}
-    root.attrs.update({"sample_labels": ["case", "regime"], "normalization": json.dumps(doc),
-                       "sample_order": "case, time, z, y, x"})
+    root.attrs.update(
+        {
+            "sample_labels": ["case", "regime"],
+            "normalization": json.dumps(doc),
+            "sample_order": "case, time, z, y, x",
+        }
+    )
     consolidate(path)
     return {"samples": n, "chunks": lengths, "shard": shard}
 
@@ -148,17 +171,30 @@ def payload_bytes(n: int, patch: int) -> int:
 
 
 def _result(t: float, n: int, batches: int, params: dict, **extra: Any) -> dict:
-    return {"seconds": t, "samples": n, "batches": batches,
-            "samples_per_s": n / t, "gbps": payload_bytes(n, params["patch"]) / t / 1e9,
-            "vmhwm_mib": status_kib("VmHWM") / 1024, **extra}
+    return {
+        "seconds": t,
+        "samples": n,
+        "batches": batches,
+        "samples_per_s": n / t,
+        "gbps": payload_bytes(n, params["patch"]) / t / 1e9,
+        "vmhwm_mib": status_kib("VmHWM") / 1024,
+        **extra,
+    }
 
 
 def w_reader(p: dict) -> dict:
     from lesprep.sets.batches import BatchReader
 
-    r = BatchReader(p["store"], features=FEATURES, patches=PATCHES, target=TARGET,
-                    batch_size=p["batch"], seed=1, buffer_units=p["buffer_units"],
-                    read_threads=p.get("threads", 2))
+    r = BatchReader(
+        p["store"],
+        features=FEATURES,
+        patches=PATCHES,
+        target=TARGET,
+        batch_size=p["batch"],
+        seed=1,
+        buffer_units=p["buffer_units"],
+        read_threads=p.get("threads", 2),
+    )
     per_case = math.ceil(r.n_samples / CASES)  # the synthetic cases (not read: memory)
     t0 = time.perf_counter()
     n, nb = 0, 0
@@ -170,8 +206,15 @@ def w_reader(p: dict) -> dict:
         units.append(np.unique(ids // r.unit).size)
         cases.append(np.unique(ids // per_case).size)
     t = time.perf_counter() - t0
-    return _result(t, n, nb, p, unit=r.unit, distinct_units=float(np.mean(units)),
-                   distinct_cases=float(np.mean(cases)))
+    return _result(
+        t,
+        n,
+        nb,
+        p,
+        unit=r.unit,
+        distinct_units=float(np.mean(units)),
+        distinct_cases=float(np.mean(cases)),
+    )
 
 
 def _permutation_batches(n: int, batch: int, seed: int = 1) -> list[np.ndarray]:
@@ -212,8 +255,10 @@ def w_oindex(p: dict) -> dict:
     t0 = time.perf_counter()
     for idx in batches[:k]:
         s = np.sort(idx)
-        out = {v: a.get_orthogonal_selection((s, *[slice(None)] * (a.ndim - 1)))
-               for v, a in arrays.items()}
+        out = {
+            v: a.get_orthogonal_selection((s, *[slice(None)] * (a.ndim - 1)))
+            for v, a in arrays.items()
+        }
         _ = out["qc_patch"][0, 0, 0]
     t = time.perf_counter() - t0
     scale = len(batches) / k
@@ -254,20 +299,33 @@ def w_full_permutation(p: dict) -> dict:
     per_case = math.ceil(n / CASES)
     unit = max((root[v].shards or root[v].chunks)[0] for v in [*FEATURES, *PATCHES])
     batches = _permutation_batches(n, p["batch"])
-    return {"distinct_units": float(np.mean([np.unique(b // unit).size for b in batches])),
-            "distinct_cases": float(np.mean([np.unique(b // per_case).size for b in batches])),
-            "unit": unit}
+    return {
+        "distinct_units": float(np.mean([np.unique(b // unit).size for b in batches])),
+        "distinct_cases": float(np.mean([np.unique(b // per_case).size for b in batches])),
+        "unit": unit,
+    }
 
 
-WORKERS = {"reader": w_reader, "xarray": w_xarray, "oindex": w_oindex, "floor": w_floor,
-           "permutation": w_full_permutation}
+WORKERS = {
+    "reader": w_reader,
+    "xarray": w_xarray,
+    "oindex": w_oindex,
+    "floor": w_floor,
+    "permutation": w_full_permutation,
+}
 
 
 def run_worker(name: str, params: dict) -> dict:
     """Run one measured step in a fresh interpreter; its JSON result."""
     warm([params["store"]])
-    cmd = [sys.executable, str(Path(__file__).resolve()), "--worker", name,
-           "--params", json.dumps(params)]
+    cmd = [
+        sys.executable,
+        str(Path(__file__).resolve()),
+        "--worker",
+        name,
+        "--params",
+        json.dumps(params),
+    ]
     res = subprocess.run(cmd, capture_output=True, text=True, env=os.environ.copy())
     if res.returncode != 0:
         raise RuntimeError(f"worker {name} failed:\n{res.stderr[-3000:]}")
@@ -282,11 +340,19 @@ def main() -> int:
     ap.add_argument("--quick", action="store_true", help="131,072 samples")
     ap.add_argument("--samples", type=int, help="samples of the set (default 2**20)")
     ap.add_argument("--patch", type=int, default=16)
-    ap.add_argument("--chunk-mib", type=float, default=8.0,
-                    help="target chunk MiB of the widest array (the set default, 8)")
-    ap.add_argument("--layout", choices=("assembly", "widest"), default="assembly",
-                    help="assembly: the set assembly's default layout; widest: --chunk-mib "
-                    "of the widest array, --shard-chunks chunks per shard")
+    ap.add_argument(
+        "--chunk-mib",
+        type=float,
+        default=8.0,
+        help="target chunk MiB of the widest array (the set default, 8)",
+    )
+    ap.add_argument(
+        "--layout",
+        choices=("assembly", "widest"),
+        default="assembly",
+        help="assembly: the set assembly's default layout; widest: --chunk-mib "
+        "of the widest array, --shard-chunks chunks per shard",
+    )
     ap.add_argument("--shard-chunks", type=int, default=1, help="chunks per shard (1: none)")
     ap.add_argument("--batch", type=int, default=256)
     ap.add_argument("--buffers", default="4,16", help="buffer_units of the reader runs")
@@ -307,9 +373,15 @@ def main() -> int:
         if a.layout == "assembly"
         else f"p{a.patch}-c{a.chunk_mib:g}-s{a.shard_chunks}"
     )
-    results: dict[str, Any] = {"samples": n, "patch": a.patch, "batch": a.batch,
-                               "layout": layout, "payload_gb": payload_bytes(n, a.patch) / 1e9,
-                               "targets": TARGETS, "runs": {}}
+    results: dict[str, Any] = {
+        "samples": n,
+        "patch": a.patch,
+        "batch": a.batch,
+        "layout": layout,
+        "payload_gb": payload_bytes(n, a.patch) / 1e9,
+        "targets": TARGETS,
+        "runs": {},
+    }
     sets = {"1x": (a.out / f"set-{n}-{layout}.zarr", n)}
     if not a.no_double:
         sets["2x"] = (a.out / f"set-{2 * n}-{layout}.zarr", 2 * n)
@@ -317,8 +389,14 @@ def main() -> int:
         marker = path / "done.json"
         if not marker.exists():
             t0 = time.perf_counter()
-            info = write_set(path, m, patch=a.patch, chunk_mib=a.chunk_mib,
-                             shard_chunks=a.shard_chunks, layout=a.layout)
+            info = write_set(
+                path,
+                m,
+                patch=a.patch,
+                chunk_mib=a.chunk_mib,
+                shard_chunks=a.shard_chunks,
+                layout=a.layout,
+            )
             info["write_s"] = time.perf_counter() - t0
             info["disk_gb"] = dir_bytes(path) / 1e9
             marker.write_text(json.dumps(info))
@@ -331,21 +409,24 @@ def main() -> int:
     runs["floor 1 thread"] = run_worker("floor", {**base, "threads": 1})
     runs["floor 2 threads"] = run_worker("floor", {**base, "threads": 2})
     runs["zarr oindex"] = run_worker("oindex", {**base, "timed_batches": a.oindex_batches})
-    runs["xarray isel"] = run_worker("xarray", {**base, "timed_batches": a.xr_batches,
-                                                 "dask": True})
-    runs["xarray isel, no dask"] = run_worker("xarray", {**base, "dask": False,
-                                                          "timed_batches": a.xr_batches})
+    runs["xarray isel"] = run_worker(
+        "xarray", {**base, "timed_batches": a.xr_batches, "dask": True}
+    )
+    runs["xarray isel, no dask"] = run_worker(
+        "xarray", {**base, "dask": False, "timed_batches": a.xr_batches}
+    )
     results["full_permutation"] = run_worker("permutation", base)
     if "2x" in sets:
         b0 = int(a.buffers.split(",")[0])
         runs[f"reader b={b0}, 2x set"] = run_worker(
-            "reader", {**base, "store": str(sets["2x"][0]), "buffer_units": b0})
+            "reader", {**base, "store": str(sets["2x"][0]), "buffer_units": b0}
+        )
     reader_keys = [k for k in runs if k.startswith("reader b=") and "2x" not in k]
     best = max(runs[k]["samples_per_s"] for k in reader_keys)
     floor = max(runs["floor 1 thread"]["samples_per_s"], runs["floor 2 threads"]["samples_per_s"])
     results["ratios"] = {
-        "reader_over_xarray": best / max(runs["xarray isel"]["samples_per_s"],
-                                         runs["xarray isel, no dask"]["samples_per_s"]),
+        "reader_over_xarray": best
+        / max(runs["xarray isel"]["samples_per_s"], runs["xarray isel, no dask"]["samples_per_s"]),
         "reader_over_oindex": best / runs["zarr oindex"]["samples_per_s"],
         "reader_over_floor": best / floor,
     }
@@ -353,19 +434,37 @@ def main() -> int:
         one = runs[reader_keys[0]]["vmhwm_mib"]
         two = runs[f"reader b={b0}, 2x set"]["vmhwm_mib"]
         results["ratios"]["memory_growth_2x"] = two / one - 1
-    print(f"\nset: {n} samples, {results['payload_gb']:.2f} GB of feature/target/patch "
-          f"arrays ({results['store_1x']['disk_gb']:.2f} GB on disk), layout {layout}, unit "
-          f"{runs[reader_keys[0]]['unit']} samples, batch {a.batch}")
+    print(
+        f"\nset: {n} samples, {results['payload_gb']:.2f} GB of feature/target/patch "
+        f"arrays ({results['store_1x']['disk_gb']:.2f} GB on disk), layout {layout}, unit "
+        f"{runs[reader_keys[0]]['unit']} samples, batch {a.batch}"
+    )
     rows = []
     for k, r in runs.items():
         note = f"{r['timed_batches']} batches timed" if "timed_batches" in r else ""
         if "distinct_units" in r:
             note = f"units/batch {r['distinct_units']:.1f}, cases/batch {r['distinct_cases']:.2f}"
-        rows.append([k, f"{r['seconds']:.1f}", f"{r['samples_per_s']:,.0f}",
-                     f"{r['gbps']:.3f}", f"{r['vmhwm_mib']:.0f}", note])
+        rows.append(
+            [
+                k,
+                f"{r['seconds']:.1f}",
+                f"{r['samples_per_s']:,.0f}",
+                f"{r['gbps']:.3f}",
+                f"{r['vmhwm_mib']:.0f}",
+                note,
+            ]
+        )
     fp = results["full_permutation"]
-    rows.append(["full permutation", "", "", "", "",
-                 f"units/batch {fp['distinct_units']:.1f}, cases/batch {fp['distinct_cases']:.2f}"])
+    rows.append(
+        [
+            "full permutation",
+            "",
+            "",
+            "",
+            "",
+            f"units/batch {fp['distinct_units']:.1f}, cases/batch {fp['distinct_cases']:.2f}",
+        ]
+    )
     head = ["method", "epoch s", "samples/s", "GB/s", "VmHWM MiB", "note"]
     widths = [max(len(str(r[i])) for r in [head, *rows]) for i in range(len(head))]
     for r in [head, ["-" * w for w in widths], *rows]:

@@ -176,8 +176,11 @@ def np_dry_density_means(p: np.ndarray, t: np.ndarray, r: np.ndarray, f: int) ->
 # --------------------------------------------------------------------------------------
 
 if HAVE_NUMBA:
+    # The updates below are the pairwise formulas of the module docstring with one
+    # division per merge: r = W_B / W, W_A / W = 1 - r, W_A W_B / W = W_A r and
+    # (W_A - W_B) / W = 1 - 2 r. Weights are positive (densities, thicknesses), so W > 0.
 
-    @njit(parallel=True, cache=True)
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_layer_merge(  # pragma: no cover - compiled
         mean, m2, m3, wlev, ov, first, stop, inv_n, W, M, M2, M3, order
     ):
@@ -191,27 +194,50 @@ if HAVE_NUMBA:
                     o = ov[i, lay]
                     if o <= 0.0:
                         continue
-                    for c in range(c0, c1):
-                        wb = o * wlev[i, c]
-                        wa = W[lay, c]
-                        w = wa + wb
-                        if w <= 0.0:
-                            continue
-                        d = mean[i, c] - M[lay, c]
-                        M[lay, c] += d * wb / w
-                        if order == 3:
-                            m2b = m2[i, c] * wb * inv_n
-                            m3b = m3[i, c] * wb * inv_n
-                            m2a = M2[lay, c]
-                            M3[lay, c] += (
-                                m3b
-                                + d * d * d * wa * wb * (wa - wb) / (w * w)
-                                + 3.0 * d * (wa * m2b - wb * m2a) / w
-                            )
-                            M2[lay, c] = m2a + m2b + d * d * wa * wb / w
-                        W[lay, c] = w
+                    if order == 3:
+                        _merge3(
+                            mean[i, c0:c1],
+                            m2[i, c0:c1],
+                            m3[i, c0:c1],
+                            wlev[i, c0:c1],
+                            o,
+                            inv_n,
+                            W[lay, c0:c1],
+                            M[lay, c0:c1],
+                            M2[lay, c0:c1],
+                            M3[lay, c0:c1],
+                        )
+                    else:
+                        _merge1(mean[i, c0:c1], wlev[i, c0:c1], o, W[lay, c0:c1], M[lay, c0:c1])
 
-    @njit(parallel=True, cache=True)
+    @njit(inline="always", fastmath=False, error_model="numpy")
+    def _merge3(mean, m2, m3, wlev, o, inv_n, W, M, M2, M3):  # pragma: no cover - compiled
+        for c in range(mean.size):
+            wb = o * wlev[c]
+            wa = W[c]
+            r = wb / (wa + wb)
+            d = mean[c] - M[c]
+            m2b = m2[c] * wb * inv_n
+            m2a = M2[c]
+            war = wa * r
+            M3[c] += (
+                m3[c] * wb * inv_n
+                + d * d * d * war * (1.0 - 2.0 * r)
+                + 3.0 * d * ((1.0 - r) * m2b - r * m2a)
+            )
+            M2[c] = m2a + m2b + d * d * war
+            M[c] += d * r
+            W[c] = wa + wb
+
+    @njit(inline="always", fastmath=False, error_model="numpy")
+    def _merge1(mean, wlev, o, W, M):  # pragma: no cover - compiled
+        for c in range(mean.size):
+            wb = o * wlev[c]
+            wa = W[c]
+            M[c] += (mean[c] - M[c]) * (wb / (wa + wb))
+            W[c] = wa + wb
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_layer_comerge(  # pragma: no cover - compiled
         mx, my, cs, wlev, ov, first, stop, inv_n, W, MX, MY, CC
     ):
@@ -225,22 +251,37 @@ if HAVE_NUMBA:
                     o = ov[i, lay]
                     if o <= 0.0:
                         continue
-                    for c in range(c0, c1):
-                        wb = o * wlev[i, c]
-                        wa = W[lay, c]
-                        w = wa + wb
-                        if w <= 0.0:
-                            continue
-                        dx = mx[i, c] - MX[lay, c]
-                        dy = my[i, c] - MY[lay, c]
-                        CC[lay, c] += cs[i, c] * wb * inv_n + dx * dy * wa * wb / w
-                        MX[lay, c] += dx * wb / w
-                        MY[lay, c] += dy * wb / w
-                        W[lay, c] = w
+                    _comerge(
+                        mx[i, c0:c1],
+                        my[i, c0:c1],
+                        cs[i, c0:c1],
+                        wlev[i, c0:c1],
+                        o,
+                        inv_n,
+                        W[lay, c0:c1],
+                        MX[lay, c0:c1],
+                        MY[lay, c0:c1],
+                        CC[lay, c0:c1],
+                    )
 
-    @njit(parallel=True, cache=True)
+    @njit(inline="always", fastmath=False, error_model="numpy")
+    def _comerge(mx, my, cs, wlev, o, inv_n, W, MX, MY, CC):  # pragma: no cover - compiled
+        for c in range(mx.size):
+            wb = o * wlev[c]
+            wa = W[c]
+            r = wb / (wa + wb)
+            dx = mx[c] - MX[c]
+            dy = my[c] - MY[c]
+            CC[c] += cs[c] * wb * inv_n + dx * dy * wa * r
+            MX[c] += dx * r
+            MY[c] += dy * r
+            W[c] = wa + wb
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_dry_density_means(p, t, r, f, eps, rd, out):  # pragma: no cover - compiled
-        # p is (k, ny, nx) or (k, 1, 1) (a profile); one block row per task
+        # p is (k, ny, nx) or (k, 1, 1) (a profile); one block row per task. Each fine
+        # row is turned into densities in a contiguous (vectorisable) pass, then summed
+        # into the blocks in the order of the fine cells.
         k, ny, nx = t.shape
         by, bx = ny // f, nx // f
         prof = p.shape[1] == 1
@@ -248,14 +289,23 @@ if HAVE_NUMBA:
         for task in prange(k * by):
             i = task // by
             jb = task % by
-            for ib in range(bx):
-                s = 0.0
-                for jj in range(jb * f, jb * f + f):
+            row = np.empty(nx)
+            acc = np.zeros(bx)
+            for jj in range(jb * f, jb * f + f):
+                if prof:
+                    pv = p[i, 0, 0] * eps / rd
+                    for ii in range(nx):
+                        row[ii] = pv / ((eps + r[i, jj, ii]) * t[i, jj, ii])
+                else:
+                    for ii in range(nx):
+                        row[ii] = p[i, jj, ii] * eps / ((eps + r[i, jj, ii]) * rd * t[i, jj, ii])
+                for ib in range(bx):
+                    s = 0.0
                     for ii in range(ib * f, ib * f + f):
-                        pv = p[i, 0, 0] if prof else p[i, jj, ii]
-                        rv = r[i, jj, ii]
-                        s += pv * eps / ((eps + rv) * rd * t[i, jj, ii])
-                out[i, jb, ib] = s * inv
+                        s += row[ii]
+                    acc[ib] += s
+            for ib in range(bx):
+                out[i, jb, ib] = acc[ib] * inv
 
 
 def dry_density_means(

@@ -11,9 +11,9 @@ from __future__ import annotations
 
 import logging
 import threading
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -42,7 +42,7 @@ from lesprep.raw.grid import (
     layer_thickness,
     vertical_faces,
 )
-from lesprep.raw.timeaxis import cf_time_attrs
+from lesprep.raw.timeaxis import cf_time_attrs, check_intervals
 from lesprep.raw.varmap import VariableMap, load_varmap
 from lesprep.store import (
     CONVENTIONS,
@@ -54,6 +54,9 @@ from lesprep.store import (
     create_store,
 )
 from lesprep.units import Conversion, conversion
+
+if TYPE_CHECKING:
+    from lesprep.segments.plan import Segment
 
 log = logging.getLogger(__name__)
 
@@ -116,6 +119,24 @@ def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
         )
     tol = 1e-6 * max(1.0, abs(t1))
     return np.nonzero(times >= t0 + spinup_s - tol)[0]
+
+
+def segment_indices(times: np.ndarray, segment: Segment, *, case: str, file: str) -> np.ndarray:
+    """Indices in ``times`` of a segment's output times (each must be there)."""
+    want = np.asarray(segment.times, dtype=np.float64)
+    tol = 1e-6 * max(1.0, float(np.abs(times).max()))
+    idx = np.searchsorted(times, want - tol)
+    ok = (idx < times.size) & (np.abs(times[np.minimum(idx, times.size - 1)] - want) <= tol)
+    if not np.all(ok):
+        missing = want[~ok][:5].tolist()
+        raise TimeAxisError(
+            f"segment {segment.name} expects output times {missing} s, which its files do "
+            "not hold (the archive changed after the workflow was planned)",
+            case=case,
+            file=file or None,
+            hint="run the workflow again: it plans the segments from the current files",
+        )
+    return idx
 
 
 @dataclass
@@ -532,6 +553,7 @@ def ingest_case(
     out: str | Path,
     regime: str = "",
     config_record: dict[str, Any] | None = None,
+    segment: Segment | None = None,
 ) -> Path:
     """Ingest one case's raw archive into ``out`` (a canonical Zarr store).
 
@@ -551,6 +573,11 @@ def ingest_case(
         Regime tag (recorded in attrs).
     config_record
         What the job was given (its params), recorded and hashed into provenance.
+    segment
+        Ingest only this time segment of the case (:mod:`lesprep.segments.plan`); ``raw``
+        then lists the segment's files. The first-time decisions (which fields get a
+        deviation field) are taken at the case's first kept time, as in a whole-case run,
+        and the time axis was checked over the whole archive when the plan was made.
 
     Returns
     -------
@@ -576,19 +603,35 @@ def ingest_case(
         files,
         vm,
         case=case,
-        time_gaps=settings.time_gaps,
+        # a segment's files skip the times between the case's first file and the segment
+        time_gaps=settings.time_gaps if segment is None else "warn",
         duplicate_times=settings.duplicate_times,
         restart_order=settings.restart_order,
     )
     try:
+        if segment is not None:
+            cat.warnings[:] = [
+                n
+                for n in cat.warnings
+                if cat.time_report is None or not n.endswith(cat.time_report.describe())
+            ]
+            cat.time_report = check_intervals(segment.times) if len(segment.times) > 1 else None
         for note in cat.warnings:
             log.warning("%s", note)
         dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
         faces = vertical_faces(
             cat.grid.z, z_face=cat.grid.z_face, z_bounds=cat.grid.z_bounds, case=case
         )
-        keep = kept_times(cat.times, settings.spinup_s, case=case)
-        dropped = [float(t) for t in np.delete(cat.times, keep)]
+        if segment is None:
+            keep = kept_times(cat.times, settings.spinup_s, case=case)
+            dropped = [float(t) for t in np.delete(cat.times, keep)]
+            decide = keep
+        else:
+            keep = segment_indices(cat.times, segment, case=case, file=str(files[0]))
+            decide = segment_indices(
+                cat.times, replace(segment, times=(segment.first_kept,)), case=case, file=""
+            )
+            dropped = [] if segment.index else [float(t) for t in cat.times[: decide[0]]]
         p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
         conversions = _ConversionLog()
         clipped = _ClipLog(case=case)
@@ -605,9 +648,13 @@ def ingest_case(
                 deviations=deviations,
             )
 
+        n_clipped = len(clipped.records)
         first, deviations, quantized = first_step(
-            cat, keep, step_fields, clipped, mapped_names(cat.varmap)
+            cat, decide, step_fields, clipped, mapped_names(cat.varmap)
         )
+        if decide[0] != keep[0]:  # a later segment: decided at the case's first kept time
+            first = step_fields(int(keep[0]), deviations)
+            del clipped.records[n_clipped:]
         units = {c.variable: c.to_units for c in conversions.items.values()}
         layout = _layout(cat, keep, faces, settings, p_profile, units)
         layout.update(deviation_layout(deviations, keep.size, layout, dtype))
@@ -672,6 +719,9 @@ def ingest_case(
                 restart_overlaps=cat.overlaps,
                 negatives_clipped=clipped.records,
                 time_origin=cat.origin,
+                segment=None
+                if segment is None
+                else {k: v for k, v in segment.to_dict().items() if k != "files"},
                 settings=settings.to_dict(),
                 saturation_formula=thermo.SATURATION_FORMULA,
                 config_sha256=None

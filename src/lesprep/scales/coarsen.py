@@ -44,6 +44,7 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ScaleError
+from lesprep.progress import StepProgress
 from lesprep.scales.cflayout import scale_layout
 from lesprep.scales.patches import patch_geometry
 from lesprep.scales.reader import FineReader
@@ -159,6 +160,9 @@ def coarsen_case(
                 surface=reader.surface,
             )
             last = reader.bounds[-1][0]
+            progress = StepProgress(
+                f"coarsen {case}", reader.ntimes, reader.time_step_bytes, logger=log
+            )
             rows: list[tuple[int, str, int, dict[str, np.ndarray]]] = []
             for j, z0, slab in reader.slabs():
                 if z0 == 0:
@@ -182,6 +186,7 @@ def coarsen_case(
                 fields = step.finish(reader.lwp(j), reader.surface_fields(j))
                 for s in scales:
                     writers[s.label].add(j, fields.pop(s.label))
+                progress.done(j)
             quantized = {
                 v: {"blocks": n, "of": step.blocks[v], "scale": scales[0].label}
                 for v, n in step.quantized.items()

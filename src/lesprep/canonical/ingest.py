@@ -27,6 +27,7 @@ from lesprep.canonical.nearconstant import (
 )
 from lesprep.canonical.settings import IngestSettings
 from lesprep.errors import TimeAxisError, UnitError
+from lesprep.progress import StepProgress
 from lesprep.raw.archive import ArchiveIndex, index_archive, read_field, resolve_files
 from lesprep.raw.checks import (
     check_finite,
@@ -649,6 +650,7 @@ def ingest_case(
             )
 
         n_clipped = len(clipped.records)
+        progress = StepProgress(f"ingest {case}", int(keep.size), cat.time_step_bytes(), logger=log)
         first, deviations, quantized = first_step(
             cat, decide, step_fields, clipped, mapped_names(cat.varmap)
         )
@@ -679,6 +681,7 @@ def ingest_case(
                 del fields
                 writer.add(j, step)
                 del step
+                progress.done(j)
             writer.flush()
             raw_records = hashes.result()
             conv_records = conversions.records()

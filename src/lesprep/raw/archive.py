@@ -59,6 +59,7 @@ class RawVariable:
         self.dims: tuple[str, ...] = tuple(var.dimensions)
         self.attrs: dict[str, Any] = {k: var.getncattr(k) for k in var.ncattrs()}
         self.shape: tuple[int, ...] = tuple(var.shape)
+        self.itemsize: int = np.dtype(var.dtype).itemsize
 
     def _threaded(self, index: dict[str, int] | None) -> np.ndarray | None:
         """Values through :mod:`lesprep.raw.chunks` when the variable is deflate-compressed
@@ -326,6 +327,23 @@ class ArchiveIndex:
         ds = open_raw(path, case=self.case)
         self._open = (path, ds)
         return ds
+
+    def time_step_bytes(self) -> int:
+        """Uncompressed bytes of the raw values read for one output time.
+
+        Every mapped variable at one time (a variable without a time axis whole, as it is
+        read again at every time), in the type stored in the file (a packed int16 field
+        counts 2 bytes a value), taken from the first file that holds it. The input of an
+        ingest's time step, for its progress lines (:mod:`lesprep.progress`).
+        """
+        time_dim = self.varmap.raw_dim("time")
+        total = 0
+        for name, spec in self.varmap.variables.items():
+            path = self.files[self.where[name][0][0]]
+            var = self.raw_file(path).variables[spec.raw]
+            sizes = [n for d, n in zip(var.dims, var.shape, strict=True) if d != time_dim]
+            total += int(np.prod(sizes)) * var.itemsize
+        return total
 
     def close(self) -> None:
         """Close the raw file kept open by :meth:`raw_file`."""

@@ -44,6 +44,7 @@ import zarr
 from lesprep import provenance
 from lesprep._memory import retain_freed_memory
 from lesprep.errors import ScaleError
+from lesprep.progress import StepProgress
 from lesprep.scales.cflayout import layer_layout, scale_layout
 from lesprep.scales.layers import LayerGrid, resolve_layers, split_store_label
 from lesprep.scales.patches import patch_geometry
@@ -196,6 +197,9 @@ def coarsen_case(
                 layers=list({g.spec.name: g for _, g in layer_of.values()}.values()),
             )
             last = reader.bounds[-1][0]
+            progress = StepProgress(
+                f"coarsen {case}", reader.ntimes, reader.time_step_bytes, logger=log
+            )
             rows: list[tuple[int, str, int, dict[str, np.ndarray]]] = []
             for j, z0, slab in reader.slabs():
                 if z0 == 0:
@@ -221,6 +225,7 @@ def coarsen_case(
                     if lab in writers:  # a layer store not asked for is not written
                         writers[lab].add(j, part)
                 del fields
+                progress.done(j)
             quantized = {
                 v: {"blocks": n, "of": step.blocks[v], "scale": scales[0].label}
                 for v, n in step.quantized.items()

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import math
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
@@ -51,6 +52,12 @@ class FineReader:
             if f"{v}_dev" in self.group:  # a near-constant field's deviation and reference
                 names += [f"{v}_dev", f"{v}_ref"]
         self.names = tuple(names)
+        self.time_step_bytes = sum(
+            math.prod(self.group[n].shape[1:]) * self.group[n].dtype.itemsize
+            for n in (*self.names, *self.surface, "lwp")
+        )
+        """Uncompressed bytes read per output time: every slab input over the whole
+        column, the surface fields and the liquid water path, in their stored dtypes."""
         self.bounds = slab_bounds(self.nz, self.levels)
         self._io = ThreadPoolExecutor(max_workers=len(self.names))
         self._ahead = ThreadPoolExecutor(max_workers=1)

@@ -38,6 +38,7 @@ def base_config() -> dict[str, Any]:
         },
         "splits": {"seed": 3, "fractions": {"train": 0.5, "validation": 0.0, "test": 0.5}},
         "sets": {"shuffle": True, "shuffle_seed": 1, "chunk_mib": 1},
+        "segments": {"settle_s": 0},  # archives are copied just before a run
     }
 
 

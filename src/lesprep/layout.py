@@ -7,6 +7,9 @@ written down once::
     <root>/cases/<case>/canonical.zarr           fine fields of one case
     <root>/cases/<case>/scale-<label>.zarr       one case at one scale
     <root>/cases/<case>/scenes.tsv               scene descriptors of one case
+    <root>/cases/<case>/segments/<seg>/*.zarr    one time segment's stores (joined into the
+                                                 case's stores by hard links)
+    <root>/.plan/<case>.json                     cached archive index of a segmented case
     <root>/splits.tsv                            which case went to which split
     <root>/sets/<split>/scale-<label>.zarr       training store of a split and scale
     <root>/sets/normalization-<label>.json       train-only statistics of a scale
@@ -88,6 +91,15 @@ class ResultsLayout:
     def scale_store(self, case: str, label: str) -> Path:
         """Store of one case at one scale."""
         return self.case_dir(case) / scale_store_name(label)
+
+    def segment_store(self, case: str, segment: str, label: str | None = None) -> Path:
+        """A time segment's canonical store (``label`` None) or scale store."""
+        name = "canonical.zarr" if label is None else scale_store_name(label)
+        return self.case_dir(case) / "segments" / segment / name
+
+    def plan_cache(self, case: str) -> Path:
+        """Cached archive index of a segmented case (:mod:`lesprep.segments.plan`)."""
+        return self.root / ".plan" / f"{case}.json"
 
     def case_scenes(self, case: str) -> Path:
         """Scene descriptors of one case (gathered into :meth:`scenes_tsv`)."""

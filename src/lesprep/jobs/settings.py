@@ -22,6 +22,7 @@ from lesprep.jobs.resources import ResourceSettings
 from lesprep.layout import ResultsLayout
 from lesprep.report.settings import RegimeSettings
 from lesprep.scales.settings import CoarsenPlan
+from lesprep.segments.plan import SegmentSettings
 from lesprep.sets.settings import SetSettings
 from lesprep.sets.splits import SplitRule
 from lesprep.store import StoreSettings
@@ -64,6 +65,8 @@ class WorkflowSettings:
         Compressor settings of every store.
     resources
         Job sizing.
+    segments
+        Time segments of the cases with a raw archive (:mod:`lesprep.segments.plan`).
     """
 
     results: ResultsLayout
@@ -77,6 +80,7 @@ class WorkflowSettings:
     regimes: RegimeSettings
     store: StoreSettings
     resources: ResourceSettings
+    segments: SegmentSettings
 
     @classmethod
     def from_config(cls, cfg: Mapping[str, Any], *, what: str = "config") -> WorkflowSettings:
@@ -112,6 +116,9 @@ class WorkflowSettings:
             regimes=RegimeSettings.from_config(c["regimes"]),
             store=store,
             resources=ResourceSettings.from_config(c["resources"]),
+            segments=SegmentSettings(
+                times=int(c["segments"]["times"]), settle_s=float(c["segments"]["settle_s"])
+            ),
         )
 
     @classmethod

@@ -26,6 +26,7 @@ STAGE_MODULES: dict[str, tuple[str, ...]] = {
     "demo": ("lesprep.demo",),
     "ingest": ("lesprep.canonical.ingest",),
     "coarsen": ("lesprep.scales.coarsen",),
+    "gather": ("lesprep.segments.gather",),
     "splits": ("lesprep.sets.splits",),
     "assemble": ("lesprep.sets.assemble",),
     "report": ("lesprep.report.figures", "lesprep.report.tables"),
@@ -55,16 +56,21 @@ def _demo(smk: Any) -> None:
 def _ingest(smk: Any) -> None:
     from lesprep.canonical.ingest import ingest_case
     from lesprep.canonical.settings import IngestSettings
+    from lesprep.segments.plan import Segment
 
     p = smk.params.settings
+    segment = Segment.from_dict(p["segment"]) if p["segment"] else None
     ingest_case(
+        # a segment's own files; else the case sheet's glob (for demo cases the rule's
+        # input is its folder)
         case=p["case"],
-        raw=p["raw"],  # the case sheet's glob; for demo cases the rule's input is its folder
+        raw=list(segment.files) if segment is not None else p["raw"],
         varmap=smk.input.varmap,
         settings=IngestSettings.from_dict(p["ingest"]),
         out=smk.output.store,
         regime=p["regime"],
         config_record=p,
+        segment=segment,
     )
 
 
@@ -75,7 +81,26 @@ def _coarsen(smk: Any) -> None:
     p = smk.params.settings
     settings = CoarsenSettings.from_dict(p["coarsen"])
     outputs = dict(zip(settings.store_labels, list(smk.output.stores), strict=True))
-    coarsen_case(smk.input.canonical, outputs, settings, config_record=p)
+    ref = getattr(smk.input, "reference", None)  # a time segment's first segment, if any
+    reference = ref if isinstance(ref, str) else (ref[0] if ref else None)
+    coarsen_case(smk.input.canonical, outputs, settings, config_record=p, reference=reference)
+
+
+def _gather(smk: Any) -> None:
+    from lesprep.segments.gather import gather_stores
+
+    p = smk.params.settings
+    for out, segments in zip(list(smk.output.stores), p["segments"], strict=True):
+        facts = gather_stores(segments, out)
+        log.info(
+            "gathered %s from %d segment(s): %d output times, %d chunk files linked, "
+            "%d bytes written",
+            out,
+            len(segments),
+            facts["times"],
+            facts["linked"],
+            facts["bytes_written"],
+        )
 
 
 def _splits(smk: Any) -> None:
@@ -162,6 +187,7 @@ STEPS: dict[str, Callable[[Any], None]] = {
     "demo": _demo,
     "ingest": _ingest,
     "coarsen": _coarsen,
+    "gather": _gather,
     "splits": _splits,
     "assemble": _assemble,
     "figures": _figures,

@@ -118,6 +118,7 @@ def coarsen_case(
     settings: CoarsenSettings,
     *,
     config_record: Mapping[str, Any] | None = None,
+    reference: str | Path | None = None,
 ) -> dict[str, Path]:
     """Coarsen one case's canonical store to every scale of ``outputs`` in one pass.
 
@@ -133,6 +134,9 @@ def coarsen_case(
         Coarsening settings (their scales must cover the labels of ``outputs``).
     config_record
         Resolved config, hashed into provenance.
+    reference
+        For a time segment of a case: the case's first segment, whose first output time
+        (the case's first kept one) gives the pressure profile of pressure layer sets.
 
     Returns
     -------
@@ -147,7 +151,11 @@ def coarsen_case(
     nx, ny = canon.sizes["x"], canon.sizes["y"]
     scales, skipped = resolve_for_case(settings, dx, nx, ny, case=case)
     scales = [s for s in scales if s.label in outputs]
-    layers = case_layers(settings, canon, case)
+    if reference is not None and settings.layers:
+        with open_store(reference) as ref:
+            layers = case_layers(settings, ref, case)
+    else:
+        layers = case_layers(settings, canon, case)
     layer_of = {
         lab: (s, layers[name])
         for lab in outputs

@@ -17,6 +17,8 @@ written down once::
     <root>/regimes.tsv, regimes.json             scene regime labels and their fit
     <root>/report/splits.tsv                     the split table as the report shows it
     <root>/figures/cases/<case>/<kind>.png       per-case figures
+    <root>/figures/cases/<case>/layers-<name>_scale-<label>.png
+                                                 a case on LES levels and layer set <name>
     <root>/figures/scales/<label>/<kind>.png     per-scale figures
     <root>/figures/regimes/<kind>.png            regime figures
 
@@ -27,6 +29,8 @@ Examples
 'results/cases/sc-01/scale-500m.zarr'
 >>> scale_label(tree.set_store("train", "1000m"))
 '1000m'
+>>> tree.layer_figure("sc-01", "500m", "l30").as_posix()
+'results/figures/cases/sc-01/layers-l30_scale-500m.png'
 """
 
 from __future__ import annotations
@@ -148,6 +152,14 @@ class ResultsLayout:
     def case_figure(self, case: str, kind: str) -> Path:
         """One per-case figure (``kind`` from :data:`CASE_FIGURES`)."""
         return self.root / "figures" / "cases" / case / f"{kind}.png"
+
+    def layer_figure(self, case: str, label: str, layers: str) -> Path:
+        """Profiles of a case at scale ``label`` on the LES levels and on layer set ``layers``.
+
+        One figure per scale and layer set, so the name carries both (a scale may be
+        averaged into several layer sets).
+        """
+        return self.root / "figures" / "cases" / case / f"layers-{layers}_scale-{label}.png"
 
     def scale_figure(self, label: str, kind: str) -> Path:
         """One per-scale figure (``kind`` from :data:`SCALE_FIGURES`)."""

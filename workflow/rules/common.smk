@@ -307,6 +307,28 @@ def report_scales():
     return SCALE_LABELS if {"train", "test"} <= set(ACTIVE_SPLITS) else []
 
 
+def layer_figure_specs():
+    """(case, scale, layer set) of the layer profile figures: the first case's, each scale
+    with a layer set."""
+    from lesprep.scales.layers import split_store_label
+
+    if not CASES:
+        return []
+    case = sorted(CASES)[0]
+    pairs = [split_store_label(lab) for lab in SCALE_LABELS]
+    return [(case, scale, layers) for scale, layers in pairs if layers is not None]
+
+
+def layer_figure_inputs():
+    """The stores the layer profile figures read (LES levels and layers)."""
+    from lesprep.scales.layers import layer_store_label
+
+    out = []
+    for case, scale, layers in layer_figure_specs():
+        out += [scale_store(case, scale), scale_store(case, layer_store_label(scale, layers))]
+    return out
+
+
 def case_figures():
     """Every per-case figure."""
     return [str(LAYOUT.case_figure(c, k)) for c in CASES for k in CASE_FIGURES]
@@ -330,6 +352,7 @@ def report_outputs():
         str(LAYOUT.baseline_tsv()),
         str(LAYOUT.report_splits_tsv()),
         *case_figures(),
+        *(str(LAYOUT.layer_figure(*spec)) for spec in layer_figure_specs()),
         *regime_outputs(),
     ]
 

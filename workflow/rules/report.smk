@@ -5,6 +5,7 @@ rule figures:
     input:
         canonical=canonical_stores(),
         sets=set_stores_only(),
+        layers=layer_figure_inputs(),
     output:
         case_figures=[
             report(
@@ -26,11 +27,21 @@ rule figures:
             for label in report_scales()
             for kind in SCALE_FIGURES
         ],
+        layer_figures=[
+            report(
+                str(LAYOUT.layer_figure(case, scale, layers)),
+                caption="../report/case_layers.rst",
+                category="Cases",
+                subcategory=case,
+            )
+            for case, scale, layers in layer_figure_specs()
+        ],
     params:
         settings={
             "results": str(LAYOUT.root),
             "cases": case_ids(),
             "scales": report_scales(),
+            "layer_figures": [list(t) for t in layer_figure_specs()],
             "code": CODE["report"],
         },
     log:

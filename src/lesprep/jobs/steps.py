@@ -140,7 +140,9 @@ def _figures(smk: Any) -> None:
     from lesprep.report.figures import draw_report_figures
 
     p = smk.params.settings
-    draw_report_figures(ResultsLayout(p["results"]), p["cases"], p["scales"])
+    draw_report_figures(
+        ResultsLayout(p["results"]), p["cases"], p["scales"], layer_figures=p["layer_figures"]
+    )
 
 
 def _tables(smk: Any) -> None:

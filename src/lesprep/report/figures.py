@@ -26,7 +26,7 @@ Conventions
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -565,7 +565,12 @@ def scale_cf_vs_rh(
     return fig
 
 
-def draw_report_figures(layout: ResultsLayout, cases: list[str], scales: list[str]) -> None:
+def draw_report_figures(
+    layout: ResultsLayout,
+    cases: list[str],
+    scales: list[str],
+    layer_figures: Sequence[Sequence[str]] = (),
+) -> None:
     """Draw every per-case figure and, for ``scales``, the train/test figures.
 
     Parameters
@@ -576,7 +581,19 @@ def draw_report_figures(layout: ResultsLayout, cases: list[str], scales: list[st
         Case ids.
     scales
         Scale labels whose train and test stores both exist.
+    layer_figures
+        ``(case, scale label, layer set)`` of each profile figure on LES levels and
+        target layers (:func:`lesprep.report.layer_figures.case_layer_profiles`).
     """
+    from lesprep.report.layer_figures import case_layer_profiles
+    from lesprep.scales.layers import layer_store_label
+
+    for case, label, layers in layer_figures:
+        case_layer_profiles(
+            layout.scale_store(case, label),
+            layout.scale_store(case, layer_store_label(label, layers)),
+            layout.layer_figure(case, label, layers),
+        )
     for case in cases:
         canon = layout.canonical(case)
         case_timeseries(canon, None, None, layout.case_figure(case, "timeseries"))

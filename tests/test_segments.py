@@ -107,7 +107,7 @@ def test_segments_gathered_equal_one_job(archive, tmp_path):
                 varmap=VARMAP,
                 settings=ing,
                 out=d / "canonical.zarr",
-                segment=s,
+                segment=s.to_dict(),
             )
         )
         outs = {lab: d / f"scale-{lab}.zarr" for lab in labels}
@@ -136,7 +136,7 @@ def test_gather_refuses_mismatched_segments(archive, tmp_path):
         varmap=VARMAP,
         settings=ing,
         out=tmp_path / "a.zarr",
-        segment=plan.segments[0],
+        segment=plan.segments[0].to_dict(),
     )
     b = ingest_case(
         case="c",
@@ -144,7 +144,7 @@ def test_gather_refuses_mismatched_segments(archive, tmp_path):
         varmap=VARMAP,
         settings=ingest_settings(spinup="1 h", dtype="float64"),
         out=tmp_path / "b.zarr",
-        segment=plan.segments[1],
+        segment=plan.segments[1].to_dict(),
     )
     with pytest.raises(InputError, match="differs from the first segment in data_type"):
         gather_stores([a, b], tmp_path / "out.zarr")

@@ -20,6 +20,7 @@ LAYERS = {
     "canonical": 2,
     "scales": 3,
     "sets": 4,
+    "segments": 4,  # time segments: plans ingest, joins canonical and scale stores
     "report": 5,
     "verify": 5,
     "jobs": 6,

@@ -153,8 +153,9 @@ def test_edited_raw_file_reruns_its_case(tmp_path):
     assert p.planned_jobs() == {}
     with netCDF4.Dataset(tmp_path / "archive/own-01/snap_0004.nc", "a") as nc:
         nc["vap"][0, 0, 0, 0] = nc["vap"][0, 0, 0, 0] * 1.01  # a real edit of the content
-    jobs = p.planned_jobs()
-    assert jobs.get("ingest") == 1 and jobs.get("coarsen_g-600m") == 1
+    jobs = p.planned_jobs()  # a case with a raw archive runs as time segments (one here)
+    assert jobs.get("ingest_segment") == 1 and jobs.get("coarsen_segment_g-600m") == 1
+    assert jobs.get("gather_canonical") == 1 and "ingest" not in jobs
 
 
 def test_scale_groups_rerun_only_the_changed_scale(tmp_path):

@@ -11,9 +11,10 @@ from __future__ import annotations
 
 import logging
 import threading
-from dataclasses import dataclass, field, replace
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
@@ -55,9 +56,6 @@ from lesprep.store import (
     create_store,
 )
 from lesprep.units import Conversion, conversion
-
-if TYPE_CHECKING:
-    from lesprep.segments.plan import Segment
 
 log = logging.getLogger(__name__)
 
@@ -122,19 +120,27 @@ def kept_times(times: np.ndarray, spinup_s: float, *, case: str) -> np.ndarray:
     return np.nonzero(times >= t0 + spinup_s - tol)[0]
 
 
-def segment_indices(times: np.ndarray, segment: Segment, *, case: str, file: str) -> np.ndarray:
-    """Indices in ``times`` of a segment's output times (each must be there)."""
-    want = np.asarray(segment.times, dtype=np.float64)
+def segment_indices(
+    times: np.ndarray,
+    wanted: Sequence[float],
+    segment: str,
+    *,
+    case: str,
+    file: str | Path | None = None,
+) -> np.ndarray:
+    """Indices in ``times`` of the output times ``wanted`` of a segment (each must be
+    there)."""
+    want = np.asarray(wanted, dtype=np.float64)
     tol = 1e-6 * max(1.0, float(np.abs(times).max()))
     idx = np.searchsorted(times, want - tol)
     ok = (idx < times.size) & (np.abs(times[np.minimum(idx, times.size - 1)] - want) <= tol)
     if not np.all(ok):
         missing = want[~ok][:5].tolist()
         raise TimeAxisError(
-            f"segment {segment.name} expects output times {missing} s, which its files do "
+            f"segment {segment} expects output times {missing} s, which its files do "
             "not hold (the archive changed after the workflow was planned)",
             case=case,
-            file=file or None,
+            file=None if file is None else str(file),
             hint="run the workflow again: it plans the segments from the current files",
         )
     return idx
@@ -554,7 +560,7 @@ def ingest_case(
     out: str | Path,
     regime: str = "",
     config_record: dict[str, Any] | None = None,
-    segment: Segment | None = None,
+    segment: Mapping[str, Any] | None = None,
 ) -> Path:
     """Ingest one case's raw archive into ``out`` (a canonical Zarr store).
 
@@ -575,8 +581,9 @@ def ingest_case(
     config_record
         What the job was given (its params), recorded and hashed into provenance.
     segment
-        Ingest only this time segment of the case (:mod:`lesprep.segments.plan`); ``raw``
-        then lists the segment's files. The first-time decisions (which fields get a
+        Ingest only this time segment of the case (``Segment.to_dict()`` of
+        :mod:`lesprep.segments.plan`: ``name``, ``index``, ``times``, ``first_kept``);
+        ``raw`` then lists the segment's files. The first-time decisions (which fields get a
         deviation field) are taken at the case's first kept time, as in a whole-case run,
         and the time axis was checked over the whole archive when the plan was made.
 
@@ -616,7 +623,8 @@ def ingest_case(
                 for n in cat.warnings
                 if cat.time_report is None or not n.endswith(cat.time_report.describe())
             ]
-            cat.time_report = check_intervals(segment.times) if len(segment.times) > 1 else None
+            times = segment["times"]
+            cat.time_report = check_intervals(times) if len(times) > 1 else None
         for note in cat.warnings:
             log.warning("%s", note)
         dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))
@@ -628,11 +636,10 @@ def ingest_case(
             dropped = [float(t) for t in np.delete(cat.times, keep)]
             decide = keep
         else:
-            keep = segment_indices(cat.times, segment, case=case, file=str(files[0]))
-            decide = segment_indices(
-                cat.times, replace(segment, times=(segment.first_kept,)), case=case, file=""
-            )
-            dropped = [] if segment.index else [float(t) for t in cat.times[: decide[0]]]
+            name = str(segment["name"])
+            keep = segment_indices(cat.times, segment["times"], name, case=case, file=files[0])
+            decide = segment_indices(cat.times, [segment["first_kept"]], name, case=case)
+            dropped = [] if segment["index"] else [float(t) for t in cat.times[: decide[0]]]
         p_profile = vm.variables["p"].axes(vm.dims) == ("z",)
         conversions = _ConversionLog()
         clipped = _ClipLog(case=case)
@@ -724,7 +731,7 @@ def ingest_case(
                 time_origin=cat.origin,
                 segment=None
                 if segment is None
-                else {k: v for k, v in segment.to_dict().items() if k != "files"},
+                else {k: v for k, v in segment.items() if k != "files"},
                 settings=settings.to_dict(),
                 saturation_formula=thermo.SATURATION_FORMULA,
                 config_sha256=None

@@ -56,15 +56,14 @@ def _demo(smk: Any) -> None:
 def _ingest(smk: Any) -> None:
     from lesprep.canonical.ingest import ingest_case
     from lesprep.canonical.settings import IngestSettings
-    from lesprep.segments.plan import Segment
 
     p = smk.params.settings
-    segment = Segment.from_dict(p["segment"]) if p["segment"] else None
+    segment = p["segment"]  # Segment.to_dict() of a time segment, or None
     ingest_case(
         # a segment's own files; else the case sheet's glob (for demo cases the rule's
         # input is its folder)
         case=p["case"],
-        raw=list(segment.files) if segment is not None else p["raw"],
+        raw=list(segment["files"]) if segment is not None else p["raw"],
         varmap=smk.input.varmap,
         settings=IngestSettings.from_dict(p["ingest"]),
         out=smk.output.store,

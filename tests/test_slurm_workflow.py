@@ -287,8 +287,14 @@ def _final_records(
     pytest.fail(f"sacct shows no final state for all of {sorted(job_ids)}: {records}")
 
 
-def run_on_slurm(cluster: Cluster, code: Code, project: Project, *extra: str) -> SlurmRun:
-    """Run `project` for DATA_TARGETS with the CI SLURM profile.
+def run_on_slurm(
+    cluster: Cluster,
+    code: Code,
+    project: Project,
+    *extra: str,
+    targets: Sequence[str] = DATA_TARGETS,
+) -> SlurmRun:
+    """Run `project` for `targets` (default DATA_TARGETS) with the CI SLURM profile.
 
     The SLURM jobs of the run are the jobs accounting gained during it; they must be
     the ones Snakemake reports as submitted.
@@ -297,7 +303,7 @@ def run_on_slurm(cluster: Cluster, code: Code, project: Project, *extra: str) ->
     start = time.monotonic()
     proc = snakemake(
         code, project, "--profile", str(CI_PROFILE), *SLURM_FLAGS, *extra,
-        env=cluster.environ(), timeout=SLURM_RUN_TIMEOUT,
+        targets=targets, env=cluster.environ(), timeout=SLURM_RUN_TIMEOUT,
     )  # fmt: skip
     seconds = time.monotonic() - start
     output = proc.stdout + proc.stderr
@@ -494,3 +500,80 @@ def test_rerun_after_fix_submits_only_the_missing_jobs(
     # The resumed project holds the same arrays as the uninterrupted local run.
     assert_same_results(project.root, local_run.root)
     assert planned_jobs(code, project) == {}
+
+
+# --- time segments on the cluster -----------------------------------------------------
+
+SEGMENT_CASE = "seg-01"
+SEGMENT_TARGETS = (
+    f"results/cases/{SEGMENT_CASE}/canonical.zarr",
+    f"results/cases/{SEGMENT_CASE}/scale-{SCALE}.zarr",
+)
+
+
+def segmented_project(root: Path, code: Code, files: int) -> tuple[Project, list[Path]]:
+    """A case with a raw archive of a running simulation: 7 output times of 30 min
+    (kept: 5 after the 1 h spin-up) written by the demo writer, of which the first
+    `files` are in the case's folder; one kept time per segment."""
+    from lesprep.demo import demo_case, write_demo_case
+    from workflow_project import TINY
+
+    spec = demo_case(TRAIN_CASE).with_size(**{**TINY, "ntimes": 7})
+    made = write_demo_case(spec, root / "generated")
+    p = Project(root)
+    p.add_case(SEGMENT_CASE, f"archive/{SEGMENT_CASE}/*.nc", "alpha", "stratocumulus")
+    p.rows[0]["varmap"] = str(code.varmap(TRAIN_CASE))
+    p.config["coarsen"] = {"scales": ["600 m"], "groups": [["600 m"]]}
+    p.config["segments"] = {"times": 1, "settle_s": 0}
+    src = sorted(Path(made).glob("*.nc"))
+    (root / "archive" / SEGMENT_CASE).mkdir(parents=True)
+    for f in src[:files]:
+        shutil.copy2(f, root / "archive" / SEGMENT_CASE / f.name)
+    return p, src
+
+
+def segment_comments(rule: str, names: Sequence[str]) -> list[str]:
+    return [f"rule_{rule}_wildcards_{SEGMENT_CASE}_{n}" for n in names]
+
+
+def test_segments_run_as_slurm_jobs_and_new_files_submit_only_theirs(
+    cluster: Cluster, code: Code, tmp_path_factory: pytest.TempPathFactory
+) -> None:
+    """Six of seven output files: four kept times, four segment jobs per stage (sacct);
+    the seventh file then submits one ingest and one coarsening job and the two gathers;
+    the arrays equal a local run of the whole archive."""
+    project, src = segmented_project(tmp_path_factory.mktemp("segments"), code, files=6)
+    first = run_on_slurm(cluster, code, project, targets=SEGMENT_TARGETS)
+    assert first.proc.returncode == 0, first.output[-6000:]
+    names = [f"t{i:04d}-{i:04d}" for i in range(4)]
+    expected = Counter(
+        [
+            *segment_comments("ingest_segment", names),
+            *segment_comments(f"coarsen_segment_g-{SCALE}", names),
+            f"rule_gather_canonical_wildcards_{SEGMENT_CASE}",
+            f"rule_gather_g-{SCALE}_wildcards_{SEGMENT_CASE}",
+        ]
+    )
+    assert first.comments() == expected
+    assert all(r["State"] == "COMPLETED" for r in first.jobs.values())
+    # the gathers started after every segment job of their stage had ended
+    gather = first.by_comment(f"rule_gather_canonical_wildcards_{SEGMENT_CASE}")
+    for c in segment_comments("ingest_segment", names):
+        assert gather["Start"] >= first.by_comment(c)["End"]
+    # a new output file of the running simulation: only its segment runs, then the gathers
+    shutil.copy2(src[6], project.root / "archive" / SEGMENT_CASE / src[6].name)
+    second = run_on_slurm(cluster, code, project, targets=SEGMENT_TARGETS)
+    assert second.proc.returncode == 0, second.output[-6000:]
+    assert second.comments() == Counter(
+        [
+            *segment_comments("ingest_segment", ["t0004-0004"]),
+            *segment_comments(f"coarsen_segment_g-{SCALE}", ["t0004-0004"]),
+            f"rule_gather_canonical_wildcards_{SEGMENT_CASE}",
+            f"rule_gather_g-{SCALE}_wildcards_{SEGMENT_CASE}",
+        ]
+    )
+    # the same arrays as a local run of the whole archive
+    local, _ = segmented_project(tmp_path_factory.mktemp("segments-local"), code, files=7)
+    run_locally(code, local, targets=SEGMENT_TARGETS)
+    for rel in SEGMENT_TARGETS:
+        _same_arrays(project.root / rel, local.root / rel)

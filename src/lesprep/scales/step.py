@@ -243,6 +243,7 @@ class StepCoarsener:
             if g.spec.applies_to(s.label)
         ]
         self.layers = {g.spec.name: g for _, g, _ in self.layer_stores}
+        self.stats: dict[str, LayerStatistics] = {}
         self.density_factors = sorted(
             {s.factor for s, g, _ in self.layer_stores if g.spec.weighting == "mass"}
         )
@@ -267,14 +268,14 @@ class StepCoarsener:
                 for v in st.patch_variables:
                     d[f"{v}_patch"] = self._column(f"{v}_patch", (*c3, edge, edge))
             self.out[s.label] = d
-        self.stats: dict[str, LayerStatistics] = {}
         for s, g, lab in self.layer_stores:
             f = s.factor
             c3 = (g.nl, ny // f, nx // f)
             names = [*self._level_names(), *LAYER_FRACTIONS]
             self.out[lab] = {n: np.empty(c3, dtype=dt) for n in names}
             self.out[lab].update(self._column_outputs(c3[1:]))
-            self.stats[lab] = LayerStatistics(g, c3[1:], f * f)
+            if lab not in self.stats:  # the running sums are reused from step to step
+                self.stats[lab] = LayerStatistics(g, c3[1:], f * f)
         self.cover = {n: np.zeros((g.nl, ny, nx), np.int8) for n, g in self.layers.items()}
 
     def _level_names(self) -> list[str]:

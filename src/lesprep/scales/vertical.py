@@ -372,8 +372,11 @@ class LayerStatistics:
         self._acc: dict[object, list[np.ndarray]] = {}
 
     def reset(self) -> None:
-        """Forget the sums (a new output time)."""
-        self._acc = {}
+        """Forget the sums (a new output time). The arrays are zeroed in place and reused:
+        fresh memory costs far more to touch than memory already mapped."""
+        for acc in self._acc.values():
+            for a in acc:
+                a.fill(0.0)
 
     def _sums(self, key: object, n: int) -> list[np.ndarray]:
         acc = self._acc.get(key)

@@ -173,7 +173,14 @@ BENCH_LAYERS = {
     "file": str(Path(__file__).resolve().parents[1] / "resources/layers/lowtrop13.txt"),
 }
 """``COARSEN_LAYERS=on`` (``--worker-env``): the demo's layer set (13 layers, mass
-weighting) on every scale, for the cost of vertical coarsening."""
+weighting) on every scale, for the cost of vertical coarsening; ``COARSEN_LAYERS=gcm``: on
+the scales of 1.6 km and more only (a climate model's cells)."""
+
+
+def _km(scale: str) -> float:
+    """A configured scale ("1600 m") in km."""
+    value, unit = scale.split()
+    return float(value) / (1000.0 if unit == "m" else 1.0)
 
 
 def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
@@ -192,6 +199,8 @@ def _settings(scales: Sequence[str], patch_scales: Sequence[str]) -> Any:
         coarsen.update(EXTENDED_VARIABLES)
     if os.environ.get("COARSEN_LAYERS", "off") == "on":
         coarsen["layers"] = [dict(BENCH_LAYERS)]
+    elif os.environ.get("COARSEN_LAYERS", "off") == "gcm":  # climate-model scales only
+        coarsen["layers"] = [{**BENCH_LAYERS, "scales": [s for s in scales if _km(s) >= 1.6]}]
     return WorkflowSettings.from_config(
         {
             "cases": "unused.tsv",

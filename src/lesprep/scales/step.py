@@ -504,8 +504,9 @@ class StepCoarsener:
             d["rh_of_means"][...] = rh
             sundqvist_cloud_fraction(rh, st.rh_critical, out=d["cf_sundqvist"])
             d["drh_dz"][...] = vertical_derivative(rh, g.centres, axis=0)
+            covs = {pair: acc.covariance(pair) for pair in self.pairs}  # once each (in place)
             for a, b in self.pairs:
-                d[covariance_name(a, b)][...] = acc.covariance((a, b))
+                d[covariance_name(a, b)][...] = covs[(a, b)]
             if self.tke:
                 d["tke_sgs"][...] = subgrid_tke(*(full[w].variance() for w in WINDS))
             qt, thl = (full[v] for v in GAUSSIAN_INPUTS)
@@ -515,7 +516,7 @@ class StepCoarsener:
                 p3,
                 qt.m2,
                 thl.m2,
-                acc.covariance(GAUSSIAN_INPUTS),
+                covs[GAUSSIAN_INPUTS],
                 1,
                 out=d["cf_gaussian"],
             )

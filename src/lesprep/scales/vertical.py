@@ -480,18 +480,23 @@ class LayerStatistics:
     def moments(self, name: str) -> BlockMoments:
         """Layer moments as a :class:`BlockMoments` of count 1 whose ``m2`` and ``m3`` are
         the weight-normalised central moments ``M2 / W`` and ``M3 / W`` (so its
-        ``variance()`` and ``skewness()`` are the weighted population ones)."""
+        ``variance()`` and ``skewness()`` are the weighted population ones).
+
+        The sums are normalised in place (no new arrays): call it once per output time,
+        after the last slab and before :meth:`reset`. Every layer overlaps a fine level
+        with a positive weight, so ``W > 0``.
+        """
         W, M, M2, M3 = (self._shape(a) for a in self._acc[name])
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m2 = np.where(W > 0, M2 / W, 0.0)
-            m3 = np.where(W > 0, M3 / W, 0.0)
-        return BlockMoments(count=1, mean=M, m2=np.maximum(m2, 0.0), m3=m3)
+        np.divide(M2, W, out=M2)
+        np.maximum(M2, 0.0, out=M2)
+        np.divide(M3, W, out=M3)
+        return BlockMoments(count=1, mean=M, m2=M2, m3=M3)
 
     def covariance(self, pair: tuple[str, str]) -> np.ndarray:
-        """Weighted population covariance of a pair, ``(nl, ny/f, nx/f)``."""
+        """Weighted population covariance of a pair, ``(nl, ny/f, nx/f)`` (normalised in
+        place, like :meth:`moments`)."""
         W, _, _, CC = (self._shape(a) for a in self._acc[("cov", pair)])
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(W > 0, CC / W, 0.0)
+        return np.divide(CC, W, out=CC)
 
 
 def projected_cover_update(cover: np.ndarray, mask: np.ndarray, z0: int, grid: LayerGrid) -> None:

@@ -2,7 +2,7 @@
 
 A scale store (``scale-<L>.zarr``) holds block statistics on the LES levels; its layer
 stores (``scale-<L>_layers-<name>.zarr``) hold the same case and scale averaged into the
-layers of a target vertical grid, with the interfaces of each layer in ``z_bnds``. The
+layers of a target vertical grid, with the interfaces of each layer in ``z_bounds`` (named by the ``bounds`` attribute of ``z``). The
 figure of :func:`case_layer_profiles` puts the two side by side so a reader sees what the
 vertical averaging does to the profiles:
 
@@ -205,7 +205,7 @@ def layer_bounds(ds: xr.Dataset, path: str | Path | None = None) -> NDArray[np.f
     ----------
     ds
         A layer store: coordinate ``z`` whose ``bounds`` attribute names a ``(z, 2)``
-        variable (``z_bnds`` when the attribute is absent).
+        variable (``z_bounds`` when the attribute is absent).
     path
         The store's file, named in errors.
 
@@ -223,7 +223,7 @@ def layer_bounds(ds: xr.Dataset, path: str | Path | None = None) -> NDArray[np.f
     Examples
     --------
     >>> ds = xr.Dataset(coords={"z": ("z", [50.0, 200.0])})
-    >>> ds["z_bnds"] = (("z", "nv"), [[0.0, 100.0], [100.0, 300.0]])
+    >>> ds["z_bounds"] = (("z", "nv"), [[0.0, 100.0], [100.0, 300.0]])
     >>> layer_bounds(ds).tolist()
     [[0.0, 100.0], [100.0, 300.0]]
     """
@@ -234,7 +234,7 @@ def layer_bounds(ds: xr.Dataset, path: str | Path | None = None) -> NDArray[np.f
             file=file,
             hint=_STORE_HINT,
         )
-    name = str(ds["z"].attrs.get("bounds", "z_bnds"))
+    name = str(ds["z"].attrs.get("bounds", "z_bounds"))
     where = {"file": file, "variable": name}
     if name not in ds.variables:
         raise InputError(

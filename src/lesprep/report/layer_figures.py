@@ -2,9 +2,9 @@
 
 A scale store (``scale-<L>.zarr``) holds block statistics on the LES levels; its layer
 stores (``scale-<L>_layers-<name>.zarr``) hold the same case and scale averaged into the
-layers of a target vertical grid, with the interfaces of each layer in ``z_bounds`` (named by the ``bounds`` attribute of ``z``). The
-figure of :func:`case_layer_profiles` puts the two side by side so a reader sees what the
-vertical averaging does to the profiles:
+layers of a target vertical grid, with the interfaces of each layer in ``z_bounds`` (named
+by the ``bounds`` attribute of ``z``). The figure of :func:`case_layer_profiles` puts the
+two side by side so a reader sees what the vertical averaging does to the profiles:
 
 * every profile is the mean over time, y and x of a ``(time, z, y, x)`` variable (NaN
   cells left out), accumulated one output time at a time in float64;

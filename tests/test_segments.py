@@ -7,10 +7,8 @@ from __future__ import annotations
 import hashlib
 import os
 import shutil
-import time
 from pathlib import Path
 
-import netCDF4
 import numpy as np
 import pytest
 import zarr
@@ -21,7 +19,7 @@ from lesprep.scales.coarsen import coarsen_case
 from lesprep.segments.gather import gather_stores
 from lesprep.segments.plan import SegmentSettings, plan_case, segment_name
 from settings_helpers import ingest_settings, workflow_settings
-from workflow_project import REPO, Project
+from workflow_project import REPO
 
 VARMAP = REPO / "config/varmaps/flavour-alpha.yaml"
 LAYERS = {"name": "p4", "interfaces": ["1020 hPa", "990 hPa", "960 hPa", "920 hPa", "850 hPa"]}
@@ -151,78 +149,6 @@ def test_gather_refuses_mismatched_segments(archive, tmp_path):
     assert not (tmp_path / "out.zarr").exists()  # nothing half-written
 
 
-# -------------------------------------------------------------------------------------
-# the workflow: segment jobs, incremental runs
-# -------------------------------------------------------------------------------------
-
-
-@pytest.fixture(scope="module")
-def running(tmp_path_factory):
-    """A project whose case 'run-01' is a simulation still running: 4 of its 5 output
-    files are there (kept times: spin-up 1 h of 30-min output)."""
-    root = tmp_path_factory.mktemp("running")
-    p = Project(root)
-    p.add_demo_case("sc-ostra-01")
-    p.add_demo_case("cu-marro-01")
-    p.snakemake("--until", "demo_archive")
-    src = sorted((root / "resources/demo/sc-ostra-01").glob("*.nc"))
-    (root / "archive/run-01").mkdir(parents=True)
-    for f in src[:4]:
-        shutil.copy2(f, root / "archive/run-01" / f.name)
-    p.add_case("run-01", "archive/run-01/*.nc", "alpha", "stratocumulus", split="train")
-    p.config["coarsen"] = {"scales": ["600 m"]}
-    p.config["segments"] = {"times": 1, "settle_s": 0}
-    p.snakemake()
-    return p, src
-
-
-@pytest.mark.workflow
-def test_new_output_file_runs_only_its_segment(running):
-    p, src = running
-    root = p.root
-    before = sorted(d.name for d in (root / "results/cases/run-01/segments").iterdir())
-    assert before == ["t0000-0000", "t0001-0001"]  # kept times 3600 s and 5400 s
-    first = root / "results/cases/run-01/segments/t0000-0000/canonical.zarr"
-    stamp = first.stat().st_mtime_ns
-    shutil.copy2(src[4], root / "archive/run-01" / src[4].name)
-    jobs = p.planned_jobs()
-    assert jobs["ingest_segment"] == 1 and jobs["coarsen_segment_all"] == 1
-    assert jobs["gather_canonical"] == 1 and jobs["gather_all"] == 1
-    assert "ingest" not in jobs and "coarsen_all" not in jobs  # the demo cases rest
-    p.snakemake()
-    assert first.stat().st_mtime_ns == stamp  # the earlier segment was not rewritten
-    g = zarr.open_group(str(root / "results/cases/run-01/canonical.zarr"), mode="r")
-    assert g["qc"].shape[0] == 3
-    assert p.planned_jobs() == {}
-    log = (root / "logs/ingest/run-01-t0002-0002.log").read_text()
-    assert "time 1/1 (100%)" in log  # the progress line of the job
-
-
-@pytest.mark.workflow
-def test_rewritten_file_reruns_its_segment_only(running):
-    p, src = running
-    time.sleep(0.01)
-    with netCDF4.Dataset(p.root / "archive/run-01" / src[3].name, "a") as nc:
-        nc["vap"][0, 0, 0, 0] = nc["vap"][0, 0, 0, 0] * 1.01
-    jobs = p.planned_jobs()
-    assert jobs["ingest_segment"] == 1 and jobs["coarsen_segment_all"] == 1
-    p.snakemake()
-    seg = zarr.open_group(
-        str(p.root / "results/cases/run-01/segments/t0001-0001/canonical.zarr"), mode="r"
-    )
-    joined = zarr.open_group(str(p.root / "results/cases/run-01/canonical.zarr"), mode="r")
-    np.testing.assert_array_equal(joined["qv"][1], seg["qv"][0])
-    assert os.path.samefile(
-        next(
-            f
-            for f in (p.root / "results/cases/run-01/canonical.zarr/qv").iterdir()
-            if f.name.startswith("1.")
-        ),
-        next(
-            f
-            for f in (
-                p.root / "results/cases/run-01/segments/t0001-0001/canonical.zarr/qv"
-            ).iterdir()
-            if f.name.startswith("0.")
-        ),
-    )
+# The workflow side (segment jobs in sacct, a new output file submitting only its segment,
+# a rewritten file re-running only its segment, arrays equal to a one-job run) is tested on
+# a real SLURM cluster: tests/test_slurm_workflow.py.

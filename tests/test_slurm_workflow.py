@@ -512,13 +512,13 @@ SEGMENT_TARGETS = (
 
 
 def segmented_project(root: Path, code: Code, files: int) -> tuple[Project, list[Path]]:
-    """A case with a raw archive of a running simulation: 7 output times of 30 min
-    (kept: 5 after the 1 h spin-up) written by the demo writer, of which the first
+    """A case with a raw archive of a running simulation: 6 output times of 30 min
+    (kept: 4 after the 1 h spin-up) written by the demo writer, of which the first
     `files` are in the case's folder; one kept time per segment."""
     from lesprep.demo import demo_case, write_demo_case
     from workflow_project import TINY
 
-    spec = demo_case(TRAIN_CASE).with_size(**{**TINY, "ntimes": 7})
+    spec = demo_case(TRAIN_CASE).with_size(**{**TINY, "ntimes": 6})
     made = write_demo_case(spec, root / "generated")
     p = Project(root)
     p.add_case(SEGMENT_CASE, f"archive/{SEGMENT_CASE}/*.nc", "alpha", "stratocumulus")
@@ -536,44 +536,84 @@ def segment_comments(rule: str, names: Sequence[str]) -> list[str]:
     return [f"rule_{rule}_wildcards_{SEGMENT_CASE}_{n}" for n in names]
 
 
+def one_job_stores(project: Project, code: Code, out: Path) -> dict[str, Path]:
+    """The case ingested and coarsened by one local job each, in this process, from the
+    project's archive and settings (the reference the segmented run must equal)."""
+    from lesprep.canonical.ingest import ingest_case
+    from lesprep.jobs.settings import WorkflowSettings
+    from lesprep.scales.coarsen import coarsen_case
+
+    project.write()
+    ws = WorkflowSettings.load(project.root / "config/config.yaml")
+    files = sorted(str(f) for f in (project.root / "archive" / SEGMENT_CASE).glob("*.nc"))
+    canon = ingest_case(
+        case=SEGMENT_CASE,
+        raw=files,
+        varmap=code.varmap(TRAIN_CASE),
+        settings=ws.ingest,
+        out=out / "canonical.zarr",
+    )
+    co = ws.coarsen.for_group(f"g-{SCALE}")
+    scale = out / f"scale-{SCALE}.zarr"
+    coarsen_case(canon, {SCALE: scale}, co)
+    return {SEGMENT_TARGETS[0]: canon, SEGMENT_TARGETS[1]: scale}
+
+
 def test_segments_run_as_slurm_jobs_and_new_files_submit_only_theirs(
     cluster: Cluster, code: Code, tmp_path_factory: pytest.TempPathFactory
 ) -> None:
-    """Six of seven output files: four kept times, four segment jobs per stage (sacct);
-    the seventh file then submits one ingest and one coarsening job and the two gathers;
-    the arrays equal a local run of the whole archive."""
-    project, src = segmented_project(tmp_path_factory.mktemp("segments"), code, files=6)
+    """Five of six output files: three kept times, three segment jobs per stage (sacct);
+    the sixth file then submits one ingest and one coarsening job and the two gathers;
+    the arrays equal one local job over the whole archive; a file rewritten in place plans
+    its own segment only."""
+    project, src = segmented_project(tmp_path_factory.mktemp("segments"), code, files=5)
     first = run_on_slurm(cluster, code, project, targets=SEGMENT_TARGETS)
     assert first.proc.returncode == 0, first.output[-6000:]
-    names = [f"t{i:04d}-{i:04d}" for i in range(4)]
-    expected = Counter(
+    names = [f"t{i:04d}-{i:04d}" for i in range(3)]
+    gathers = [
+        f"rule_gather_canonical_wildcards_{SEGMENT_CASE}",
+        f"rule_gather_g-{SCALE}_wildcards_{SEGMENT_CASE}",
+    ]
+    assert first.comments() == Counter(
         [
             *segment_comments("ingest_segment", names),
             *segment_comments(f"coarsen_segment_g-{SCALE}", names),
-            f"rule_gather_canonical_wildcards_{SEGMENT_CASE}",
-            f"rule_gather_g-{SCALE}_wildcards_{SEGMENT_CASE}",
+            *gathers,
         ]
     )
-    assert first.comments() == expected
     assert all(r["State"] == "COMPLETED" for r in first.jobs.values())
-    # the gathers started after every segment job of their stage had ended
-    gather = first.by_comment(f"rule_gather_canonical_wildcards_{SEGMENT_CASE}")
+    # the gather started after every segment job of its stage had ended
     for c in segment_comments("ingest_segment", names):
-        assert gather["Start"] >= first.by_comment(c)["End"]
+        assert first.by_comment(gathers[0])["Start"] >= first.by_comment(c)["End"]
     # a new output file of the running simulation: only its segment runs, then the gathers
-    shutil.copy2(src[6], project.root / "archive" / SEGMENT_CASE / src[6].name)
+    shutil.copy2(src[5], project.root / "archive" / SEGMENT_CASE / src[5].name)
     second = run_on_slurm(cluster, code, project, targets=SEGMENT_TARGETS)
     assert second.proc.returncode == 0, second.output[-6000:]
+    new = ["t0003-0003"]
     assert second.comments() == Counter(
         [
-            *segment_comments("ingest_segment", ["t0004-0004"]),
-            *segment_comments(f"coarsen_segment_g-{SCALE}", ["t0004-0004"]),
-            f"rule_gather_canonical_wildcards_{SEGMENT_CASE}",
-            f"rule_gather_g-{SCALE}_wildcards_{SEGMENT_CASE}",
+            *segment_comments("ingest_segment", new),
+            *segment_comments(f"coarsen_segment_g-{SCALE}", new),
+            *gathers,
         ]
     )
-    # the same arrays as a local run of the whole archive
-    local, _ = segmented_project(tmp_path_factory.mktemp("segments-local"), code, files=7)
-    run_locally(code, local, targets=SEGMENT_TARGETS)
-    for rel in SEGMENT_TARGETS:
-        _same_arrays(project.root / rel, local.root / rel)
+    # the same arrays as one local job each over the whole archive
+    reference = one_job_stores(project, code, tmp_path_factory.mktemp("one-job"))
+    for rel, path in reference.items():
+        _same_arrays(project.root / rel, path)
+    # a file rewritten in place (the third kept time's) plans its own segment only
+    with netCDF4.Dataset(project.root / "archive" / SEGMENT_CASE / src[4].name, "a") as nc:
+        nc["vap"][0, 0, 0, 0] = nc["vap"][0, 0, 0, 0] * 1.01
+    res = snakemake(
+        code, project, "--cores", "2", "--dry-run",
+        targets=SEGMENT_TARGETS, env=dict(os.environ), timeout=120,
+    )  # fmt: skip
+    assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-3000:]
+    planned = parse_job_stats(res.stdout + res.stderr)
+    assert planned == {
+        "ingest_segment": 1,
+        f"coarsen_segment_g-{SCALE}": 1,
+        "gather_canonical": 1,
+        f"gather_g-{SCALE}": 1,
+    }
+    assert "t0002-0002" in res.stdout + res.stderr

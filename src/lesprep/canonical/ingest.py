@@ -611,20 +611,15 @@ def ingest_case(
         files,
         vm,
         case=case,
-        # a segment's files skip the times between the case's first file and the segment
-        time_gaps=settings.time_gaps if segment is None else "warn",
+        time_gaps=settings.time_gaps,
         duplicate_times=settings.duplicate_times,
         restart_order=settings.restart_order,
+        # a segment's files skip the times between the case's first file and the segment
+        check_gaps=segment is None,
     )
     try:
-        if segment is not None:
-            cat.warnings[:] = [
-                n
-                for n in cat.warnings
-                if cat.time_report is None or not n.endswith(cat.time_report.describe())
-            ]
-            times = segment["times"]
-            cat.time_report = check_intervals(times) if len(times) > 1 else None
+        if segment is not None and len(segment["times"]) > 1:  # the segment's own axis
+            cat.time_report = check_intervals(segment["times"])
         for note in cat.warnings:
             log.warning("%s", note)
         dx = horizontal_spacing(cat.grid.x, cat.grid.y, case=case, file=str(files[0]))

@@ -391,6 +391,7 @@ def index_archive(
     time_gaps: Literal["warn", "error"],
     duplicate_times: Literal["error", "keep_later"],
     restart_order: Literal["mtime", "name"],
+    check_gaps: bool = True,
 ) -> ArchiveIndex:
     """Index a case's raw files against its variable map.
 
@@ -408,6 +409,11 @@ def index_archive(
     duplicate_times, restart_order
         An output time in two files is refused, or the later file's copy is kept (later
         by modification time or by file name), with a warning naming times and files.
+    check_gaps
+        False: the files are a chosen subset of the archive (a time segment and the
+        case's first files, whose axis was checked whole when the segments were
+        planned), so the intervals between their times are not checked
+        (``time_report`` is None).
 
     Returns
     -------
@@ -592,8 +598,8 @@ def index_archive(
             where[name] = [(fi, -1)]
     if resolver.overlaps:
         notes.append(f"case {case!r}: " + resolver.describe(restart_order))
-    report = check_intervals(times)
-    if not report.regular:
+    report = check_intervals(times) if check_gaps else None
+    if report is not None and not report.regular:
         if time_gaps == "error":
             raise TimeAxisError(
                 report.describe(),

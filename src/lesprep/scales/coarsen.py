@@ -156,13 +156,12 @@ def coarsen_case(
             layers = case_layers(settings, ref, case)
     else:
         layers = case_layers(settings, canon, case)
-    layer_of = {
-        lab: (s, layers[name])
-        for lab in outputs
-        for s in scales
-        for name in [split_store_label(lab)[1]]
-        if name is not None and split_store_label(lab)[0] == s.label
-    }
+    by_label = {s.label: s for s in scales}
+    layer_of: dict[str, tuple[Scale, LayerGrid]] = {}  # layer store label -> scale, layers
+    for lab in outputs:
+        scale_lab, name = split_store_label(lab)
+        if name is not None and scale_lab in by_label:
+            layer_of[lab] = (by_label[scale_lab], layers[name])
     z = canon.z.values.astype(np.float64)
     written: dict[str, Path] = {}
     codecs = compressors(settings.store)

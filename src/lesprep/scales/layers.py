@@ -21,6 +21,7 @@ import logging
 import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any, Literal
 
@@ -308,9 +309,10 @@ class LayerGrid:
         """``(nl, 2)`` lower and upper interface of each layer (CF bounds)."""
         return np.stack([self.faces[:-1], self.faces[1:]], axis=1)
 
+    @cached_property
     def level_span(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
         """For each fine level, the first layer it overlaps and one past the last
-        (``first == stop`` for a level outside every layer)."""
+        (``first == stop`` for a level outside every layer); computed once per grid."""
         touched = self.overlap > 0
         anyl = touched.any(axis=1)
         first = np.where(anyl, touched.argmax(axis=1), 0)

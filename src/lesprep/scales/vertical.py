@@ -48,7 +48,7 @@ blocks) and a compiled kernel (parallel over blocks).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 
 import numpy as np
 
@@ -64,6 +64,27 @@ _CELL_CHUNK = 512
 # --------------------------------------------------------------------------------------
 # numpy reference
 # --------------------------------------------------------------------------------------
+
+
+def _np_updates(
+    wlev: np.ndarray, ov: np.ndarray, first: np.ndarray, stop: np.ndarray, W: np.ndarray
+) -> Iterator[tuple[int, int, np.ndarray, np.ndarray, np.ndarray, np.ndarray]]:
+    """Every (level, overlapped layer) pair of the reference merges, in merge order:
+    ``(i, lay, wa, wb, pos, wsafe)`` with the layer's weight before (``wa``) and the
+    level's weight (``wb``); the caller updates its sums, then the layer's weight
+    ``W[lay]`` becomes ``wa + wb`` here (``pos``: blocks whose total weight is positive,
+    ``wsafe``: the total weight with 1 where it is not)."""
+    for i in range(wlev.shape[0]):
+        for lay in range(int(first[i]), int(stop[i])):
+            o = float(ov[i, lay])
+            if o <= 0.0:
+                continue
+            wb = o * wlev[i]
+            wa = W[lay].copy()
+            w = wa + wb
+            pos = w > 0
+            yield i, lay, wa, wb, pos, np.where(pos, w, 1.0)
+            W[lay] = w
 
 
 def np_layer_merge(
@@ -94,36 +115,25 @@ def np_layer_merge(
     acc
         ``(W, mean, M2, M3)`` or ``(W, mean)`` running sums, each ``(nl, C)``; updated.
     """
-    order = 1 if m2 is None else 3
-    W, M = acc[0], acc[1]
-    for i in range(mean.shape[0]):
-        for lay in range(int(first[i]), int(stop[i])):
-            o = float(ov[i, lay])
-            if o <= 0.0:
-                continue
-            wb = o * wlev[i]
-            wa = W[lay].copy()
-            w = wa + wb
-            pos = w > 0
-            wsafe = np.where(pos, w, 1.0)
-            d = mean[i] - M[lay]
-            M[lay] = np.where(pos, M[lay] + d * wb / wsafe, M[lay])
-            if order == 3:
-                assert m2 is not None and m3 is not None
-                M2, M3 = acc[2], acc[3]
-                m2b = m2[i] * wb * inv_n
-                m3b = m3[i] * wb * inv_n
-                m2a = M2[lay]
-                new3 = (
-                    M3[lay]
-                    + m3b
-                    + d * d * d * wa * wb * (wa - wb) / (wsafe * wsafe)
-                    + 3.0 * d * (wa * m2b - wb * m2a) / wsafe
-                )
-                new2 = m2a + m2b + d * d * wa * wb / wsafe
-                M3[lay] = np.where(pos, new3, M3[lay])
-                M2[lay] = np.where(pos, new2, M2[lay])
-            W[lay] = w
+    M = acc[1]
+    for i, lay, wa, wb, pos, wsafe in _np_updates(wlev, ov, first, stop, acc[0]):
+        d = mean[i] - M[lay]
+        M[lay] = np.where(pos, M[lay] + d * wb / wsafe, M[lay])
+        if m2 is None or m3 is None:
+            continue
+        M2, M3 = acc[2], acc[3]
+        m2b = m2[i] * wb * inv_n
+        m3b = m3[i] * wb * inv_n
+        m2a = M2[lay]
+        new3 = (
+            M3[lay]
+            + m3b
+            + d * d * d * wa * wb * (wa - wb) / (wsafe * wsafe)
+            + 3.0 * d * (wa * m2b - wb * m2a) / wsafe
+        )
+        new2 = m2a + m2b + d * d * wa * wb / wsafe
+        M3[lay] = np.where(pos, new3, M3[lay])
+        M2[lay] = np.where(pos, new2, M2[lay])
 
 
 def np_layer_comerge(
@@ -140,24 +150,14 @@ def np_layer_comerge(
     """Merge ``k`` levels' cross sums into running layer sums ``(W, mean_x, mean_y, C)``
     (reference engine; arguments as :func:`np_layer_merge`, ``cs`` the ``(k, C)`` sums
     of cross deviations)."""
-    W, MX, MY, CC = acc
-    for i in range(mx.shape[0]):
-        for lay in range(int(first[i]), int(stop[i])):
-            o = float(ov[i, lay])
-            if o <= 0.0:
-                continue
-            wb = o * wlev[i]
-            wa = W[lay].copy()
-            w = wa + wb
-            pos = w > 0
-            wsafe = np.where(pos, w, 1.0)
-            dx = mx[i] - MX[lay]
-            dy = my[i] - MY[lay]
-            new = CC[lay] + cs[i] * wb * inv_n + dx * dy * wa * wb / wsafe
-            CC[lay] = np.where(pos, new, CC[lay])
-            MX[lay] = np.where(pos, MX[lay] + dx * wb / wsafe, MX[lay])
-            MY[lay] = np.where(pos, MY[lay] + dy * wb / wsafe, MY[lay])
-            W[lay] = w
+    _, MX, MY, CC = acc
+    for i, lay, wa, wb, pos, wsafe in _np_updates(wlev, ov, first, stop, acc[0]):
+        dx = mx[i] - MX[lay]
+        dy = my[i] - MY[lay]
+        new = CC[lay] + cs[i] * wb * inv_n + dx * dy * wa * wb / wsafe
+        CC[lay] = np.where(pos, new, CC[lay])
+        MX[lay] = np.where(pos, MX[lay] + dx * wb / wsafe, MX[lay])
+        MY[lay] = np.where(pos, MY[lay] + dy * wb / wsafe, MY[lay])
 
 
 def np_dry_density_means(p: np.ndarray, t: np.ndarray, r: np.ndarray, f: int) -> np.ndarray:
@@ -367,7 +367,7 @@ class LayerStatistics:
         self.ncell = int(np.prod(self.blocks))
         self.inv_n = 1.0 / float(count)
         self.engine = resolve_engine(engine)
-        first, stop = grid.level_span()
+        first, stop = grid.level_span
         self._first, self._stop = first, stop
         self._acc: dict[object, list[np.ndarray]] = {}
 
@@ -503,7 +503,7 @@ def projected_cover_update(cover: np.ndarray, mask: np.ndarray, z0: int, grid: L
     """OR each fine level's cloud mask into the fine-column flags of the layers it
     overlaps: ``cover[l, y, x]`` is 1 when any fine level overlapping layer ``l`` is
     cloudy in column ``(y, x)``."""
-    first, stop = grid.level_span()
+    first, stop = grid.level_span
     m = np.asarray(mask)
     m = m.view(np.int8) if m.dtype == np.bool_ else m.astype(np.int8, copy=False)
     for i in range(m.shape[0]):

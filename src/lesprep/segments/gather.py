@@ -44,11 +44,8 @@ def _meta(path: Path) -> dict[str, Any]:
 
 
 def _arrays(store: Path) -> dict[str, dict[str, Any]]:
-    return {
-        p.name: _meta(p)
-        for p in sorted(store.iterdir())
-        if p.is_dir() and (p / "zarr.json").exists() and _meta(p).get("node_type") == "array"
-    }
+    metas = {p.name: _meta(p) for p in sorted(store.iterdir()) if (p / "zarr.json").is_file()}
+    return {name: m for name, m in metas.items() if m.get("node_type") == "array"}
 
 
 def _time_axis(meta: dict[str, Any]) -> bool:

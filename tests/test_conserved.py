@@ -316,3 +316,32 @@ def test_per_slab_conserved_engines_agree(species, profile) -> None:
     assert set(fast) == set(ref) == set(names)
     for n in names:
         np.testing.assert_allclose(fast[n], ref[n], rtol=1e-14, err_msg=n)
+
+
+def test_exner_table_gives_the_per_cell_values(monkeypatch) -> None:
+    # float32 3-D pressure: the Exner function of a level's distinct values is tabulated;
+    # a level whose range exceeds the table size is computed per cell. Both must equal the
+    # per-cell computation bit for bit, and the thermo functions (numpy engine) to round-off
+    import lesprep.scales.conserved as conserved
+
+    rng = np.random.default_rng(5)
+    shape = (3, 6, 7)
+    fine = {
+        "T": rng.uniform(270.0, 295.0, shape).astype(np.float32),
+        "qv": rng.uniform(2e-3, 1.2e-2, shape).astype(np.float32),
+        "qc": rng.uniform(0.0, 1e-3, shape).astype(np.float32),
+    }
+    spread = np.array([0.05, 0.2, 30.0])[:, None, None]  # Pa: narrow, medium, wide
+    p = np.array([95000.0, 90000.0, 85000.0])[:, None, None] + spread * rng.normal(size=shape)
+    p = p.astype(np.float32)
+    names = ["qt", "theta_l", "theta_v"]
+    monkeypatch.setattr(conserved, "TABLE_MAX", 64)
+    _, _, width = conserved._exner_tables(p)
+    assert width[0] > 0 and width[2] == 0  # one tabulated level, one left per cell
+    tabulated = conserved.conserved_fields(fine, names, p, engine="numba")
+    monkeypatch.setattr(conserved, "TABLE_MAX", 0)
+    per_cell = conserved.conserved_fields(fine, names, p, engine="numba")
+    ref = conserved.conserved_fields(fine, names, p, engine="numpy")
+    for n in names:
+        np.testing.assert_array_equal(tabulated[n], per_cell[n], err_msg=n)
+        np.testing.assert_allclose(tabulated[n], ref[n], rtol=1e-14, err_msg=n)

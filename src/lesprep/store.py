@@ -9,6 +9,7 @@ Stores are Zarr format 3 with consolidated metadata.
 from __future__ import annotations
 
 import contextlib
+import itertools
 import json
 import os
 import shutil
@@ -25,6 +26,7 @@ import xarray as xr
 import zarr
 from zarr.codecs import BloscCodec, ZstdCodec
 
+from lesprep._jit import HAVE_NUMBA, njit
 from lesprep.errors import ConfigError, InputError
 
 CONVENTIONS = "CF-1.11, ACDD-1.3"
@@ -394,10 +396,11 @@ class TimeWriter:
     def _write(self, start: int, buf: dict[str, list[np.ndarray]]) -> None:
         def write(item: tuple[str, list[np.ndarray]]) -> None:
             name, steps = item
+            arr = self.group[name]
             if len(steps) == 1:  # a large step: no stacked copy
-                self.group[name][start] = steps[0]
+                write_block(arr, (start,), steps[0][None])
             else:
-                self.group[name][start : start + len(steps)] = np.stack(steps)
+                write_block(arr, (start,), np.stack(steps))
 
         _each_array(write, buf.items())
 
@@ -414,7 +417,7 @@ class TimeWriter:
     def _write_rows(self, index: int, z0: int, fields: dict[str, np.ndarray]) -> None:
         def write(item: tuple[str, np.ndarray]) -> None:
             name, arr = item
-            self.group[name][index, z0 : z0 + arr.shape[0]] = arr
+            write_block(self.group[name], (index, z0), arr[None])
 
         _each_array(write, fields.items())
 
@@ -423,6 +426,99 @@ class TimeWriter:
         self._submit()
         self._steps.close()
         self._rows.close()
+
+
+def write_block(arr: zarr.Array, start: tuple[int, ...], data: np.ndarray) -> int:
+    """Write ``data`` into ``arr`` at offset ``start`` (one per leading axis; the other axes
+    start at 0), leaving out chunks whose part of ``data`` is all fill value.
+
+    zarr leaves out such chunks itself, but finds them by comparing every value of every
+    chunk with the fill value (for a float fill: NaN tests or a bytewise comparison of a
+    broadcast copy). Here a compiled scan stops at the first value that differs, which is
+    usually the first, and zarr's own check is switched off. The same chunks are left
+    out: a chunk is stored unless all its values are the fill value (NaN for a NaN fill,
+    the same bits for a numeric fill, so -0.0 is stored where the fill is 0.0).
+
+    Returns
+    -------
+    int
+        Chunk regions written (after leaving out the all-fill ones).
+    """
+    data = np.asarray(data)
+    offset = (*start, *([0] * (data.ndim - len(start))))
+    region = tuple(slice(o, o + n) for o, n in zip(offset, data.shape, strict=True))
+    if arr.shards is not None or data.dtype != arr.dtype:  # (not used for sharded arrays)
+        arr[region] = data
+        return 1
+    cuts = []
+    for o, n, c in zip(offset, data.shape, arr.chunks, strict=True):
+        edges = [o, *range((o // c + 1) * c, o + n, c), o + n]
+        cuts.append(list(itertools.pairwise(edges)))
+
+    def local(block: tuple[tuple[int, int], ...]) -> tuple[slice, ...]:
+        return tuple(slice(lo - o, hi - o) for (lo, hi), o in zip(block, offset, strict=True))
+
+    blocks = list(itertools.product(*cuts))
+    keep = [b for b in blocks if not all_fill(data[local(b)], arr.fill_value)]
+    fast = arr.with_config({"write_empty_chunks": True})
+    if len(keep) == len(blocks):
+        fast[region] = data
+        return len(blocks)
+    for b in keep:
+        fast[tuple(slice(lo, hi) for lo, hi in b)] = data[local(b)]
+    return len(keep)
+
+
+def all_fill(a: np.ndarray, fill: Any) -> bool:
+    """True if every value of ``a`` is ``fill`` (NaN for a NaN fill; for a float fill the
+    same bits, as zarr compares them), stopping at the first value that is not.
+
+    Examples
+    --------
+    >>> all_fill(np.zeros(4, np.float32), 0.0), all_fill(np.array([0.0, -0.0]), 0.0)
+    (True, False)
+    >>> all_fill(np.full(3, np.nan), np.nan), all_fill(np.array([np.nan, 1.0]), np.nan)
+    (True, False)
+    """
+    a = np.asarray(a)
+    if a.size == 0:
+        return True
+    if a.dtype.kind == "f" and a.dtype.itemsize in (4, 8):
+        f = np.asarray(fill, dtype=a.dtype)
+        ints = np.uint32 if a.dtype.itemsize == 4 else np.uint64
+        flat = np.ascontiguousarray(a).reshape(-1).view(ints)
+        if np.isnan(f):
+            if HAVE_NUMBA:
+                exp, mantissa = _NAN_BITS[a.dtype.itemsize]
+                return bool(_nb_all_nan(flat, ints(exp), ints(mantissa)))
+            return bool(np.isnan(a).all())
+        bits = f.reshape(1).view(ints)[0]
+        if HAVE_NUMBA:
+            return bool(_nb_all_equal(flat, bits))
+        return bool((flat == bits).all())
+    return bool((a == np.asarray(fill, dtype=a.dtype)).all())
+
+
+_NAN_BITS = {4: (0x7F800000, 0x007FFFFF), 8: (0x7FF0000000000000, 0x000FFFFFFFFFFFFF)}
+"""Exponent and mantissa bits of float32 and float64: a NaN has every exponent bit set
+and a non-zero mantissa."""
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _nb_all_equal(bits, value):  # pragma: no cover - compiled
+        for i in range(bits.size):
+            if bits[i] != value:
+                return False
+        return True
+
+    @njit(cache=True, nogil=True)
+    def _nb_all_nan(bits, exp, mantissa):  # pragma: no cover - compiled
+        for i in range(bits.size):
+            b = bits[i]
+            if (b & exp) != exp or (b & mantissa) == 0:
+                return False
+        return True
 
 
 def _each_array(write: Callable[[Any], None], items: Iterable[Any]) -> None:

@@ -156,17 +156,28 @@ def _compiled(
     rain = np.ascontiguousarray(_stored(fine, "qr")) if "qr" in fine else zero
     outs = {n: np.empty(t.shape) for n in wanted}
     dummy = np.empty((1, 1, 1))
-    # a pressure profile: the Exner function once per level; 3-D pressure: per cell
+    # a pressure profile: the Exner function once per level; 3-D pressure: per cell, from
+    # a table of the level's distinct float32 values where it is small (_exner_tables)
     per_level = p.ndim == 1
     p_or_exner = (
         ((np.asarray(p, np.float64) / thermo.P0) ** thermo.KAPPA)[:, None, None]
         if per_level
         else np.ascontiguousarray(p)
     )
+    nz = t.shape[0]
+    table, lo, width = np.zeros((1, 1)), np.zeros(nz, np.int64), np.zeros(nz, np.int64)
+    bits = np.zeros((1, 1, 1), np.int32)
+    if not per_level and p_or_exner.dtype == np.float32:
+        table, lo, width = _exner_tables(p_or_exner)
+        bits = p_or_exner.view(np.int32)
     _nb_conserved(
         np.ascontiguousarray(t),
         p_or_exner,
         per_level,
+        table,
+        lo,
+        width,
+        bits,
         np.ascontiguousarray(qv),
         np.ascontiguousarray(qc),
         ice,
@@ -185,7 +196,66 @@ def _compiled(
     return outs
 
 
+TABLE_MAX = 1 << 16
+"""Largest number of distinct float32 pressures of one level that the Exner function is
+tabulated for (512 KiB of float64; about 500 Pa of range near 1000 hPa)."""
+
+
+def _exner_tables(p: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per level of a float32 pressure slab ``(k, ny, nx)``: the Exner function
+    ``(p / P0) ** KAPPA`` of every float32 value between the level's smallest and largest
+    pressure, where that range holds at most :data:`TABLE_MAX` values.
+
+    Positive float32 numbers are ordered like their bit patterns, so a value's table index
+    is its bits minus those of the level's smallest value. The table holds exactly the
+    values the per-cell computation gives (the same ``pow`` of the same float64 numbers),
+    computed once per distinct pressure instead of once per cell.
+
+    Returns
+    -------
+    tuple
+        ``table`` ``(k, width_max)`` float64, ``lo`` ``(k,)`` (bits of each level's
+        smallest value) and ``width`` ``(k,)`` (entries of each level's table; 0 where the
+        level is left to the per-cell computation: too wide a range, or a value that is
+        not a positive finite number).
+    """
+    bits = np.ascontiguousarray(p, dtype=np.float32).view(np.int32)
+    k = bits.shape[0]
+    lo = np.empty(k, np.int64)
+    hi = np.empty(k, np.int64)
+    _nb_level_range(bits, lo, hi)
+    ok = (lo > 0) & (hi < 0x7F800000) & (hi - lo + 1 <= TABLE_MAX)
+    width = np.where(ok, hi - lo + 1, 0).astype(np.int64)
+    size = max(1, int(width.max(initial=0)))
+    values = (np.where(ok, lo, 0)[:, None] + np.arange(size)).astype(np.int32).view(np.float32)
+    table = np.empty((k, size))
+    _nb_exner_table(values, lo, width, table)
+    return table, lo, width
+
+
 if HAVE_NUMBA:
+
+    @njit(parallel=True, cache=True)
+    def _nb_level_range(bits, lo, hi):  # pragma: no cover - compiled
+        nz, ny, nx = bits.shape
+        for k in prange(nz):
+            a = np.int64(bits[k, 0, 0])
+            b = a
+            for j in range(ny):
+                for i in range(nx):
+                    v = np.int64(bits[k, j, i])
+                    a = min(a, v)
+                    b = max(b, v)
+            lo[k] = a
+            hi[k] = b
+
+    @njit(parallel=True, cache=True)
+    def _nb_exner_table(values, lo, width, table):  # pragma: no cover - compiled
+        """The per-cell expression of _nb_conserved for each tabulated float32 value."""
+        for k in prange(lo.size):
+            for n in range(width[k]):
+                table[k, n] = (np.float64(values[k, n]) / _P0) ** _KAPPA
+
     _LV_CP = thermo.LV / thermo.CP
     _LS_CP = thermo.LS / thermo.CP
     _P0, _KAPPA, _EPS = thermo.P0, thermo.KAPPA, thermo.EPS
@@ -195,6 +265,10 @@ if HAVE_NUMBA:
         t,
         p_or_exner,
         per_level,
+        table,
+        lo,
+        width,
+        p_bits,
         qv,
         qc,
         qi,
@@ -218,6 +292,8 @@ if HAVE_NUMBA:
                 tk = np.float64(t[k, j, i])
                 if per_level:
                     pi = p_or_exner[k, 0, 0]
+                elif width[k] > 0:  # the level's table: the same pow, computed once
+                    pi = table[k, np.int64(p_bits[k, j, i]) - lo[k]]
                 else:
                     pi = (np.float64(p_or_exner[k, j, i]) / _P0) ** _KAPPA
                 rv = np.float64(qv[k, j, i])

@@ -49,6 +49,9 @@ STATE_FORMAT = 1
 _DIRECTIONAL = re.compile(r"(^|_)[uv](_|$)")
 _BLOCK = 1 << 22  # samples per block of the up-front reads
 _PROTOTYPE = default_buffer_prototype()
+BLOCK_BATCHES = 16
+"""Batches gathered together by one pass over the arrays (Python work per batch is then a
+few slices), and handed from the reading thread to the consumer as one item."""
 
 
 class BatchReader:
@@ -99,7 +102,9 @@ class BatchReader:
     worker, workers
         This reader's share of every epoch: worker ``worker`` of ``workers``.
     prefetch
-        Batches the background thread may have ready (0: no thread).
+        Batches the background thread may have ready (0: no thread). The thread gathers
+        and hands over blocks of :data:`BLOCK_BATCHES` batches, so up to that many more
+        are held.
     read_threads
         Threads that read and decompress the arrays of a buffer concurrently.
     """
@@ -441,11 +446,15 @@ class BatchReader:
         Reading runs on a background thread when ``prefetch > 0``; closing the iterator
         stops it.
         """
+        make = lambda: self._produce(int(epoch), int(start))  # noqa: E731
         if self.prefetch == 0:
-            return self._produce(int(epoch), int(start))
-        return prefetched(lambda: self._produce(int(epoch), int(start)), self.prefetch)
+            return _flatten(make())
+        # the thread hands over blocks of batches: ``prefetch`` batches ahead at least
+        return _flatten(prefetched(make, -(-self.prefetch // BLOCK_BATCHES)))
 
-    def _produce(self, epoch: int, start: int) -> Iterator[Batch]:
+    def _produce(self, epoch: int, start: int) -> Iterator[list[Batch]]:
+        """Lists of consecutive batches: blocks of up to :data:`BLOCK_BATCHES` batches
+        gathered at once (one kernel call per array and block), or single augmented ones."""
         groups = self._groups(epoch)
         sizes = plan.buffer_sizes(groups, self._per_unit)
         total = int(sizes.sum())
@@ -457,7 +466,9 @@ class BatchReader:
         pos = start * bs
         g0, skip = plan.locate(sizes, pos)
         pieces: list[tuple[Batch, NDArray[np.int64], NDArray[np.int8] | None]] = []
-        filled = 0
+        block: Batch = {}
+        ids = np.empty(0, np.int64)
+        filled = size = 0  # samples in the current block (or augmented batch), its length
         ahead = ThreadPoolExecutor(1)  # reads the next buffer while this one is served
         # two sets of buffer arrays, used in turn: reused memory is not paged in again
         spaces: list[Batch] = [{}, {}]
@@ -465,7 +476,13 @@ class BatchReader:
             future = ahead.submit(self._read, groups[g0], spaces[g0 % 2])
             for g in range(g0, len(groups)):
                 buf = self._buffer(epoch, g, groups[g])
-                data = future.result()
+                try:
+                    data = future.result()
+                except BaseException:
+                    if not self.augment and filled >= bs:  # the whole batches read so far
+                        block["sample"] = ids
+                        yield self._split({n: a[: filled - filled % bs] for n, a in block.items()})
+                    raise
                 if g + 1 < len(groups) and pos + buf.samples.size - skip < end:
                     future = ahead.submit(self._read, groups[g + 1], spaces[(g + 1) % 2])
                 codes = None
@@ -477,18 +494,31 @@ class BatchReader:
                     )
                 i, skip = skip, 0
                 while i < buf.samples.size and pos < end:
-                    take = min(bs - filled, buf.samples.size - i, end - pos)
+                    if filled == 0:
+                        size = min(bs if self.augment else BLOCK_BATCHES * bs, end - pos)
+                        if codes is None:
+                            block = self._empty_block(data, size)
+                            ids = np.empty(size, np.int64)
+                    take = min(size - filled, buf.samples.size - i)
                     rows = buf.positions[i : i + take]
-                    pieces.append(
-                        (
-                            {n: a[rows] for n, a in data.items()},
-                            buf.samples[i : i + take],
-                            None if codes is None else codes[i : i + take],
+                    if codes is None:  # gathered (and normalized) into the block in one pass
+                        self._gather(data, rows, block, filled)
+                        ids[filled : filled + take] = buf.samples[i : i + take]
+                    else:
+                        pieces.append(
+                            (
+                                {n: a[rows] for n, a in data.items()},
+                                buf.samples[i : i + take],
+                                codes[i : i + take],
+                            )
                         )
-                    )
                     filled, i, pos = filled + take, i + take, pos + take
-                    if filled == bs or pos == end:
-                        yield self._finish(pieces)
+                    if filled == size:
+                        if codes is None:
+                            block["sample"] = ids
+                            yield self._split(block)
+                        else:
+                            yield [self._finish(pieces)]
                         pieces, filled = [], 0
                 del data
                 if pos >= end:
@@ -546,8 +576,37 @@ class BatchReader:
                     f.result()
         return out
 
+    def _empty_block(self, data: Batch, n: int) -> Batch:
+        """Uninitialised arrays of ``n`` samples, shaped like the buffer arrays ``data``."""
+        return {k: np.empty((n, *a.shape[1:]), dtype=a.dtype) for k, a in data.items()}
+
+    def _gather(self, data: Batch, rows: NDArray, block: Batch, at: int) -> None:
+        """Rows ``rows`` of the buffer arrays into ``block[name][at:]``, normalized ones
+        through :meth:`Statistics.take` (gather and normalization in one pass)."""
+        for n, a in data.items():
+            dst = block[n][at : at + rows.size]
+            if self.statistics is not None and n in self.normalized and a.dtype.kind == "f":
+                self.statistics.take(n, a, rows, dst)
+            elif a.dtype == object:
+                dst[...] = a[rows]
+            else:
+                np.take(a, rows, axis=0, out=dst)
+
+    def _split(self, block: Batch) -> list[Batch]:
+        """A gathered block as consecutive batches (views into it), with scene labels."""
+        n = len(block["sample"])
+        bs = self.batch_size
+        out = []
+        for lo in range(0, n, bs):
+            batch = {k: a[lo : lo + bs] for k, a in block.items()}
+            if self._scene is not None:
+                batch[selection.SCENE_KEY] = self._scene[batch["sample"]]
+            out.append(batch)
+        return out
+
     def _finish(self, pieces: Sequence[tuple[Batch, NDArray, NDArray | None]]) -> Batch:
-        """Join the pieces of one batch; augment, normalize, add indices and labels."""
+        """Join the pieces of one augmented batch; augment, normalize, add indices and
+        labels."""
         if len(pieces) == 1:
             batch, ids, codes = dict(pieces[0][0]), pieces[0][1], pieces[0][2]
         else:
@@ -590,6 +649,17 @@ class BatchReader:
             f"unit {self.unit}, batch_size {self.batch_size}, worker {self.worker} of "
             f"{self.workers}, where {selection.describe_where(self.where)})"
         )
+
+
+def _flatten(blocks: Iterator[list[Batch]]) -> Iterator[Batch]:
+    """The batches of a stream of blocks; closing it closes the stream (and its thread)."""
+    try:
+        for block in blocks:
+            yield from block
+    finally:
+        close = getattr(blocks, "close", None)
+        if close is not None:
+            close()
 
 
 def _positive(value: int, name: str) -> int:

@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from lesprep._jit import HAVE_NUMBA, njit
 from lesprep.errors import ConfigError
 
 
@@ -77,12 +78,55 @@ class Statistics:
         out[...] = work
         return out
 
+    def take(self, name: str, src: NDArray, rows: NDArray, out: NDArray) -> NDArray:
+        """``apply`` of the rows ``rows`` of ``src`` (along the first axis) into ``out``.
+
+        The gather and the normalization are one pass (compiled when numba is present),
+        with the values :meth:`apply` gives: each value is converted to float64, centred,
+        multiplied by ``1 / std`` and rounded once to ``out``'s type.
+        """
+        take_normalized(src, rows, self._get(self.mean, name), 1.0 / self.scale(name), out)
+        return out
+
     def invert(self, name: str, y: NDArray) -> NDArray:
         """``y * std + mean``: the physical values of normalized ``y``."""
         y = np.asarray(y)
         dt = y.dtype if y.dtype.kind == "f" else np.dtype(np.float64)
         x = y.astype(np.float64) * self.scale(name) + self._get(self.mean, name)
         return x.astype(dt, copy=False)
+
+
+def take_normalized(
+    src: NDArray, rows: NDArray, mean: float, inv_scale: float, out: NDArray
+) -> None:
+    """``out[i] = (float64(src[rows[i]]) - mean) * inv_scale``, rounded to ``out``'s type.
+
+    ``src`` and ``out`` have the same trailing shape; ``out`` has ``len(rows)`` rows.
+    """
+    src, rows = np.asarray(src), np.asarray(rows, dtype=np.int64)
+    if out.shape != (rows.size, *src.shape[1:]):
+        raise ValueError(f"out has shape {out.shape}; expected {(rows.size, *src.shape[1:])}")
+    width = int(np.prod(src.shape[1:], dtype=np.int64))
+    flat_src = src.reshape(src.shape[0], width) if src.flags.c_contiguous else None
+    flat_out = out.reshape(rows.size, width) if out.flags.c_contiguous else None
+    if HAVE_NUMBA and flat_src is not None and flat_out is not None and out.dtype.kind == "f":
+        _nb_take_normalized(flat_src, rows, float(mean), float(inv_scale), flat_out)
+        return
+    work = src[rows].astype(np.float64)
+    work -= mean
+    work *= inv_scale
+    out[...] = work
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True, error_model="numpy")
+    def _nb_take_normalized(src, rows, mean, inv, out):  # pragma: no cover - compiled
+        width = src.shape[1]
+        for i in range(rows.size):
+            r = rows[i]
+            for j in range(width):
+                out[i, j] = (np.float64(src[r, j]) - mean) * inv
 
 
 def from_document(doc: Mapping[str, Any], source: str) -> Statistics:

@@ -422,7 +422,7 @@ def test_quantized_count_engines_agree_with_numpy_spacing() -> None:
         [
             rng.uniform(250.0, 300.0, 400),
             -rng.uniform(1e-9, 1e-3, 200),
-            np.array([0.0, np.nan, 1e-45, 3e-39, 1.0, 2.0, 0.5, 2.0**-126, 1e-40]),
+            np.array([0.0, np.nan, 1e-45, 3e-39, 1.0, 2.0, 0.5, 2.0**-126, 1e-40, 1e30, 3e38]),
         ]
     )
     step = np.spacing(np.abs(mean).astype(np.float32)).astype(np.float64)

@@ -152,7 +152,33 @@ if HAVE_NUMBA:
             bi = t - p * nyp
             r0 = bi * k
             o = out[p, bi]
-            if k <= _ROWWISE_MAX:
+            if k == 2:  # the row-wise sums below, in their order, without work rows
+                xa, xb = cmx[p, r0], cmx[p, r0 + 1]
+                ya, yb = cmy[p, r0], cmy[p, r0 + 1]
+                ca, cb = cc[p, r0], cc[p, r0 + 1]
+                for bj in range(nxp):
+                    i0 = 2 * bj
+                    i1 = i0 + 1
+                    cx = (((0.0 + xa[i0]) + xa[i1]) + xb[i0]) + xb[i1]
+                    cy = (((0.0 + ya[i0]) + ya[i1]) + yb[i0]) + yb[i1]
+                    cx = cx / kk
+                    cy = cy / kk
+                    tx = 0.0
+                    ty = 0.0
+                    acc = 0.0
+                    for xv, yv, cv in (
+                        (xa[i0], ya[i0], ca[i0]),
+                        (xa[i1], ya[i1], ca[i1]),
+                        (xb[i0], yb[i0], cb[i0]),
+                        (xb[i1], yb[i1], cb[i1]),
+                    ):
+                        dx = xv - cx
+                        dy = yv - cy
+                        tx += dx
+                        ty += dy
+                        acc += cv + nc * dx * dy
+                    o[bj] = nb_cofinish(nc * tx, nc * ty, acc, nc * kk)
+            elif k <= _ROWWISE_MAX:
                 ux = np.zeros(nxp)
                 uy = np.zeros(nxp)
                 tx = np.zeros(nxp)

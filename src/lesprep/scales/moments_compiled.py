@@ -6,8 +6,6 @@ compare the two. Without numba this module defines nothing and the numpy engine 
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from lesprep._jit import HAVE_NUMBA, njit, prange
@@ -324,10 +322,17 @@ if HAVE_NUMBA:
         count = 0
         for i in prange(mean.size):
             m = mean[i]
-            a = np.float64(np.float32(abs(m)))
+            af = np.float32(abs(m))
+            a = np.float64(af)
             step = 1.401298464324817e-45
             if a >= 1.1754943508222875e-38:
-                step = math.ldexp(1.0, math.frexp(a)[1] - 24)
+                # 2**(frexp(a)[1] - 24) from the float32 exponent field E: frexp gives
+                # E - 126, so 2**(E - 150), built from its float64 bits (no libm calls)
+                e = (np.int64(af.view(np.int32)) >> 23) & 0xFF
+                if e == 255:  # inf: frexp's exponent is 0
+                    step = 5.960464477539063e-08
+                else:
+                    step = np.int64((e - 150 + 1023) << 52).view(np.float64)
             hit = m != 0.0 and m == m and np.float64(var[i]) < (steps * step) * (steps * step)
             count += 1 if hit else 0
         return count

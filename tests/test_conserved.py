@@ -292,6 +292,15 @@ def test_ice_saturation_mixing_ratio_against_metpy() -> None:
     np.testing.assert_allclose(thermo.saturation_mixing_ratio_ice(p, t), ref, rtol=2e-3)
 
 
+def _warm_slab(rng: np.random.Generator, shape: tuple[int, ...]) -> dict[str, np.ndarray]:
+    """float32 T, qv and qc of a warm slab, drawn in the same order as before."""
+    return {
+        "T": rng.uniform(270.0, 295.0, shape).astype(np.float32),
+        "qv": rng.uniform(2e-3, 1.2e-2, shape).astype(np.float32),
+        "qc": rng.uniform(0.0, 1e-3, shape).astype(np.float32),
+    }
+
+
 @pytest.mark.parametrize("species", [(), ("qi",), ("qi", "qr")])
 @pytest.mark.parametrize("profile", [False, True])
 def test_per_slab_conserved_engines_agree(species, profile) -> None:
@@ -300,11 +309,7 @@ def test_per_slab_conserved_engines_agree(species, profile) -> None:
 
     rng = np.random.default_rng(4)
     shape = (3, 5, 6)
-    fine = {
-        "T": rng.uniform(270.0, 295.0, shape).astype(np.float32),
-        "qv": rng.uniform(2e-3, 1.2e-2, shape).astype(np.float32),
-        "qc": rng.uniform(0.0, 1e-3, shape).astype(np.float32),
-    }
+    fine = _warm_slab(rng, shape)
     for s in species:
         fine[s] = rng.uniform(0.0, 2e-4, shape).astype(np.float32)
     p = np.array([95000.0, 90000.0, 85000.0])
@@ -326,11 +331,7 @@ def test_exner_table_gives_the_per_cell_values(monkeypatch) -> None:
 
     rng = np.random.default_rng(5)
     shape = (3, 6, 7)
-    fine = {
-        "T": rng.uniform(270.0, 295.0, shape).astype(np.float32),
-        "qv": rng.uniform(2e-3, 1.2e-2, shape).astype(np.float32),
-        "qc": rng.uniform(0.0, 1e-3, shape).astype(np.float32),
-    }
+    fine = _warm_slab(rng, shape)
     spread = np.array([0.05, 0.2, 30.0])[:, None, None]  # Pa: narrow, medium, wide
     p = np.array([95000.0, 90000.0, 85000.0])[:, None, None] + spread * rng.normal(size=shape)
     p = p.astype(np.float32)

@@ -159,10 +159,8 @@ if HAVE_NUMBA:
                 for bj in range(nxp):
                     i0 = 2 * bj
                     i1 = i0 + 1
-                    cx = (((0.0 + xa[i0]) + xa[i1]) + xb[i0]) + xb[i1]
-                    cy = (((0.0 + ya[i0]) + ya[i1]) + yb[i0]) + yb[i1]
-                    cx = cx / kk
-                    cy = cy / kk
+                    cx = nb_mean4(xa[i0], xa[i1], xb[i0], xb[i1], kk)
+                    cy = nb_mean4(ya[i0], ya[i1], yb[i0], yb[i1], kk)
                     tx = 0.0
                     ty = 0.0
                     acc = 0.0

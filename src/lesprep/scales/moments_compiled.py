@@ -200,12 +200,7 @@ if HAVE_NUMBA:
                 for bj in range(nxp):
                     i0 = 2 * bj
                     i1 = i0 + 1
-                    s = 0.0
-                    s += ma[i0]
-                    s += ma[i1]
-                    s += mb[i0]
-                    s += mb[i1]
-                    m0 = s / kk
+                    m0 = nb_mean4(ma[i0], ma[i1], mb[i0], mb[i1], kk)
                     s1b = 0.0
                     a2 = 0.0
                     a3 = 0.0

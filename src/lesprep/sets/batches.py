@@ -23,6 +23,7 @@ loader.
 from __future__ import annotations
 
 import copy
+import functools
 import os
 import queue
 import re
@@ -446,7 +447,7 @@ class BatchReader:
         Reading runs on a background thread when ``prefetch > 0``; closing the iterator
         stops it.
         """
-        make = lambda: self._produce(int(epoch), int(start))  # noqa: E731
+        make = functools.partial(self._produce, int(epoch), int(start))
         if self.prefetch == 0:
             return _flatten(make())
         # the thread hands over blocks of batches: ``prefetch`` batches ahead at least

@@ -230,3 +230,83 @@ def test_compiled_chain_from_sums_matches_the_reference() -> None:
     assert np.isnan(fast[1, 1, 1]) and np.isnan(ref[1, 1, 1])
     np.testing.assert_allclose(fast, ref, rtol=1e-10, atol=1e-14)
     assert fast[0, 0, 0] in (0.0, 1.0)
+
+
+def _per_cell_chain():
+    """The compiled chain written one cell at a time, erfc called for every cell: the
+    plain form of the blocked kernel (the same operations on the same operands)."""
+    numba = pytest.importorskip("numba")
+    lv_cp, eps = thermo.LV / thermo.CP, thermo.EPS
+    p0, kappa, t0 = thermo.P0, thermo.KAPPA, thermo.T0
+
+    @numba.njit(error_model="numpy")
+    def chain(qt, thl, p, m2q, m2t, cqt, n, out, qs_out):
+        for i in range(out.size):
+            pi = (p[i] / p0) ** kappa
+            tc = thl[i] * pi - t0
+            es = 611.2 * np.exp(17.67 * tc / (tc + 243.5))
+            dry = max(p[i] - es, 1e-3)
+            qs = eps * es / dry
+            qs_out[i] = qs
+            dqs = qs * p[i] / dry * (17.67 * 243.5 / (tc + 243.5) ** 2)
+            a = 1.0 / (1.0 + lv_cp * dqs)
+            b = a * pi * dqs
+            s = a * (qt[i] - qs)
+            vq, vt, cv = m2q[i] / n, m2t[i] / n, cqt[i] / n
+            if vq < 0.0 or vt < 0.0 or cv * cv > vq * vt * (1.0 + 1e-6):
+                out[i] = np.nan
+                continue
+            sig = math.sqrt(max(a * a * vq - 2.0 * a * b * cv + b * b * vt, 0.0))
+            if sig == 0.0:
+                out[i] = 1.0 if s > 0.0 else (0.0 if s <= 0.0 else np.nan)
+            else:
+                out[i] = 0.5 * math.erfc(-(s / sig) / math.sqrt(2.0))
+
+    return chain
+
+
+def test_blocked_kernel_equals_the_per_cell_chain_bit_for_bit() -> None:
+    # spreads over twelve decades put -s/sigma_s on both sides of the arguments where
+    # the kernel stores 0 or 1 without erfc; plus sigma_s = 0 with s > 0, s < 0 and s = 0
+    # exactly, NaN inputs, a non-covariance, and a size that is not a whole number of blocks
+    pytest.importorskip("numba")
+    chain = _per_cell_chain()
+    rng = np.random.default_rng(11)
+    size = 3 * 512 + 77
+    n = 16.0
+    qt = rng.uniform(2e-3, 1.6e-2, size)
+    thl = rng.uniform(280.0, 295.0, size)
+    p = rng.uniform(80000.0, 101000.0, size)
+    sq = 10.0 ** rng.uniform(-14.0, -2.0, size)
+    st = 10.0 ** rng.uniform(-10.0, 0.0, size)
+    rho = rng.uniform(-0.95, 0.95, size)
+    m2q, m2t, c = n * sq**2, n * st**2, n * rho * sq * st
+    m2q[:6] = m2t[:6] = c[:6] = 0.0  # sigma_s = 0
+    qs = np.empty(size)
+    chain(qt, thl, p, m2q, m2t, c, n, np.empty(size), qs)
+    qt[0], qt[1], qt[2] = qs[0] * 1.01, qs[1] * 0.99, qs[2]  # s > 0, s < 0, s = 0 exactly
+    qt[3], p[7], thl[8] = np.nan, np.nan, np.nan
+    c[9] = 3.0 * np.sqrt(m2q[9] * m2t[9])  # not a covariance
+    ref = np.empty(size)
+    chain(qt, thl, p, m2q, m2t, c, n, ref, qs)
+    fast = np.empty(size)
+    schemes.gaussian_cloud_fraction_from_sums(qt, thl, p, m2q, m2t, c, 16, out=fast, engine="numba")
+    x = ~np.isnan(ref)
+    np.testing.assert_array_equal(np.isnan(fast), ~x)
+    np.testing.assert_array_equal(fast[x].view(np.int64), ref[x].view(np.int64))  # same bits
+    assert (ref[0], ref[1], ref[2]) == (1.0, 0.0, 0.0)
+    assert np.isnan(ref[[3, 7, 8, 9]]).all()
+    # both skipped ranges and the erfc range are exercised
+    assert (ref[x] == 0.0).sum() > 50 and (ref[x] == 1.0).sum() > 50
+    assert ((ref[x] > 0.0) & (ref[x] < 1.0)).sum() > 50
+
+
+def test_erfc_is_exactly_0_and_2_where_the_kernel_skips_it() -> None:
+    # scipy.special.erfc (Cephes) and Python's math.erfc: outside references for the two
+    # cut-offs of lesprep.schemes (the float64 value there is exactly 0 or 2)
+    from scipy.special import erfc
+
+    far = np.linspace(schemes.ERFC_ZERO_BEYOND, 60.0, 100001)
+    assert np.all(erfc(far) == 0.0) and all(math.erfc(v) == 0.0 for v in far[::97])
+    near = np.linspace(-60.0, -schemes.ERFC_TWO_BEYOND, 100001)
+    assert np.all(erfc(near) == 2.0) and all(math.erfc(v) == 2.0 for v in near[::97])

@@ -55,7 +55,9 @@ Conventions
   :func:`lesprep.thermo.saturation_adjustment`, which forms cloud only where
   ``q_t > q_s`` strictly; ``s == 0`` exactly is a set of measure zero.
 * The erf formula is evaluated as ``0.5 * erfc(-Q / sqrt(2))``, the same function, which
-  keeps full relative precision for small fractions. NaN in any input gives NaN.
+  keeps full relative precision for small fractions. NaN in any input gives NaN. The
+  compiled path stores 0 and 1 without calling erfc where erfc is exactly 0 or 2 in
+  float64 (:data:`ERFC_ZERO_BEYOND`, :data:`ERFC_TWO_BEYOND`): the same values.
 * All arithmetic in float64.
 """
 
@@ -108,37 +110,86 @@ def _check_rh_critical(rh_critical: float) -> float:
     return value
 
 
+ERFC_ZERO_BEYOND = 28.0
+"""Above this argument erfc is below 1e-340, which rounds to 0.0 in float64 (the
+smallest subnormal is 4.9e-324; erfc(27.3) is already about 4e-326): the compiled
+Gaussian scheme stores 0.0 there without calling erfc. In clear air most coarse cells
+are that far from saturation (about 80 % of the 100 m cells of the benchmark case)."""
+
+ERFC_TWO_BEYOND = 6.5
+"""Below minus this argument erfc is 2 - erfc(|x|) with erfc(|x|) < 4e-20, which rounds
+to 2.0 in float64 (half the spacing of float64 just below 2 is 1.1e-16): the compiled
+scheme stores 1.0 there without calling erfc."""
+
+
 if HAVE_NUMBA:
     import math as _math
 
     _LV_CP = thermo.LV / thermo.CP
     _P0, _KAPPA, _T0, _EPS = thermo.P0, thermo.KAPPA, thermo.T0, thermo.EPS
 
+    _GAUSS_BLOCK = 512
+    """Cells per block of the compiled Gaussian scheme (work arrays of a few KiB)."""
+
+    _USE_X = -1.0
+    """Marker of the compiled Gaussian scheme: the fraction comes from erfc of ``x``."""
+
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def _nb_gaussian(qt, thl, p, m2q, m2t, cqt, n, out):  # pragma: no cover - compiled
-        for i in prange(out.size):
-            pi = (p[i] / _P0) ** _KAPPA
-            tl = thl[i] * pi
-            tc = tl - _T0
-            es = 611.2 * np.exp(17.67 * tc / (tc + 243.5))
-            dry = max(p[i] - es, 1e-3)
-            qs = _EPS * es / dry
-            dqs = qs * p[i] / dry * (17.67 * 243.5 / (tc + 243.5) ** 2)
-            a = 1.0 / (1.0 + _LV_CP * dqs)
-            b = a * pi * dqs
-            s = a * (qt[i] - qs)
-            vq = m2q[i] / n
-            vt = m2t[i] / n
-            cv = cqt[i] / n
-            if vq < 0.0 or vt < 0.0 or cv * cv > vq * vt * (1.0 + 1e-6):
-                out[i] = np.nan
-                continue
-            var_s = a * a * vq - 2.0 * a * b * cv + b * b * vt
-            sig = _math.sqrt(max(var_s, 0.0))
-            if sig == 0.0:
-                out[i] = 1.0 if s > 0.0 else (0.0 if s <= 0.0 else np.nan)
-            else:
-                out[i] = 0.5 * _math.erfc(-(s / sig) / _math.sqrt(2.0))
+        """The Gaussian scheme per cell, in blocks of cells: the libm calls (``pow``,
+        ``exp``, ``erfc``) in loops of their own, so that the divisions and square roots
+        between them run in vector registers. Every value is the same IEEE operation on
+        the same operands as in a plain per-cell loop (no fast-math), so the results are
+        the same bits (tests/test_gaussian_scheme.py checks this)."""
+        size = out.size
+        nblk = (size + _GAUSS_BLOCK - 1) // _GAUSS_BLOCK
+        for blk in prange(nblk):
+            i0 = blk * _GAUSS_BLOCK
+            m = min(_GAUSS_BLOCK, size - i0)
+            pi = np.empty(m)
+            w = np.empty(m)
+            x = np.empty(m)
+            for j in range(m):
+                pi[j] = p[i0 + j] / _P0
+            for j in range(m):
+                pi[j] = pi[j] ** _KAPPA  # Exner function
+            for j in range(m):
+                tc = thl[i0 + j] * pi[j] - _T0
+                w[j] = 17.67 * tc / (tc + 243.5)
+            for j in range(m):
+                w[j] = np.exp(w[j])
+            for j in range(m):
+                i = i0 + j
+                tc = thl[i] * pi[j] - _T0
+                es = 611.2 * w[j]
+                dry = max(p[i] - es, 1e-3)
+                qs = _EPS * es / dry
+                dqs = qs * p[i] / dry * (17.67 * 243.5 / (tc + 243.5) ** 2)
+                a = 1.0 / (1.0 + _LV_CP * dqs)
+                b = a * pi[j] * dqs
+                s = a * (qt[i] - qs)
+                vq = m2q[i] / n
+                vt = m2t[i] / n
+                cv = cqt[i] / n
+                bad = vq < 0.0 or vt < 0.0 or cv * cv > vq * vt * (1.0 + 1e-6)
+                var_s = a * a * vq - 2.0 * a * b * cv + b * b * vt
+                sig = _math.sqrt(max(var_s, 0.0))
+                x[j] = -(s / sig) / _math.sqrt(2.0)
+                # the fraction where it needs no erfc: NaN (not a covariance), or the
+                # all-or-nothing limit sigma_s == 0 (1 where s > 0, 0 where s <= 0)
+                whole = 1.0 if s > 0.0 else (0.0 if s <= 0.0 else np.nan)
+                w[j] = np.nan if bad else (whole if sig == 0.0 else _USE_X)
+            for j in range(m):
+                v = w[j]
+                xj = x[j]
+                if v != _USE_X:  # (NaN differs from the marker too)
+                    out[i0 + j] = v
+                elif xj > ERFC_ZERO_BEYOND:  # erfc(x) < 1e-340: 0.0 in float64
+                    out[i0 + j] = 0.0
+                elif xj < -ERFC_TWO_BEYOND:  # erfc(x) = 2 - 4e-20: 2.0 in float64
+                    out[i0 + j] = 1.0
+                else:  # (NaN x gives NaN)
+                    out[i0 + j] = 0.5 * _math.erfc(xj)
 
     @njit(inline="always")
     def _nb_clip(x, lo, hi):  # pragma: no cover - compiled

@@ -288,23 +288,37 @@ if HAVE_NUMBA:
         for kj in prange(nz * ny):
             k = kj // ny
             j = kj - k * ny
+            # the Exner function of the row first (a gather or pow: scalar), then the
+            # formulas in a loop of their own, whose divisions LLVM can vectorise
+            exner = np.empty(nx)
             for i in range(nx):
-                tk = np.float64(t[k, j, i])
                 if per_level:
-                    pi = p_or_exner[k, 0, 0]
+                    exner[i] = p_or_exner[k, 0, 0]
                 elif width[k] > 0:  # the level's table: the same pow, computed once
-                    pi = table[k, np.int64(p_bits[k, j, i]) - lo[k]]
+                    exner[i] = table[k, np.int64(p_bits[k, j, i]) - lo[k]]
                 else:
-                    pi = (np.float64(p_or_exner[k, j, i]) / _P0) ** _KAPPA
-                rv = np.float64(qv[k, j, i])
-                rc = np.float64(qc[k, j, i])
-                ri = np.float64(qi[k, j, i]) if has_ice else 0.0
-                if w_qt:
-                    o_qt[k, j, i] = rv + rc + ri
-                if w_thl:
-                    o_thl[k, j, i] = (tk - _LV_CP * rc) / pi
-                if w_thil:
-                    o_thil[k, j, i] = (tk - (_LV_CP * rc + _LS_CP * ri)) / pi
-                if w_thv:
-                    cond = rc + ri + (np.float64(qr[k, j, i]) if has_rain else 0.0)
-                    o_thv[k, j, i] = tk / pi * (1.0 + rv / _EPS) / (1.0 + rv + cond)
+                    exner[i] = (np.float64(p_or_exner[k, j, i]) / _P0) ** _KAPPA
+            # one loop per output, without branches inside (ice and rain are 0.0 when
+            # absent, as in the formulas' plain form)
+            if w_qt:
+                for i in range(nx):
+                    ri = np.float64(qi[k, j, i]) if has_ice else 0.0
+                    o_qt[k, j, i] = np.float64(qv[k, j, i]) + np.float64(qc[k, j, i]) + ri
+            if w_thl:
+                for i in range(nx):
+                    tk = np.float64(t[k, j, i])
+                    o_thl[k, j, i] = (tk - _LV_CP * np.float64(qc[k, j, i])) / exner[i]
+            if w_thil:
+                for i in range(nx):
+                    tk = np.float64(t[k, j, i])
+                    rc = np.float64(qc[k, j, i])
+                    ri = np.float64(qi[k, j, i]) if has_ice else 0.0
+                    o_thil[k, j, i] = (tk - (_LV_CP * rc + _LS_CP * ri)) / exner[i]
+            if w_thv:
+                for i in range(nx):
+                    tk = np.float64(t[k, j, i])
+                    rv = np.float64(qv[k, j, i])
+                    ri = np.float64(qi[k, j, i]) if has_ice else 0.0
+                    cond = np.float64(qc[k, j, i]) + ri
+                    cond = cond + (np.float64(qr[k, j, i]) if has_rain else 0.0)
+                    o_thv[k, j, i] = tk / exner[i] * (1.0 + rv / _EPS) / (1.0 + rv + cond)

@@ -434,3 +434,30 @@ def test_quantized_count_engines_agree_with_numpy_spacing() -> None:
         assert quantized_count(mean.astype(np.float32), var, 4, engine=engine) == int(
             np.count_nonzero((mean.astype(np.float32) != 0) & (var < (4 * step) ** 2))
         ), engine
+
+
+@pytest.mark.skipif(not HAVE_NUMBA, reason="numba is not importable")
+@pytest.mark.parametrize(
+    ("shape", "factors"),
+    [((3, 72, 144), [2, 3, 4, 6, 12, 36]), ((2, 81, 81), [3, 9, 27, 81]), ((4, 64, 64), [2, 64])],
+)
+def test_merge_chain_equals_one_merge_per_level(shape, factors) -> None:
+    # hierarchical_moments merges every level in one compiled call (plane by plane);
+    # the same merges one level at a time (the per-level kernel, whose sums are those of
+    # the numpy reference, see test_numba_engine_equals_numpy_engine) give the same bits
+    from lesprep.scales import moments_compiled as mc
+    from lesprep.scales.moments import plan_hierarchy
+
+    x = np.random.default_rng(5).normal(280.0, 3.0, shape).astype(np.float32)
+    got = hierarchical_moments(x, factors, engine="numba")
+    levels: dict[int, list[np.ndarray]] = {}
+    for f, parent in plan_hierarchy(factors).items():
+        out = [np.empty((shape[0], shape[1] // f, shape[2] // f)) for _ in range(3)]
+        if parent is None:
+            mc.nb_moments(x, f, *out)
+        else:
+            mc.nb_merge(*levels[parent], parent * parent, f // parent, *out)
+        levels[f] = out
+    for f, (mean, m2, m3) in levels.items():
+        for a, b in ((got[f].mean, mean), (got[f].m2, m2), (got[f].m3, m3)):
+            np.testing.assert_array_equal(a.view(np.int64), b.view(np.int64))

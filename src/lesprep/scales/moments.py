@@ -500,6 +500,13 @@ def hierarchical_moments(
     planes = math.prod(lead)
     out = {f: [_empty(planes, ny // f, nx // f) for _ in range(3)] for f in plan}
 
+    levels = list(plan)
+    chain = (
+        np.array([-1 if p is None else levels.index(p) for p in plan.values()], np.int64),
+        np.array([f // (p or f) for f, p in plan.items()], np.int64),
+        np.array([(p or 1) ** 2 for p in plan.values()], np.int64),
+    )
+
     def work(offset: int, chunk: np.ndarray) -> None:
         sl = slice(offset, offset + chunk.shape[0])
         x = _prepare(chunk, eng)
@@ -507,9 +514,12 @@ def hierarchical_moments(
             target = [o[sl] for o in out[f]]
             if parent is None:
                 _first_level(x, f, eng, *target)
-            else:
+            elif eng != "numba":
                 source = [o[sl] for o in out[parent]]
                 _merge_level(*source, parent * parent, f // parent, eng, *target)
+        if eng == "numba" and len(levels) > 1:  # all merged levels in one compiled call
+            views = [tuple(out[f][j][sl] for f in levels) for j in range(3)]
+            compiled.nb_merge_chain(*views, *chain)
 
     _run(_work_items(arr, eng), work, eng)
     return {

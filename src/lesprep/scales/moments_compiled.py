@@ -179,82 +179,102 @@ if HAVE_NUMBA:
                             s1b += a[p, r, c] - m0
                     o1[bj] = m0 + s1b / n
 
-    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
-    def nb_merge(cmean, cm2, cm3, nc, k, mean, m2, m3):  # pragma: no cover - compiled
-        planes, nyc, nxc = cmean.shape
-        nyp = nyc // k
-        nxp = nxc // k
+    @njit(inline="always")
+    def nb_merge_row(cmean, cm2, cm3, nc, k, mean, m2, m3, p, bi):  # pragma: no cover
+        """Merge the k x k children of the parents in block row ``bi`` of plane ``p``."""
+        nxp = cmean.shape[2] // k
         kk = k * k
         n = nc * kk
+        r0 = bi * k
+        o1 = mean[p, bi]
+        o2 = m2[p, bi]
+        o3 = m3[p, bi]
+        if k == 2:  # constant stride, as in nb_moments
+            ma, mb = cmean[p, r0], cmean[p, r0 + 1]
+            va, vb = cm2[p, r0], cm2[p, r0 + 1]
+            wa, wb = cm3[p, r0], cm3[p, r0 + 1]
+            for bj in range(nxp):
+                i0 = 2 * bj
+                i1 = i0 + 1
+                m0 = nb_mean4(ma[i0], ma[i1], mb[i0], mb[i1], kk)
+                s1b = 0.0
+                a2 = 0.0
+                a3 = 0.0
+                s1b, a2, a3 = nb_merge1(ma[i0], va[i0], wa[i0], m0, nc, s1b, a2, a3)
+                s1b, a2, a3 = nb_merge1(ma[i1], va[i1], wa[i1], m0, nc, s1b, a2, a3)
+                s1b, a2, a3 = nb_merge1(mb[i0], vb[i0], wb[i0], m0, nc, s1b, a2, a3)
+                s1b, a2, a3 = nb_merge1(mb[i1], vb[i1], wb[i1], m0, nc, s1b, a2, a3)
+                o1[bj], o2[bj], o3[bj] = nb_finish(m0, nc * s1b, a2, a3, n)
+        elif k <= _ROWWISE_MAX:
+            s1 = np.zeros(nxp)
+            o1[:] = 0.0
+            o2[:] = 0.0
+            o3[:] = 0.0
+            for r in range(r0, r0 + k):
+                row = cmean[p, r]
+                for c in range(k):
+                    for bj in range(nxp):
+                        o1[bj] += row[bj * k + c]
+            for bj in range(nxp):
+                o1[bj] = o1[bj] / kk  # first-pass mean m0
+            for r in range(r0, r0 + k):
+                row = cmean[p, r]
+                row2 = cm2[p, r]
+                row3 = cm3[p, r]
+                for c in range(k):
+                    for bj in range(nxp):
+                        i = bj * k + c
+                        d = row[i] - o1[bj]
+                        c2 = row2[i]
+                        s1[bj] += d
+                        o2[bj] += c2 + nc * d * d
+                        o3[bj] += row3[i] + 3.0 * d * c2 + nc * d * d * d
+            for bj in range(nxp):
+                # nc*s1 is the fine-cell sum of deviations from m0
+                o1[bj], o2[bj], o3[bj] = nb_finish(o1[bj], nc * s1[bj], o2[bj], o3[bj], n)
+        else:
+            for bj in range(nxp):
+                c0 = bj * k
+                s = 0.0
+                for r in range(r0, r0 + k):
+                    for c in range(c0, c0 + k):
+                        s += cmean[p, r, c]
+                m0 = s / kk
+                s1b = 0.0
+                a2 = 0.0
+                a3 = 0.0
+                for r in range(r0, r0 + k):
+                    for c in range(c0, c0 + k):
+                        d = cmean[p, r, c] - m0
+                        c2 = cm2[p, r, c]
+                        s1b += d
+                        a2 += c2 + nc * d * d
+                        a3 += cm3[p, r, c] + 3.0 * d * c2 + nc * d * d * d
+                o1[bj], o2[bj], o3[bj] = nb_finish(m0, nc * s1b, a2, a3, n)
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def nb_merge(cmean, cm2, cm3, nc, k, mean, m2, m3):  # pragma: no cover - compiled
+        planes, nyc, _ = cmean.shape
+        nyp = nyc // k
         for t in prange(planes * nyp):
             p = t // nyp
-            bi = t - p * nyp
-            r0 = bi * k
-            o1 = mean[p, bi]
-            o2 = m2[p, bi]
-            o3 = m3[p, bi]
-            if k == 2:  # constant stride, as in nb_moments
-                ma, mb = cmean[p, r0], cmean[p, r0 + 1]
-                va, vb = cm2[p, r0], cm2[p, r0 + 1]
-                wa, wb = cm3[p, r0], cm3[p, r0 + 1]
-                for bj in range(nxp):
-                    i0 = 2 * bj
-                    i1 = i0 + 1
-                    m0 = nb_mean4(ma[i0], ma[i1], mb[i0], mb[i1], kk)
-                    s1b = 0.0
-                    a2 = 0.0
-                    a3 = 0.0
-                    s1b, a2, a3 = nb_merge1(ma[i0], va[i0], wa[i0], m0, nc, s1b, a2, a3)
-                    s1b, a2, a3 = nb_merge1(ma[i1], va[i1], wa[i1], m0, nc, s1b, a2, a3)
-                    s1b, a2, a3 = nb_merge1(mb[i0], vb[i0], wb[i0], m0, nc, s1b, a2, a3)
-                    s1b, a2, a3 = nb_merge1(mb[i1], vb[i1], wb[i1], m0, nc, s1b, a2, a3)
-                    o1[bj], o2[bj], o3[bj] = nb_finish(m0, nc * s1b, a2, a3, n)
-            elif k <= _ROWWISE_MAX:
-                s1 = np.zeros(nxp)
-                o1[:] = 0.0
-                o2[:] = 0.0
-                o3[:] = 0.0
-                for r in range(r0, r0 + k):
-                    row = cmean[p, r]
-                    for c in range(k):
-                        for bj in range(nxp):
-                            o1[bj] += row[bj * k + c]
-                for bj in range(nxp):
-                    o1[bj] = o1[bj] / kk  # first-pass mean m0
-                for r in range(r0, r0 + k):
-                    row = cmean[p, r]
-                    row2 = cm2[p, r]
-                    row3 = cm3[p, r]
-                    for c in range(k):
-                        for bj in range(nxp):
-                            i = bj * k + c
-                            d = row[i] - o1[bj]
-                            c2 = row2[i]
-                            s1[bj] += d
-                            o2[bj] += c2 + nc * d * d
-                            o3[bj] += row3[i] + 3.0 * d * c2 + nc * d * d * d
-                for bj in range(nxp):
-                    # nc*s1 is the fine-cell sum of deviations from m0
-                    o1[bj], o2[bj], o3[bj] = nb_finish(o1[bj], nc * s1[bj], o2[bj], o3[bj], n)
-            else:
-                for bj in range(nxp):
-                    c0 = bj * k
-                    s = 0.0
-                    for r in range(r0, r0 + k):
-                        for c in range(c0, c0 + k):
-                            s += cmean[p, r, c]
-                    m0 = s / kk
-                    s1b = 0.0
-                    a2 = 0.0
-                    a3 = 0.0
-                    for r in range(r0, r0 + k):
-                        for c in range(c0, c0 + k):
-                            d = cmean[p, r, c] - m0
-                            c2 = cm2[p, r, c]
-                            s1b += d
-                            a2 += c2 + nc * d * d
-                            a3 += cm3[p, r, c] + 3.0 * d * c2 + nc * d * d * d
-                    o1[bj], o2[bj], o3[bj] = nb_finish(m0, nc * s1b, a2, a3, n)
+            nb_merge_row(cmean, cm2, cm3, nc, k, mean, m2, m3, p, t - p * nyp)
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def nb_merge_chain(mean, m2, m3, parent, k, nc):  # pragma: no cover - compiled
+        """Every merged level of a hierarchy in one call, plane by plane: level ``i``
+        (``parent[i] >= 0``) merges ``k[i] x k[i]`` blocks of level ``parent[i]`` (count
+        ``nc[i]``), in list order. Each plane's coarser levels are merged from arrays that
+        are still in the cache, and the whole hierarchy costs one parallel launch. The
+        arithmetic is :func:`nb_merge`'s, block for block."""
+        planes = mean[0].shape[0]
+        for p in prange(planes):
+            for i in range(len(mean)):
+                q = parent[i]
+                if q < 0:
+                    continue
+                for bi in range(mean[i].shape[1]):
+                    nb_merge_row(mean[q], m2[q], m3[q], nc[i], k[i], mean[i], m2[i], m3[i], p, bi)
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_count(a, f, nonzero, out):  # pragma: no cover - compiled

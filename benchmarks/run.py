@@ -73,6 +73,14 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
         help="extra environment of the worker processes (e.g. glibc MALLOC_* tunables)",
     )
     p.add_argument("--samples", type=int, default=2**24, help="values of the 1-D sample array")
+    p.add_argument(
+        "--settle-free",
+        type=float,
+        default=2.0,
+        metavar="GIB",
+        help="before every step read the archive into the page cache until free memory is "
+        "below this (GiB; 0: off)",
+    )
     p.add_argument("--keep", action="store_true", help="keep the xarray and memory outputs")
     p.add_argument("--worker", default=None, help=argparse.SUPPRESS)
     p.add_argument("--params", default=None, help=argparse.SUPPRESS)

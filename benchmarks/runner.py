@@ -16,7 +16,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from helpers import HERE, MIB, ROOT, remove, status_kib, warm
+from helpers import HERE, MIB, ROOT, remove, settle_memory, status_kib, warm
 from trials import w_profile, w_storage
 from workers import (
     w_check,
@@ -90,6 +90,10 @@ class Runner:
         self.json_path = json_path
         self.timeout = timeout
         self.results: dict[str, Any] = {"steps": {}, "comparisons": {}, "errors": {}}
+        self.settle_paths: list[Path] = []
+        """Files read before every step until free memory is below ``settle_free``
+        (:func:`helpers.settle_memory`); empty: no settling."""
+        self.settle_free = 2 * 2**30
         self.ipc = out / "ipc"
         self.ipc.mkdir(parents=True, exist_ok=True)
 
@@ -107,8 +111,17 @@ class Runner:
         warm_paths: Iterable[str | Path] = (),
         timeout: float | None = None,
         record: bool = True,
+        prepare: Iterable[str | Path] = (),
     ) -> dict[str, Any]:
-        """Run one worker; raise RuntimeError if it fails. The result is kept under ``key``."""
+        """Run one worker; raise RuntimeError if it fails. The result is kept under ``key``.
+
+        Before the worker starts: the paths of ``prepare`` are removed (a step's previous
+        outputs), the free memory is settled (:attr:`settle_paths`), then the step's
+        inputs ``warm_paths`` are read into the page cache.
+        """
+        for path in prepare:
+            remove(path)
+        settled = settle_memory(self.settle_paths, self.settle_free) if self.settle_paths else {}
         warm_s = warm(warm_paths)
         t0 = time.perf_counter()
         os.sync()
@@ -141,6 +154,7 @@ class Runner:
         res["process_wall_s"] = wall
         res["loadavg_1min_before_after"] = [load0[0], os.getloadavg()[0]]
         res["warm_s"] = warm_s
+        res.update(settled)
         res["sync_before_s"] = sync_before
         t0 = time.perf_counter()
         os.sync()

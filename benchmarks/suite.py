@@ -41,6 +41,7 @@ class Job:
     params: dict[str, Any]
     warm: list[Path]
     cleanup: list[Path] = field(default_factory=list)
+    prepare: list[Path] = field(default_factory=list)
 
 
 RUN_FIELDS = ("time_s", "peak_rss_mib", "user_s", "system_s", "minor_faults", "process_wall_s")
@@ -58,7 +59,12 @@ class Suite:
         for i in range(max(1, self.args.repeat)):
             for job in (a, b) if i % 2 == 0 else (b, a):
                 res = self.r.step(
-                    job.key, job.worker, job.params, warm_paths=job.warm, record=False
+                    job.key,
+                    job.worker,
+                    job.params,
+                    warm_paths=job.warm,
+                    record=False,
+                    prepare=job.prepare,
                 )
                 for path in job.cleanup:
                     remove(path)
@@ -82,6 +88,9 @@ class Suite:
         self.lesprep_dir = self.data / "lesprep"
         env = dict(kv.split("=", 1) for kv in args.worker_env)
         self.r = Runner(Path(args.out), Path(args.json), args.step_timeout, env)
+        if args.settle_free > 0:  # every step starts with little free memory
+            self.r.settle_paths = [self.raw_root, self.canonical]
+            self.r.settle_free = int(args.settle_free * 2**30)
         self.dx = 50.0  # the demo cases' spacing (lesprep.demo.DemoCase.dx)
         self.scales = scale_texts(args.nx, args.ny, self.dx)
         self.labels = [label_of(float(s.split()[0])) for s in self.scales]
@@ -195,6 +204,7 @@ class Suite:
                     "patch_scales": self.patch_scales,
                 },
                 [self.canonical],
+                prepare=[self.lesprep_dir],  # removed before settling, not in the worker
             ),
             Job(
                 "coarsen_floor",

@@ -139,93 +139,112 @@ if HAVE_NUMBA:
                             sxy += dx * dy
                     o[bj] = nb_cofinish(s1x, s1y, sxy, n)
 
+    @njit(inline="always")
+    def nb_comerge_row(cc, cmx, cmy, nc, k, out, p, bi):  # pragma: no cover - compiled
+        """Merge the k x k children of the parents in block row ``bi`` of plane ``p``."""
+        nxp = cc.shape[2] // k
+        kk = k * k
+        r0 = bi * k
+        o = out[p, bi]
+        if k == 2:  # the row-wise sums below, in their order, without work rows
+            xa, xb = cmx[p, r0], cmx[p, r0 + 1]
+            ya, yb = cmy[p, r0], cmy[p, r0 + 1]
+            ca, cb = cc[p, r0], cc[p, r0 + 1]
+            for bj in range(nxp):
+                i0 = 2 * bj
+                i1 = i0 + 1
+                cx = nb_mean4(xa[i0], xa[i1], xb[i0], xb[i1], kk)
+                cy = nb_mean4(ya[i0], ya[i1], yb[i0], yb[i1], kk)
+                tx = 0.0
+                ty = 0.0
+                acc = 0.0
+                for xv, yv, cv in (
+                    (xa[i0], ya[i0], ca[i0]),
+                    (xa[i1], ya[i1], ca[i1]),
+                    (xb[i0], yb[i0], cb[i0]),
+                    (xb[i1], yb[i1], cb[i1]),
+                ):
+                    dx = xv - cx
+                    dy = yv - cy
+                    tx += dx
+                    ty += dy
+                    acc += cv + nc * dx * dy
+                o[bj] = nb_cofinish(nc * tx, nc * ty, acc, nc * kk)
+        elif k <= _ROWWISE_MAX:
+            ux = np.zeros(nxp)
+            uy = np.zeros(nxp)
+            tx = np.zeros(nxp)
+            ty = np.zeros(nxp)
+            o[:] = 0.0
+            for r in range(r0, r0 + k):
+                xr = cmx[p, r]
+                yr = cmy[p, r]
+                for c in range(k):
+                    for bj in range(nxp):
+                        ux[bj] += xr[bj * k + c]
+                        uy[bj] += yr[bj * k + c]
+            for bj in range(nxp):
+                ux[bj] = ux[bj] / kk  # first-pass means of the parents
+                uy[bj] = uy[bj] / kk
+            for r in range(r0, r0 + k):
+                xr = cmx[p, r]
+                yr = cmy[p, r]
+                cr = cc[p, r]
+                for c in range(k):
+                    for bj in range(nxp):
+                        i = bj * k + c
+                        dx = xr[i] - ux[bj]
+                        dy = yr[i] - uy[bj]
+                        tx[bj] += dx
+                        ty[bj] += dy
+                        o[bj] += cr[i] + nc * dx * dy
+            for bj in range(nxp):
+                # nc*s1 are the fine-cell sums of deviations from the first-pass means
+                o[bj] = nb_cofinish(nc * tx[bj], nc * ty[bj], o[bj], nc * kk)
+        else:
+            for bj in range(nxp):
+                c0 = bj * k
+                cx = 0.0
+                cy = 0.0
+                for r in range(r0, r0 + k):
+                    for c in range(c0, c0 + k):
+                        cx += cmx[p, r, c]
+                        cy += cmy[p, r, c]
+                cx = cx / kk
+                cy = cy / kk
+                s1x = 0.0
+                s1y = 0.0
+                acc = 0.0
+                for r in range(r0, r0 + k):
+                    for c in range(c0, c0 + k):
+                        dx = cmx[p, r, c] - cx
+                        dy = cmy[p, r, c] - cy
+                        s1x += dx
+                        s1y += dy
+                        acc += cc[p, r, c] + nc * dx * dy
+                o[bj] = nb_cofinish(nc * s1x, nc * s1y, acc, nc * kk)
+
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_comerge(cc, cmx, cmy, nc, k, out):  # pragma: no cover - compiled
         """Merge ``k x k`` children (co-moments ``cc``, means ``cmx``, ``cmy``, count
         ``nc`` each) into the parents' co-moments ``out``."""
-        planes, nyc, nxc = cc.shape
+        planes, nyc, _ = cc.shape
         nyp = nyc // k
-        nxp = nxc // k
-        kk = k * k
         for t in prange(planes * nyp):
             p = t // nyp
-            bi = t - p * nyp
-            r0 = bi * k
-            o = out[p, bi]
-            if k == 2:  # the row-wise sums below, in their order, without work rows
-                xa, xb = cmx[p, r0], cmx[p, r0 + 1]
-                ya, yb = cmy[p, r0], cmy[p, r0 + 1]
-                ca, cb = cc[p, r0], cc[p, r0 + 1]
-                for bj in range(nxp):
-                    i0 = 2 * bj
-                    i1 = i0 + 1
-                    cx = nb_mean4(xa[i0], xa[i1], xb[i0], xb[i1], kk)
-                    cy = nb_mean4(ya[i0], ya[i1], yb[i0], yb[i1], kk)
-                    tx = 0.0
-                    ty = 0.0
-                    acc = 0.0
-                    for xv, yv, cv in (
-                        (xa[i0], ya[i0], ca[i0]),
-                        (xa[i1], ya[i1], ca[i1]),
-                        (xb[i0], yb[i0], cb[i0]),
-                        (xb[i1], yb[i1], cb[i1]),
-                    ):
-                        dx = xv - cx
-                        dy = yv - cy
-                        tx += dx
-                        ty += dy
-                        acc += cv + nc * dx * dy
-                    o[bj] = nb_cofinish(nc * tx, nc * ty, acc, nc * kk)
-            elif k <= _ROWWISE_MAX:
-                ux = np.zeros(nxp)
-                uy = np.zeros(nxp)
-                tx = np.zeros(nxp)
-                ty = np.zeros(nxp)
-                o[:] = 0.0
-                for r in range(r0, r0 + k):
-                    xr = cmx[p, r]
-                    yr = cmy[p, r]
-                    for c in range(k):
-                        for bj in range(nxp):
-                            ux[bj] += xr[bj * k + c]
-                            uy[bj] += yr[bj * k + c]
-                for bj in range(nxp):
-                    ux[bj] = ux[bj] / kk  # first-pass means of the parents
-                    uy[bj] = uy[bj] / kk
-                for r in range(r0, r0 + k):
-                    xr = cmx[p, r]
-                    yr = cmy[p, r]
-                    cr = cc[p, r]
-                    for c in range(k):
-                        for bj in range(nxp):
-                            i = bj * k + c
-                            dx = xr[i] - ux[bj]
-                            dy = yr[i] - uy[bj]
-                            tx[bj] += dx
-                            ty[bj] += dy
-                            o[bj] += cr[i] + nc * dx * dy
-                for bj in range(nxp):
-                    # nc*s1 are the fine-cell sums of deviations from the first-pass means
-                    o[bj] = nb_cofinish(nc * tx[bj], nc * ty[bj], o[bj], nc * kk)
-            else:
-                for bj in range(nxp):
-                    c0 = bj * k
-                    cx = 0.0
-                    cy = 0.0
-                    for r in range(r0, r0 + k):
-                        for c in range(c0, c0 + k):
-                            cx += cmx[p, r, c]
-                            cy += cmy[p, r, c]
-                    cx = cx / kk
-                    cy = cy / kk
-                    s1x = 0.0
-                    s1y = 0.0
-                    acc = 0.0
-                    for r in range(r0, r0 + k):
-                        for c in range(c0, c0 + k):
-                            dx = cmx[p, r, c] - cx
-                            dy = cmy[p, r, c] - cy
-                            s1x += dx
-                            s1y += dy
-                            acc += cc[p, r, c] + nc * dx * dy
-                    o[bj] = nb_cofinish(nc * s1x, nc * s1y, acc, nc * kk)
+            nb_comerge_row(cc, cmx, cmy, nc, k, out, p, t - p * nyp)
+
+    @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
+    def nb_comerge_chain(co, mx, my, parent, k, nc):  # pragma: no cover - compiled
+        """Every merged level of a co-moment hierarchy in one call, plane by plane (as
+        :func:`~lesprep.scales.moments_compiled.nb_merge_chain`): level ``i`` with
+        ``parent[i] >= 0`` merges ``k[i] x k[i]`` blocks of that level, whose co-moments
+        are ``co[parent[i]]`` and means ``mx[parent[i]]``, ``my[parent[i]]``."""
+        planes = co[0].shape[0]
+        for p in prange(planes):
+            for i in range(len(co)):
+                q = parent[i]
+                if q < 0:
+                    continue
+                for bi in range(co[i].shape[1]):
+                    nb_comerge_row(co[q], mx[q], my[q], nc[i], k[i], co[i], p, bi)

@@ -449,6 +449,24 @@ def plan_hierarchy(factors: Iterable[int]) -> dict[int, int | None]:
     return plan
 
 
+def merge_chain(plan: dict[int, int | None]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The compiled merge chain of a :func:`plan_hierarchy` plan: per level (in the plan's
+    order) the index of its parent level (-1 for a level computed from the fine field),
+    the children per parent along each axis and the fine cells per child.
+
+    Examples
+    --------
+    >>> [a.tolist() for a in merge_chain(plan_hierarchy([2, 4, 12]))]
+    [[-1, 0, 1], [1, 2, 3], [1, 4, 16]]
+    """
+    levels = list(plan)
+    return (
+        np.array([-1 if p is None else levels.index(p) for p in plan.values()], np.int64),
+        np.array([f // (p or f) for f, p in plan.items()], np.int64),
+        np.array([(p or 1) ** 2 for p in plan.values()], np.int64),
+    )
+
+
 def hierarchical_moments(
     a: np.ndarray, factors: Iterable[int], *, engine: Engine = "auto"
 ) -> dict[int, BlockMoments]:
@@ -501,11 +519,7 @@ def hierarchical_moments(
     out = {f: [_empty(planes, ny // f, nx // f) for _ in range(3)] for f in plan}
 
     levels = list(plan)
-    chain = (
-        np.array([-1 if p is None else levels.index(p) for p in plan.values()], np.int64),
-        np.array([f // (p or f) for f, p in plan.items()], np.int64),
-        np.array([(p or 1) ** 2 for p in plan.values()], np.int64),
-    )
+    chain = merge_chain(plan)
 
     def work(offset: int, chunk: np.ndarray) -> None:
         sl = slice(offset, offset + chunk.shape[0])

@@ -21,6 +21,7 @@ SPINUP = "0 s"  # keep every generated time, so "ntimes" is what each step proce
 THRESHOLD = "1e-5 kg/kg"
 PATCH_LENGTHS_M = (1600.0, 6400.0)
 PATCH_SIZE = 16
+BALLAST = "settle-ballast.bin"  # scratch file read last when settling free memory
 CANON_READ = ("qc", "qv", "T", "w", "rh", "cloud_mask", "lwp", "p")  # what coarsening reads
 TARGETS = {
     "xarray_speedup": 20.0,  # xarray script time / lesprep time >= this
@@ -80,10 +81,54 @@ def mem_free_bytes() -> int:
     return 0
 
 
+def mem_total_bytes() -> int:
+    """``MemTotal`` of ``/proc/meminfo`` in bytes (0 where it cannot be read)."""
+    with contextlib.suppress(OSError):
+        for line in Path("/proc/meminfo").read_text().splitlines():
+            if line.startswith("MemTotal:"):
+                return int(line.split()[1]) * 1024
+    return 0
+
+
+def tree_bytes(paths: Iterable[str | Path]) -> int:
+    """Bytes of the files under ``paths`` (files or folders; missing ones count 0)."""
+    total = 0
+    for path in paths:
+        p = Path(path)
+        if p.is_file():
+            total += p.stat().st_size
+        elif p.is_dir():
+            total += sum(f.stat().st_size for f in p.rglob("*") if f.is_file())
+    return total
+
+
+def ballast_file(path: str | Path, nbytes: int) -> dict[str, float]:
+    """Make sure ``path`` is a scratch file of at least ``nbytes`` bytes, written once and
+    synced (its cached pages are clean, so the kernel can take them back at once).
+
+    :func:`settle_memory` reads it after the step's own inputs when those are too small to
+    bring free memory down to its target (a machine with more memory than archive).
+    """
+    p = Path(path)
+    have = p.stat().st_size if p.exists() else 0
+    t0 = time.perf_counter()
+    if nbytes > 0 and have < nbytes:
+        p.parent.mkdir(parents=True, exist_ok=True)
+        block = os.urandom(8 * MIB)
+        with open(p, "wb") as fh:
+            for _ in range(-(-nbytes // len(block))):
+                fh.write(block)
+            fh.flush()
+            os.fsync(fh.fileno())
+        have = p.stat().st_size
+    return {"ballast_gib": have / 2**30, "ballast_write_s": time.perf_counter() - t0}
+
+
 def settle_memory(paths: Iterable[str | Path], free_below: int) -> dict[str, float]:
     """Read files under ``paths`` into the page cache until ``MemFree`` is below
     ``free_below`` bytes (or the files run out), so that every timed step starts with
-    little free memory and writes into recycled page-cache pages.
+    little free memory and writes into recycled page-cache pages. Put a
+    :func:`ballast_file` last in ``paths`` so that the files do not run out first.
 
     On a virtual machine whose host takes back freed guest memory, a page that is free
     for a while is "cold": the guest's first write to it waits for the host. A step
@@ -91,6 +136,8 @@ def settle_memory(paths: Iterable[str | Path], free_below: int) -> dict[str, flo
     deleted) then pays several times more for its page-cache writes than a step that
     starts with the page cache full (measured: the same extended coarsening 55.7 s with
     17 GB free, 45.9 s with 5 GB free). Settling gives every step the second state.
+    Without a ballast file the archive alone left 8 GB free before a coarsening here and
+    about 3 GB before its floor (2026-12-05), so the two sides did not start alike.
     """
     t0 = time.perf_counter()
     before = mem_free_bytes()

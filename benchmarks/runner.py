@@ -245,7 +245,21 @@ def machine_info(out: Path) -> dict[str, Any]:
                 break
     with contextlib.suppress(Exception):
         info["affinity"] = len(os.sched_getaffinity(0))
+    info["free_page_reporting"] = free_page_reporting()
     return info
+
+
+def free_page_reporting() -> bool | None:
+    """Whether a virtio balloon device (device id 5) offers free page reporting (feature
+    bit 5): the guest then hands pages that stay free back to the host, and the next
+    write to them is slow. None where no virtio balloon is seen."""
+    found = None
+    for dev in Path("/sys/bus/virtio/devices").glob("*"):
+        with contextlib.suppress(OSError, ValueError):
+            if int((dev / "device").read_text(), 16) == 5:
+                bits = (dev / "features").read_text().strip()
+                found = bool(found) or (len(bits) > 5 and bits[5] == "1")
+    return found
 
 
 def fmt(x: Any, spec: str) -> str:

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from helpers import (
+    BALLAST,
     CASE,
     MIB,
     PATCH_LENGTHS_M,
@@ -20,8 +21,10 @@ from helpers import (
     STORE,
     TARGETS,
     THRESHOLD,
+    ballast_file,
     comparison,
     label_of,
+    mem_total_bytes,
     power_factors,
     remove,
     scale_texts,
@@ -89,7 +92,7 @@ class Suite:
         env = dict(kv.split("=", 1) for kv in args.worker_env)
         self.r = Runner(Path(args.out), Path(args.json), args.step_timeout, env)
         if args.settle_free > 0:  # every step starts with little free memory
-            self.r.settle_paths = [self.raw_root, self.canonical]
+            self.r.settle_paths = [self.raw_root, self.canonical, self.data / BALLAST]
             self.r.settle_free = int(args.settle_free * 2**30)
         self.dx = 50.0  # the demo cases' spacing (lesprep.demo.DemoCase.dx)
         self.scales = scale_texts(args.nx, args.ny, self.dx)
@@ -140,7 +143,8 @@ class Suite:
             f"{m.get('page_cache_write_gbps', 0):.2f} GB/s to the page cache, "
             f"{m.get('fsync_write_gbps', 0):.2f} GB/s with fsync; fresh memory first touched at "
             f"{m.get('memory_first_touch_gbps', 0):.2f} GB/s, touched again at "
-            f"{m.get('memory_second_touch_gbps', 0):.2f} GB/s"
+            f"{m.get('memory_second_touch_gbps', 0):.2f} GB/s; free page reporting to the "
+            f"host: {({True: 'yes', False: 'no'}).get(m.get('free_page_reporting'), 'not seen')}"
         )
         print("versions: " + ", ".join(f"{k} {val}" for k, val in v.items()), flush=True)
         res = self.r.step(
@@ -161,6 +165,11 @@ class Suite:
         self.raw_size = sum(Path(f).stat().st_size for f in self.files)
         self.r.results["config"]["raw_files"] = len(self.files)
         self.r.results["config"]["raw_gb"] = self.raw_size / 1e9
+        if self.r.settle_paths:  # so that settling reaches its target whatever the RAM
+            need = mem_total_bytes() - self.r.settle_free - self.raw_size + 2**30
+            made = ballast_file(self.data / BALLAST, max(0, need))
+            self.r.results["config"].update(made)
+            print(f"     settling ballast: {made['ballast_gib']:.1f} GiB", flush=True)
         self.r.step("jit_warm", "jit_warm", {})
 
     # ------------------------------------------------------------------ 3: ingest

@@ -70,36 +70,14 @@ def warm(paths: Iterable[str | Path]) -> float:
     return time.perf_counter() - t0
 
 
-def mem_free_bytes() -> int:
-    """``MemFree`` of ``/proc/meminfo`` in bytes (0 where there is no such file)."""
-    try:
-        for line in Path("/proc/meminfo").read_text().splitlines():
-            if line.startswith("MemFree:"):
-                return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 0
-
-
-def mem_total_bytes() -> int:
-    """``MemTotal`` of ``/proc/meminfo`` in bytes (0 where it cannot be read)."""
+def meminfo_bytes(field: str) -> int:
+    """A field of ``/proc/meminfo`` (``"MemFree"``, ``"MemTotal"``) in bytes (0 where
+    there is no such file or field)."""
     with contextlib.suppress(OSError):
         for line in Path("/proc/meminfo").read_text().splitlines():
-            if line.startswith("MemTotal:"):
+            if line.startswith(f"{field}:"):
                 return int(line.split()[1]) * 1024
     return 0
-
-
-def tree_bytes(paths: Iterable[str | Path]) -> int:
-    """Bytes of the files under ``paths`` (files or folders; missing ones count 0)."""
-    total = 0
-    for path in paths:
-        p = Path(path)
-        if p.is_file():
-            total += p.stat().st_size
-        elif p.is_dir():
-            total += sum(f.stat().st_size for f in p.rglob("*") if f.is_file())
-    return total
 
 
 def ballast_file(path: str | Path, nbytes: int) -> dict[str, float]:
@@ -140,14 +118,14 @@ def settle_memory(paths: Iterable[str | Path], free_below: int) -> dict[str, flo
     about 3 GB before its floor (2026-12-05), so the two sides did not start alike.
     """
     t0 = time.perf_counter()
-    before = mem_free_bytes()
+    before = meminfo_bytes("MemFree")
     buf = bytearray(8 * MIB)
     done = False
     for path in paths:
         p = Path(path)
         files = [p] if p.is_file() else [Path(r) / f for r, _, fs in os.walk(p) for f in fs]
         for f in sorted(files):
-            if mem_free_bytes() < free_below:
+            if meminfo_bytes("MemFree") < free_below:
                 done = True
                 break
             with contextlib.suppress(OSError), open(f, "rb", buffering=0) as fh:
@@ -158,7 +136,7 @@ def settle_memory(paths: Iterable[str | Path], free_below: int) -> dict[str, flo
     return {
         "settle_s": time.perf_counter() - t0,
         "mem_free_before_gib": before / 2**30,
-        "mem_free_after_gib": mem_free_bytes() / 2**30,
+        "mem_free_after_gib": meminfo_bytes("MemFree") / 2**30,
     }
 
 

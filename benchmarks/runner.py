@@ -16,7 +16,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from helpers import HERE, MIB, ROOT, remove, settle_memory, status_kib, warm
+from helpers import HERE, MIB, ROOT, meminfo_bytes, remove, settle_memory, status_kib, warm
 from trials import w_profile, w_storage
 from workers import (
     w_check,
@@ -234,10 +234,8 @@ def machine_info(out: Path) -> dict[str, Any]:
     with contextlib.suppress(OSError):
         info.update(disk_write_gbps(out))
     info["disk_free_gb"] = shutil.disk_usage(out).free / 1e9
-    with contextlib.suppress(OSError):
-        for line in Path("/proc/meminfo").read_text().splitlines():
-            if line.startswith("MemTotal:"):
-                info["ram_gib"] = round(int(line.split()[1]) / 2**20, 1)
+    if total := meminfo_bytes("MemTotal"):
+        info["ram_gib"] = round(total / 2**30, 1)
     with contextlib.suppress(OSError):
         for line in Path("/proc/cpuinfo").read_text().splitlines():
             if line.startswith("model name"):

@@ -24,7 +24,7 @@ from helpers import (
     ballast_file,
     comparison,
     label_of,
-    mem_total_bytes,
+    meminfo_bytes,
     power_factors,
     remove,
     scale_texts,
@@ -166,7 +166,7 @@ class Suite:
         self.r.results["config"]["raw_files"] = len(self.files)
         self.r.results["config"]["raw_gb"] = self.raw_size / 1e9
         if self.r.settle_paths:  # so that settling reaches its target whatever the RAM
-            need = mem_total_bytes() - self.r.settle_free - self.raw_size + 2**30
+            need = meminfo_bytes("MemTotal") - self.r.settle_free - self.raw_size + 2**30
             made = ballast_file(self.data / BALLAST, max(0, need))
             self.r.results["config"].update(made)
             print(f"     settling ballast: {made['ballast_gib']:.1f} GiB", flush=True)

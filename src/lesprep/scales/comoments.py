@@ -493,12 +493,16 @@ def hierarchical_comoments(
         for what, moments in (("moments_x", moments_x), ("moments_y", moments_y))
     ]
     out = {f: _empty(planes, ny // f, nx // f) for f in plan}
-    levels = list(plan)
     chain = merge_chain(plan)
-    merged = any(p is not None for p in plan.values())
 
     def work(offset: int, xc: np.ndarray, yc: np.ndarray) -> None:
         sl = slice(offset, offset + xc.shape[0])
+        if eng == "numba":  # every level in one compiled call, plane by plane
+            co = tuple(out[f][sl] for f in plan)
+            # (factor 1 has no means and is never a parent: its slot holds a stand-in)
+            mx, my = (tuple(m.get(f, out[f])[sl] for f in plan) for m in means)
+            compiled.nb_cohierarchy(_prepare(xc, eng), _prepare(yc, eng), co, mx, my, *chain)
+            return
         xp = yp = None
         for f, parent in plan.items():
             if f == 1:
@@ -507,14 +511,9 @@ def hierarchical_comoments(
                 if xp is None:
                     xp, yp = _prepare(xc, eng), _prepare(yc, eng)
                 _first_level(xp, yp, f, eng, means[0][f][sl], means[1][f][sl], out[f][sl])
-            elif eng != "numba":
+            else:
                 src = (out[parent][sl], means[0][parent][sl], means[1][parent][sl])
                 _merge_level(*src, parent * parent, f // parent, eng, out[f][sl])
-        if eng == "numba" and merged:  # all merged levels in one compiled call
-            co = tuple(out[f][sl] for f in levels)
-            # (a level without means, factor 1, is never a parent: its slot holds zeros)
-            mx, my = (tuple(m.get(f, out[f])[sl] for f in levels) for m in means)
-            compiled.nb_comerge_chain(co, mx, my, *chain)
 
     _run(_pair_items(xa, ya, eng), work, eng)  # type: ignore[arg-type]  # (offset, x, y)
     return {f: BlockComoments(f * f, out[f].reshape((*lead, ny // f, nx // f))) for f in plan}

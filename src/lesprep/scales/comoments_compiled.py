@@ -38,6 +38,98 @@ if HAVE_NUMBA:
             sxy += dx * dy
         return nb_cofinish(s1x, s1y, sxy, 4)
 
+    @njit(inline="always")
+    def nb_comoment_row(x, y, f, mx, my, given, out, p, bi):  # pragma: no cover - compiled
+        """Co-moments of the ``f x f`` blocks in block row ``bi`` of plane ``p``."""
+        nbx = x.shape[2] // f
+        n = f * f
+        r0 = bi * f
+        o = out[p, bi]
+        if f == 2:  # constant stride, which LLVM vectorises
+            xa = x[p, r0]
+            xb = x[p, r0 + 1]
+            ya = y[p, r0]
+            yb = y[p, r0 + 1]
+            if given:  # (two loops without a branch inside, so both vectorise)
+                mxr = mx[p, bi]
+                myr = my[p, bi]
+                for bj in range(nbx):
+                    i0 = 2 * bj
+                    i1 = i0 + 1
+                    o[bj] = nb_co4(
+                        xa[i0], xa[i1], xb[i0], xb[i1],
+                        ya[i0], ya[i1], yb[i0], yb[i1],
+                        mxr[bj], myr[bj],
+                    )  # fmt: skip
+            else:
+                for bj in range(nbx):
+                    i0 = 2 * bj
+                    i1 = i0 + 1
+                    x0, x1, x2, x3 = xa[i0], xa[i1], xb[i0], xb[i1]
+                    y0, y1, y2, y3 = ya[i0], ya[i1], yb[i0], yb[i1]
+                    o[bj] = nb_co4(
+                        x0, x1, x2, x3, y0, y1, y2, y3,
+                        nb_mean4(x0, x1, x2, x3, 4), nb_mean4(y0, y1, y2, y3, 4),
+                    )  # fmt: skip
+        elif f <= _ROWWISE_MAX:
+            if given:
+                ux = mx[p, bi]
+                uy = my[p, bi]
+            else:
+                ux = np.zeros(nbx)
+                uy = np.zeros(nbx)
+                for r in range(r0, r0 + f):
+                    xr = x[p, r]
+                    yr = y[p, r]
+                    for c in range(f):
+                        for bj in range(nbx):
+                            ux[bj] += xr[bj * f + c]
+                            uy[bj] += yr[bj * f + c]
+                for bj in range(nbx):
+                    ux[bj] = ux[bj] / n
+                    uy[bj] = uy[bj] / n
+            tx = np.zeros(nbx)
+            ty = np.zeros(nbx)
+            o[:] = 0.0
+            for r in range(r0, r0 + f):
+                xr = x[p, r]
+                yr = y[p, r]
+                for c in range(f):
+                    for bj in range(nbx):
+                        dx = xr[bj * f + c] - ux[bj]
+                        dy = yr[bj * f + c] - uy[bj]
+                        tx[bj] += dx
+                        ty[bj] += dy
+                        o[bj] += dx * dy
+            for bj in range(nbx):
+                o[bj] = nb_cofinish(tx[bj], ty[bj], o[bj], n)
+        else:
+            for bj in range(nbx):
+                c0 = bj * f
+                if given:
+                    cx = mx[p, bi, bj]
+                    cy = my[p, bi, bj]
+                else:
+                    cx = 0.0
+                    cy = 0.0
+                    for r in range(r0, r0 + f):
+                        for c in range(c0, c0 + f):
+                            cx += x[p, r, c]
+                            cy += y[p, r, c]
+                    cx = cx / n
+                    cy = cy / n
+                s1x = 0.0
+                s1y = 0.0
+                sxy = 0.0
+                for r in range(r0, r0 + f):
+                    for c in range(c0, c0 + f):
+                        dx = x[p, r, c] - cx
+                        dy = y[p, r, c] - cy
+                        s1x += dx
+                        s1y += dy
+                        sxy += dx * dy
+                o[bj] = nb_cofinish(s1x, s1y, sxy, n)
+
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_comoment(x, y, f, mx, my, given, out):  # pragma: no cover - compiled
         """Co-moment of every ``f x f`` block of the planes ``x``, ``y`` into ``out``.
@@ -45,99 +137,11 @@ if HAVE_NUMBA:
         With ``given`` the centres are the block means ``mx``, ``my`` (planes, ny/f,
         nx/f); otherwise a first pass computes them (``mx`` and ``my`` are not read).
         """
-        planes, ny, nx = x.shape
+        planes, ny, _ = x.shape
         nby = ny // f
-        nbx = nx // f
-        n = f * f
         for t in prange(planes * nby):
             p = t // nby
-            bi = t - p * nby
-            r0 = bi * f
-            o = out[p, bi]
-            if f == 2:  # constant stride, which LLVM vectorises
-                xa = x[p, r0]
-                xb = x[p, r0 + 1]
-                ya = y[p, r0]
-                yb = y[p, r0 + 1]
-                if given:  # (two loops without a branch inside, so both vectorise)
-                    mxr = mx[p, bi]
-                    myr = my[p, bi]
-                    for bj in range(nbx):
-                        i0 = 2 * bj
-                        i1 = i0 + 1
-                        o[bj] = nb_co4(
-                            xa[i0], xa[i1], xb[i0], xb[i1],
-                            ya[i0], ya[i1], yb[i0], yb[i1],
-                            mxr[bj], myr[bj],
-                        )  # fmt: skip
-                else:
-                    for bj in range(nbx):
-                        i0 = 2 * bj
-                        i1 = i0 + 1
-                        x0, x1, x2, x3 = xa[i0], xa[i1], xb[i0], xb[i1]
-                        y0, y1, y2, y3 = ya[i0], ya[i1], yb[i0], yb[i1]
-                        o[bj] = nb_co4(
-                            x0, x1, x2, x3, y0, y1, y2, y3,
-                            nb_mean4(x0, x1, x2, x3, 4), nb_mean4(y0, y1, y2, y3, 4),
-                        )  # fmt: skip
-            elif f <= _ROWWISE_MAX:
-                if given:
-                    ux = mx[p, bi]
-                    uy = my[p, bi]
-                else:
-                    ux = np.zeros(nbx)
-                    uy = np.zeros(nbx)
-                    for r in range(r0, r0 + f):
-                        xr = x[p, r]
-                        yr = y[p, r]
-                        for c in range(f):
-                            for bj in range(nbx):
-                                ux[bj] += xr[bj * f + c]
-                                uy[bj] += yr[bj * f + c]
-                    for bj in range(nbx):
-                        ux[bj] = ux[bj] / n
-                        uy[bj] = uy[bj] / n
-                tx = np.zeros(nbx)
-                ty = np.zeros(nbx)
-                o[:] = 0.0
-                for r in range(r0, r0 + f):
-                    xr = x[p, r]
-                    yr = y[p, r]
-                    for c in range(f):
-                        for bj in range(nbx):
-                            dx = xr[bj * f + c] - ux[bj]
-                            dy = yr[bj * f + c] - uy[bj]
-                            tx[bj] += dx
-                            ty[bj] += dy
-                            o[bj] += dx * dy
-                for bj in range(nbx):
-                    o[bj] = nb_cofinish(tx[bj], ty[bj], o[bj], n)
-            else:
-                for bj in range(nbx):
-                    c0 = bj * f
-                    if given:
-                        cx = mx[p, bi, bj]
-                        cy = my[p, bi, bj]
-                    else:
-                        cx = 0.0
-                        cy = 0.0
-                        for r in range(r0, r0 + f):
-                            for c in range(c0, c0 + f):
-                                cx += x[p, r, c]
-                                cy += y[p, r, c]
-                        cx = cx / n
-                        cy = cy / n
-                    s1x = 0.0
-                    s1y = 0.0
-                    sxy = 0.0
-                    for r in range(r0, r0 + f):
-                        for c in range(c0, c0 + f):
-                            dx = x[p, r, c] - cx
-                            dy = y[p, r, c] - cy
-                            s1x += dx
-                            s1y += dy
-                            sxy += dx * dy
-                    o[bj] = nb_cofinish(s1x, s1y, sxy, n)
+            nb_comoment_row(x, y, f, mx, my, given, out, p, t - p * nby)
 
     @njit(inline="always")
     def nb_comerge_row(cc, cmx, cmy, nc, k, out, p, bi):  # pragma: no cover - compiled
@@ -235,16 +239,22 @@ if HAVE_NUMBA:
             nb_comerge_row(cc, cmx, cmy, nc, k, out, p, t - p * nyp)
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
-    def nb_comerge_chain(co, mx, my, parent, k, nc):  # pragma: no cover - compiled
-        """Every merged level of a co-moment hierarchy in one call, plane by plane (as
-        :func:`~lesprep.scales.moments_compiled.nb_merge_chain`): level ``i`` with
-        ``parent[i] >= 0`` merges ``k[i] x k[i]`` blocks of that level, whose co-moments
-        are ``co[parent[i]]`` and means ``mx[parent[i]]``, ``my[parent[i]]``."""
-        planes = co[0].shape[0]
-        for p in prange(planes):
+    def nb_cohierarchy(x, y, co, mx, my, factor, parent, k, nc):  # pragma: no cover
+        """Every level of a co-moment hierarchy in one call, plane by plane (as
+        :func:`~lesprep.scales.moments_compiled.nb_hierarchy`): level ``i`` holds the
+        co-moments of ``factor[i] x factor[i]`` blocks about the block means ``mx[i]``,
+        ``my[i]``, computed from the planes ``x``, ``y`` where ``parent[i] < 0`` (zero for
+        factor 1: single cells have no deviations), else merged from ``k[i] x k[i]``
+        blocks of level ``parent[i]`` (count ``nc[i]``). The arithmetic is
+        :func:`nb_comoment`'s and :func:`nb_comerge`'s, block for block."""
+        for p in prange(x.shape[0]):
             for i in range(len(co)):
                 q = parent[i]
-                if q < 0:
-                    continue
-                for bi in range(co[i].shape[1]):
-                    nb_comerge_row(co[q], mx[q], my[q], nc[i], k[i], co[i], p, bi)
+                if q >= 0:
+                    for bi in range(co[i].shape[1]):
+                        nb_comerge_row(co[q], mx[q], my[q], nc[i], k[i], co[i], p, bi)
+                elif factor[i] == 1:
+                    co[i][p] = 0.0
+                else:
+                    for bi in range(co[i].shape[1]):
+                        nb_comoment_row(x, y, factor[i], mx[i], my[i], True, co[i], p, bi)

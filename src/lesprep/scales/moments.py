@@ -449,18 +449,21 @@ def plan_hierarchy(factors: Iterable[int]) -> dict[int, int | None]:
     return plan
 
 
-def merge_chain(plan: dict[int, int | None]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The compiled merge chain of a :func:`plan_hierarchy` plan: per level (in the plan's
-    order) the index of its parent level (-1 for a level computed from the fine field),
-    the children per parent along each axis and the fine cells per child.
+def merge_chain(
+    plan: dict[int, int | None],
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The compiled hierarchy of a :func:`plan_hierarchy` plan: per level (in the plan's
+    order) its factor, the index of its parent level (-1 for a level computed from the
+    fine field), the children per parent along each axis and the fine cells per child.
 
     Examples
     --------
     >>> [a.tolist() for a in merge_chain(plan_hierarchy([2, 4, 12]))]
-    [[-1, 0, 1], [1, 2, 3], [1, 4, 16]]
+    [[2, 4, 12], [-1, 0, 1], [1, 2, 3], [1, 4, 16]]
     """
     levels = list(plan)
     return (
+        np.array(levels, np.int64),
         np.array([-1 if p is None else levels.index(p) for p in plan.values()], np.int64),
         np.array([f // (p or f) for f, p in plan.items()], np.int64),
         np.array([(p or 1) ** 2 for p in plan.values()], np.int64),
@@ -518,22 +521,22 @@ def hierarchical_moments(
     planes = math.prod(lead)
     out = {f: [_empty(planes, ny // f, nx // f) for _ in range(3)] for f in plan}
 
-    levels = list(plan)
     chain = merge_chain(plan)
 
     def work(offset: int, chunk: np.ndarray) -> None:
         sl = slice(offset, offset + chunk.shape[0])
         x = _prepare(chunk, eng)
+        if eng == "numba":  # every level in one compiled call, plane by plane
+            views = [tuple(out[f][j][sl] for f in plan) for j in range(3)]
+            compiled.nb_hierarchy(x, *views, *chain)
+            return
         for f, parent in plan.items():
             target = [o[sl] for o in out[f]]
             if parent is None:
                 _first_level(x, f, eng, *target)
-            elif eng != "numba":
+            else:
                 source = [o[sl] for o in out[parent]]
                 _merge_level(*source, parent * parent, f // parent, eng, *target)
-        if eng == "numba" and len(levels) > 1:  # all merged levels in one compiled call
-            views = [tuple(out[f][j][sl] for f in levels) for j in range(3)]
-            compiled.nb_merge_chain(*views, *chain)
 
     _run(_work_items(arr, eng), work, eng)
     return {

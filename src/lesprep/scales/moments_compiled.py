@@ -62,70 +62,74 @@ if HAVE_NUMBA:
         d = cm - m0
         return s1 + d, a2 + (c2 + nc * d * d), a3 + (c3 + 3.0 * d * c2 + nc * d * d * d)
 
+    @njit(inline="always")
+    def nb_moments_row(a, f, mean, m2, m3, p, bi):  # pragma: no cover - compiled
+        """The moments of the ``f x f`` blocks in block row ``bi`` of plane ``p``."""
+        nbx = a.shape[2] // f
+        n = f * f
+        r0 = bi * f
+        o1 = mean[p, bi]
+        o2 = m2[p, bi]
+        o3 = m3[p, bi]
+        if f == 2:  # the same sums with a constant stride, which LLVM vectorises
+            ra = a[p, r0]
+            rb = a[p, r0 + 1]
+            for bj in range(nbx):
+                x0, x1 = ra[2 * bj], ra[2 * bj + 1]
+                x2, x3 = rb[2 * bj], rb[2 * bj + 1]
+                m0 = nb_mean4(x0, x1, x2, x3, n)
+                s1b, s2b, s3b = nb_dev4(x0, x1, x2, x3, m0)
+                o1[bj], o2[bj], o3[bj] = nb_finish(m0, s1b, s2b, s3b, n)
+        elif f <= _ROWWISE_MAX:
+            s1 = np.zeros(nbx)
+            o1[:] = 0.0
+            o2[:] = 0.0
+            o3[:] = 0.0
+            for r in range(r0, r0 + f):
+                row = a[p, r]
+                for c in range(f):
+                    for bj in range(nbx):
+                        o1[bj] += row[bj * f + c]
+            for bj in range(nbx):
+                o1[bj] = o1[bj] / n  # first-pass mean m0
+            for r in range(r0, r0 + f):
+                row = a[p, r]
+                for c in range(f):
+                    for bj in range(nbx):
+                        d = row[bj * f + c] - o1[bj]
+                        d2 = d * d
+                        s1[bj] += d
+                        o2[bj] += d2
+                        o3[bj] += d2 * d
+            for bj in range(nbx):
+                o1[bj], o2[bj], o3[bj] = nb_finish(o1[bj], s1[bj], o2[bj], o3[bj], n)
+        else:
+            for bj in range(nbx):
+                c0 = bj * f
+                s = 0.0
+                for r in range(r0, r0 + f):
+                    for c in range(c0, c0 + f):
+                        s += a[p, r, c]
+                m0 = s / n
+                s1b = 0.0
+                s2b = 0.0
+                s3b = 0.0
+                for r in range(r0, r0 + f):
+                    for c in range(c0, c0 + f):
+                        d = a[p, r, c] - m0
+                        d2 = d * d
+                        s1b += d
+                        s2b += d2
+                        s3b += d2 * d
+                o1[bj], o2[bj], o3[bj] = nb_finish(m0, s1b, s2b, s3b, n)
+
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_moments(a, f, mean, m2, m3):  # pragma: no cover - compiled
-        planes, ny, nx = a.shape
+        planes, ny, _ = a.shape
         nby = ny // f
-        nbx = nx // f
-        n = f * f
         for t in prange(planes * nby):
             p = t // nby
-            bi = t - p * nby
-            r0 = bi * f
-            o1 = mean[p, bi]
-            o2 = m2[p, bi]
-            o3 = m3[p, bi]
-            if f == 2:  # the same sums with a constant stride, which LLVM vectorises
-                ra = a[p, r0]
-                rb = a[p, r0 + 1]
-                for bj in range(nbx):
-                    x0, x1 = ra[2 * bj], ra[2 * bj + 1]
-                    x2, x3 = rb[2 * bj], rb[2 * bj + 1]
-                    m0 = nb_mean4(x0, x1, x2, x3, n)
-                    s1b, s2b, s3b = nb_dev4(x0, x1, x2, x3, m0)
-                    o1[bj], o2[bj], o3[bj] = nb_finish(m0, s1b, s2b, s3b, n)
-            elif f <= _ROWWISE_MAX:
-                s1 = np.zeros(nbx)
-                o1[:] = 0.0
-                o2[:] = 0.0
-                o3[:] = 0.0
-                for r in range(r0, r0 + f):
-                    row = a[p, r]
-                    for c in range(f):
-                        for bj in range(nbx):
-                            o1[bj] += row[bj * f + c]
-                for bj in range(nbx):
-                    o1[bj] = o1[bj] / n  # first-pass mean m0
-                for r in range(r0, r0 + f):
-                    row = a[p, r]
-                    for c in range(f):
-                        for bj in range(nbx):
-                            d = row[bj * f + c] - o1[bj]
-                            d2 = d * d
-                            s1[bj] += d
-                            o2[bj] += d2
-                            o3[bj] += d2 * d
-                for bj in range(nbx):
-                    o1[bj], o2[bj], o3[bj] = nb_finish(o1[bj], s1[bj], o2[bj], o3[bj], n)
-            else:
-                for bj in range(nbx):
-                    c0 = bj * f
-                    s = 0.0
-                    for r in range(r0, r0 + f):
-                        for c in range(c0, c0 + f):
-                            s += a[p, r, c]
-                    m0 = s / n
-                    s1b = 0.0
-                    s2b = 0.0
-                    s3b = 0.0
-                    for r in range(r0, r0 + f):
-                        for c in range(c0, c0 + f):
-                            d = a[p, r, c] - m0
-                            d2 = d * d
-                            s1b += d
-                            s2b += d2
-                            s3b += d2 * d
-                    o1[bj], o2[bj], o3[bj] = nb_finish(m0, s1b, s2b, s3b, n)
+            nb_moments_row(a, f, mean, m2, m3, p, t - p * nby)
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_mean(a, f, mean):  # pragma: no cover - compiled
@@ -261,20 +265,25 @@ if HAVE_NUMBA:
             nb_merge_row(cmean, cm2, cm3, nc, k, mean, m2, m3, p, t - p * nyp)
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
-    def nb_merge_chain(mean, m2, m3, parent, k, nc):  # pragma: no cover - compiled
-        """Every merged level of a hierarchy in one call, plane by plane: level ``i``
-        (``parent[i] >= 0``) merges ``k[i] x k[i]`` blocks of level ``parent[i]`` (count
-        ``nc[i]``), in list order. Each plane's coarser levels are merged from arrays that
-        are still in the cache, and the whole hierarchy costs one parallel launch. The
-        arithmetic is :func:`nb_merge`'s, block for block."""
-        planes = mean[0].shape[0]
-        for p in prange(planes):
+    def nb_hierarchy(a, mean, m2, m3, factor, parent, k, nc):  # pragma: no cover - compiled
+        """Every level of a hierarchy in one call, plane by plane: level ``i`` holds the
+        moments of ``factor[i] x factor[i]`` blocks, computed from the planes ``a`` where
+        ``parent[i] < 0``, else merged from ``k[i] x k[i]`` blocks of level ``parent[i]``
+        (count ``nc[i]``), in list order. A plane's finest level is merged into the
+        coarser ones while it is still in the cache (not read back from memory), and the
+        whole hierarchy costs one parallel launch. The arithmetic is :func:`nb_moments`'s
+        and :func:`nb_merge`'s, block for block."""
+        for p in prange(a.shape[0]):
             for i in range(len(mean)):
                 q = parent[i]
                 if q < 0:
-                    continue
-                for bi in range(mean[i].shape[1]):
-                    nb_merge_row(mean[q], m2[q], m3[q], nc[i], k[i], mean[i], m2[i], m3[i], p, bi)
+                    for bi in range(mean[i].shape[1]):
+                        nb_moments_row(a, factor[i], mean[i], m2[i], m3[i], p, bi)
+                else:
+                    for bi in range(mean[i].shape[1]):
+                        nb_merge_row(
+                            mean[q], m2[q], m3[q], nc[i], k[i], mean[i], m2[i], m3[i], p, bi
+                        )
 
     @njit(parallel=True, cache=True, fastmath=False, error_model="numpy")
     def nb_count(a, f, nonzero, out):  # pragma: no cover - compiled

@@ -104,7 +104,11 @@ def raw_output_times(canonical_path: str | Path) -> tuple[NDArray[np.float64], f
 
     Examples
     --------
-    >>> times, spinup = raw_output_times("results/cases/c/canonical.zarr")  # doctest: +SKIP
+    A case with output every 30 min for 2 h, ingested with a 1 h spin-up:
+
+    >>> times, spinup = raw_output_times("results/cases/sc-ostra-01/canonical.zarr")
+    >>> times.tolist(), spinup
+    ([0.0, 1800.0, 3600.0, 5400.0, 7200.0], 3600.0)
     """
     with opened_store(canonical_path) as ds:
         kept = np.asarray(ds["time"].values, dtype=np.float64)
@@ -203,7 +207,14 @@ def case_timeseries(
 
     Examples
     --------
-    >>> fig = case_timeseries(store, None, None, "timeseries.png")  # doctest: +SKIP
+    >>> store = "results/cases/sc-ostra-01/canonical.zarr"
+    >>> fig = case_timeseries(store, None, None, "timeseries.png")
+    >>> [ax.get_ylabel() for ax in fig.axes]
+    ['domain cloud cover (1)', 'domain-mean LWP (kg m$^{-2}$)']
+    >>> [text.get_text() for text in fig.legends[0].get_texts()]
+    ['kept output times', 'spin-up (dropped)']
+    >>> Path("timeseries.png").stat().st_size > 0
+    True
     """
     with opened_store(canonical_path, ("time", "cloud_mask", "lwp")) as ds:
         stored_raw, stored_spinup = raw_output_times(canonical_path)
@@ -277,7 +288,11 @@ def case_profiles(canonical_path: str | Path, out_png: str | Path) -> Figure:
 
     Examples
     --------
-    >>> fig = case_profiles(store, "profiles.png")  # doctest: +SKIP
+    >>> fig = case_profiles("results/cases/sc-ostra-01/canonical.zarr", "profiles.png")
+    >>> [ax.get_xlabel() for ax in fig.axes]
+    ['cloud fraction (1)', 'qc (g kg$^{-1}$)', 'w variance (m$^{2}$ s$^{-2}$)']
+    >>> fig.get_suptitle()
+    'Case sc-ostra-01: mean profiles over 3 kept output time(s)'
     """
     with opened_store(canonical_path, ("z", "cloud_mask", "qc", "w")) as ds:
         prof = _mean_profiles(ds)
@@ -328,7 +343,17 @@ def case_lwp_map(canonical_path: str | Path, out_png: str | Path, time_index: in
 
     Examples
     --------
-    >>> fig = case_lwp_map(store, "lwp.png", time_index=0)  # doctest: +SKIP
+    >>> store = "results/cases/sc-ostra-01/canonical.zarr"
+    >>> fig = case_lwp_map(store, "lwp.png", time_index=0)
+    >>> print(fig.axes[0].get_title())
+    Case sc-ostra-01: liquid water path
+    at 1.00 h since the start of the run
+    >>> fig.axes[1].get_ylabel()  # the colour bar
+    'liquid water path (kg m$^{-2}$)'
+    >>> case_lwp_map(store, "lwp.png", time_index=3)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    lesprep.errors.InputError: file ...: time_index 3 is out of range; the store has 3 kept ...
     """
     with opened_store(canonical_path, ("time", "x", "y", "lwp")) as ds:
         nt = ds.sizes["time"]
@@ -414,7 +439,11 @@ def scale_target_distribution(
 
     Examples
     --------
-    >>> fig = scale_target_distribution(train, test, "cf.png")  # doctest: +SKIP
+    >>> train = "results/sets/train/scale-400m.zarr"
+    >>> test = "results/sets/test/scale-400m.zarr"
+    >>> fig = scale_target_distribution(train, test, "cf.png")
+    >>> [text.get_text() for text in fig.axes[0].get_legend().get_texts()]  # doctest: +ELLIPSIS
+    ['train: 128 samples, ... % clear', 'test: 192 samples, ... % clear']
     """
     edges = np.linspace(0.0, 1.0, int(bins) + 1)
     width = 1.0 / int(bins)
@@ -481,7 +510,14 @@ def scale_cf_vs_rh(
 
     Examples
     --------
-    >>> fig = scale_cf_vs_rh(train, "cf_rh.png")  # doctest: +SKIP
+    >>> fig = scale_cf_vs_rh("results/sets/train/scale-400m.zarr", "cf_rh.png")
+    >>> fig.axes[0].get_title()
+    'Cloud fraction against RH at scale 400m, train split (128 samples)'
+    >>> for text in fig.axes[0].get_legend().get_texts():
+    ...     print(text.get_text())
+    mean cloud fraction per RH bin
+    mean Gaussian-PDF cloud fraction per RH bin (LES sub-grid statistics)
+    Sundqvist et al. (1989), RH$_c$ = 0.8
     """
     with opened_store(train_set, ("rh_of_means", "cloud_fraction")) as ds:
         rhc = rh_critical_of(ds)

@@ -430,9 +430,16 @@ def read_layer_profiles(level_store: str | Path, layer_store: str | Path) -> Lay
 
     Examples
     --------
-    >>> prof = read_layer_profiles(
-    ...     "scale-500m.zarr", "scale-500m_layers-l30.zarr"
-    ... )  # doctest: +SKIP
+    A case's 400 m store on its 16 LES levels and its store on the 4 layers of set ``l4``:
+
+    >>> case = "results/cases/sc-ostra-01"
+    >>> prof = read_layer_profiles(f"{case}/scale-400m.zarr", f"{case}/scale-400m_layers-l4.zarr")
+    >>> prof.case, prof.scale, prof.layers, prof.weighting
+    ('sc-ostra-01', '400m', 'l4', 'mass')
+    >>> prof.level_z.size, prof.bounds.tolist()
+    (16, [[0.0, 500.0], [500.0, 1000.0], [1000.0, 1500.0], [1500.0, 2500.0]])
+    >>> prof.panels.fields
+    ('qc_mean', 'qt_mean', 'theta_l_mean')
     """
     paths = (Path(level_store), Path(layer_store))
     with opened_store(paths[0], ("z",)) as lev, opened_store(paths[1], ("z",)) as lay:
@@ -601,10 +608,14 @@ def case_layer_profiles(
     Examples
     --------
     >>> fig = case_layer_profiles(
-    ...     "results/cases/c/scale-500m.zarr",
-    ...     "results/cases/c/scale-500m_layers-l30.zarr",
-    ...     "results/figures/cases/c/layers-l30_scale-500m.png",
-    ... )  # doctest: +SKIP
+    ...     "results/cases/sc-ostra-01/scale-400m.zarr",
+    ...     "results/cases/sc-ostra-01/scale-400m_layers-l4.zarr",
+    ...     "layers-l4_scale-400m.png",
+    ... )
+    >>> [ax.get_xlabel() for ax in fig.axes]
+    ['cloud fraction (1)', 'qc (g kg$^{-1}$)', 'qt (g kg$^{-1}$)', '$\\\\theta_l$ (K)']
+    >>> Path("layers-l4_scale-400m.png").stat().st_size > 0
+    True
     """
     fig = _draw(read_layer_profiles(level_store, layer_store))
     save_png(fig, out_png)

@@ -60,8 +60,11 @@ def scenes_for_case(canonical_path: str | Path) -> pd.DataFrame:
 
     Examples
     --------
-    >>> scenes_for_case("results/cases/c/canonical.zarr").columns[0]  # doctest: +SKIP
-    'time'
+    >>> scenes = scenes_for_case("results/cases/sc-ostra-01/canonical.zarr")
+    >>> scenes.columns[0], scenes.columns[-1]
+    ('time', 'domain_m')
+    >>> scenes["time"].tolist(), scenes["domain_m"].tolist()  # 16 points of 50 m
+    ([3600.0, 5400.0, 7200.0], [800.0, 800.0, 800.0])
     """
     with opened_store(canonical_path, ("lwp", "cloud_mask"), chunks={}) as ds:
         column_cloudy = (ds["cloud_mask"] > 0).any("z")
@@ -158,7 +161,15 @@ def write_scenes_tsv(canonical_paths: Mapping[str, str | Path], out_tsv: str | P
 
     Examples
     --------
-    >>> write_scenes_tsv({"c": "results/cases/c/canonical.zarr"}, "scenes.tsv")  # doctest: +SKIP
+    >>> stores = {
+    ...     "sc-ostra-01": "results/cases/sc-ostra-01/canonical.zarr",
+    ...     "cu-marro-01": "results/cases/cu-marro-01/canonical.zarr",
+    ... }
+    >>> table = pd.read_csv(write_scenes_tsv(stores, "scenes.tsv"), sep="\\t")
+    >>> tuple(table.columns) == SCENE_COLUMNS
+    True
+    >>> table.groupby("case", sort=False).size().to_dict()  # one row per kept time
+    {'sc-ostra-01': 3, 'cu-marro-01': 2}
     """
     frames = [case_scenes(path, case) for case, path in canonical_paths.items()]
     table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=SCENE_COLUMNS)

@@ -48,7 +48,25 @@ def scene_table_rst(
 
     Examples
     --------
-    >>> print(scene_table_rst("scenes.tsv", "splits.tsv"))  # doctest: +SKIP
+    >>> table = scene_table_rst("results/scenes.tsv", "results/splits.tsv")
+    >>> print(table)  # doctest: +ELLIPSIS
+    .. list-table:: Cases, their split and their liquid-water-path scenes (...)
+       :header-rows: 1
+    <BLANKLINE>
+       * - case
+         - regime
+         - split (reason)
+         - kept times
+    ...
+       * - sc-ostra-01
+         - stratocumulus
+         - test (pinned)
+         - 3
+    ...
+       * - cu-marro-01
+         - cumulus
+         - train (pinned)
+    ...
     """
     scenes = pd.read_csv(scenes_tsv, sep="\t")
     assignment = read_assignment_tsv(splits_tsv)

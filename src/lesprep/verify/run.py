@@ -10,7 +10,8 @@ finds as a :class:`Finding` (it never stops at the first one). The checks, by na
 ``provenance``
     every store has a parsable ``lesprep_provenance`` root attribute with the step that
     made it (``ingest`` of its case, ``coarsen`` to its scale, ``assemble`` of its split
-    and scale).
+    and scale); a layer store (``scale-<L>_layers-<name>.zarr``) records the coarsening
+    to scale ``L`` with layer set ``name``.
 ``raw_files``
     every raw file recorded by an ``ingest`` step still exists with the recorded size and
     sha256 (FIPS 180-4). Drift is reported as ``changed:`` or ``missing:``. Relative raw
@@ -34,8 +35,9 @@ finds as a :class:`Finding` (it never stops at the first one). The checks, by na
     stores every ``*_mean``, ``*_var``, ``*_skew`` and ``cloud_fraction``, and their lagged
     copies ``*_lag<k>`` (skewness is 0, not NaN, where the block variance is 0).
 ``consistency``
-    a per-case scale store has its canonical store's times and heights and ``n // f``
-    cells across; a set store's sample count equals the per-case cells that pass the
+    a per-case scale store has its canonical store's times and heights (a layer store:
+    the midpoints and bounds of the layer interfaces its ``coarsen`` step recorded) and
+    ``n // f`` cells across; a set store's sample count equals the per-case cells that pass the
     filters its ``assemble`` step recorded (``z_range_m``, ``time_stride``, the times
     dropped for ``lags``), in total and per case; its features exist in the per-case
     stores with matching shapes; and for a seeded random sample of ``sample_checks``
@@ -99,8 +101,20 @@ def verify_results(
 
     Examples
     --------
-    >>> report = verify_results("results")  # doctest: +SKIP
-    >>> print(report.summary())  # doctest: +SKIP
+    A results tree of two cases, one per split, at one scale and on one layer set:
+
+    >>> report = verify_results("results")
+    >>> print(report.summary())
+    verify results: OK, 0 findings
+    checks:
+      open: 8 stores checked, 0 failed
+      provenance: 8 stores checked, 0 failed
+      raw_files: 10 raw files checked, 0 failed
+      splits: 3 files (set stores and splits.tsv) checked, 0 failed
+      normalization: 1 train scales checked, 0 failed
+      nan: 154 arrays checked, 0 failed
+      consistency: 6 store pairs checked, 0 failed
+        320 set samples compared
     """
     root = Path(results).resolve()
     if not root.is_dir():

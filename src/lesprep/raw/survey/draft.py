@@ -63,7 +63,21 @@ def draft_varmap(report: InspectReport, *, flavour: str = "draft") -> str:
 
     Examples
     --------
-    >>> print(draft_varmap(inspect_files(["snap_0000.nc"])))  # doctest: +SKIP
+    >>> from lesprep.raw.survey import inspect_files
+    >>> report = inspect_files(["resources/demo/sc-ostra-01"])
+    >>> print(draft_varmap(report, flavour="ostra"))  # doctest: +ELLIPSIS
+    # Variable map drafted by lesprep inspect from 5 file(s), e.g.
+    # resources/demo/sc-ostra-01/snap_0000.nc
+    ...
+    flavour: ostra
+    ...
+    variables:
+      p: {raw: pres, dims: [time, zc, y, x]}  # units in the file: hPa
+      qc: {raw: liq, dims: [time, zc, y, x]}  # units in the file: g/kg
+      qv: {raw: vap, dims: [time, zc, y, x], quantity: mixing_ratio}  # units in the file: g/kg
+      T: {raw: tempc, dims: [time, zc, y, x], quantity: temperature}  # units in the file: degC
+      w: {raw: wf, dims: [time, zf, y, x]}  # units in the file: m/s
+    <BLANKLINE>
     """
     roles = {d.name: d.role for d in report.dims.values() if d.role is not None}
     missing = [a for a in ("time", "z", "y", "x") if a not in roles.values()]

@@ -345,9 +345,13 @@ def inspect_files(paths: Sequence[str | Path]) -> InspectReport:
 
     Examples
     --------
-    >>> report = inspect_files(["resources/demo/sc-ostra-01"])  # doctest: +SKIP
-    >>> report.proposals["qc"].raw  # doctest: +SKIP
-    'liq'
+    >>> report = inspect_files(["resources/demo/sc-ostra-01"])
+    >>> len(report.files), report.time.times_s
+    (5, (0.0, 1800.0, 3600.0, 5400.0, 7200.0))
+    >>> report.proposals["qc"].raw, report.proposals["w"].raw
+    ('liq', 'wf')
+    >>> report.staggered
+    {'zf': 'zc'}
     """
     files = expand_paths(paths)
     scan = scan_files(files)

@@ -188,7 +188,29 @@ class InspectReport:
 
         Examples
         --------
-        >>> print(inspect_files(["snap_0000.nc"]).summary())  # doctest: +SKIP
+        >>> from lesprep.raw.survey import inspect_files
+        >>> report = inspect_files(["resources/demo/sc-ostra-01/snap_0000.nc"])
+        >>> print(report.summary())  # doctest: +ELLIPSIS
+        1 file(s):
+          resources/demo/sc-ostra-01/snap_0000.nc
+        dimensions:
+          time        1  time    (coordinate time, axis T, unlimited)
+          zc         16  z       (coordinate zc, axis Z)
+          zf         17  z_face  (coordinate zf, axis Z; one more point than zc (17 vs 16): ...)
+          y          16  y       (coordinate y, axis Y)
+          x          16  x       (coordinate x, axis X)
+        time axis: time (time): 1 output time(s) from 0 s to 0 s, counted from the start of ...
+        variables:
+        ...
+          liq    (time=1, zc=16, y=16, x=16)  g/kg  cloud liquid water mixing ratio
+        ...
+        staggering: zf holds the faces of zc
+        proposed mapping:
+          p  <- pres (time, zc, y, x) hPa; score ...
+          qc <- liq (time, zc, y, x) g/kg; score ...
+          qv <- vap (time, zc, y, x) g/kg, quantity mixing_ratio; score ...
+          T  <- tempc (time, zc, y, x) degC, quantity temperature; score ...
+          w  <- wf (time, zf, y, x) m/s; score ...
         """
         lines = [f"{len(self.files)} file(s):"]
         shown = list(self.files[:5])

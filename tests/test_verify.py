@@ -33,7 +33,9 @@ from workflow_project import Project
 pytestmark = pytest.mark.workflow
 
 CASES = ("sc-ostra-01", "sc-ostra-02", "cu-marro-01", "cu-marro-02")
-LABELS = ("200m", "600m")
+LAYERS = {"name": "l3", "interfaces": ["0 m", "400 m", "900 m", "1500 m"], "scales": ["600 m"]}
+"""A layer set at 600 m: its per-case stores and sets are checked like the others."""
+LABELS = ("200m", "600m", "600m_layers-l3")
 Z_MAX = 1800.0  # the sets' z_range upper bound in metres
 STRIDE = 2  # the sets' time_stride
 LAG = 1  # the sets' lag of qc_mean and lwp_mean, in output times
@@ -44,6 +46,7 @@ def built(tmp_path_factory) -> Path:
     """A finished project folder (config, demo archives, results); read-only for tests."""
     p = Project(tmp_path_factory.mktemp("verify-project"))
     p.config["coarsen"]["scales"] = ["200 m", "600 m"]
+    p.config["coarsen"]["layers"] = [LAYERS]
     p.config["sets"].update(
         {
             "z_range": ["0 m", f"{Z_MAX:g} m"],
@@ -184,6 +187,36 @@ def test_store_that_does_not_open(tree, damage):
         f.store == f"sets/{split}/scale-600m.zarr" and "cu-marro-01" in f.message
         for f in report.by_check("consistency")
     )
+
+
+def test_layer_store_z_comes_from_its_recorded_interfaces(tree):
+    # a layer store's z are the midpoints of its layer interfaces, not the LES levels
+    store = tree / "cases" / "sc-ostra-01" / "scale-600m_layers-l3.zarr"
+    ds = open_store(store)
+    faces = [0.0, 400.0, 900.0, 1500.0]  # LAYERS["interfaces"]
+    np.testing.assert_allclose(ds["z"].values, [200.0, 650.0, 1200.0], rtol=1e-12)
+    np.testing.assert_allclose(ds["z_bounds"].values, np.c_[faces[:-1], faces[1:]], rtol=1e-12)
+    ds.close()
+    arr = zarr.open_array(str(store / "z"), mode="r+")
+    arr[1] = arr[1] + 10.0
+    report = verify_results(tree, sample_checks=0)
+    assert checks_of(report) == {"consistency"}
+    (f,) = report.findings
+    assert f.store == "cases/sc-ostra-01/scale-600m_layers-l3.zarr"
+    assert f.message == "z differs from the midpoints and bounds of its recorded layers"
+
+
+def test_layer_store_recording_another_layer_set(tree):
+    store = tree / "cases" / "cu-marro-01" / "scale-600m_layers-l3.zarr"
+    prov = provenance.load(open_store(store).attrs)
+    own = [s for s in prov["steps"] if s["step"] == "coarsen"][-1]
+    own["layers"]["name"] = "l9"
+    set_attrs(store, **{provenance.ATTR: json.dumps(prov)})
+    report = verify_results(tree, sample_checks=0)
+    assert checks_of(report) == {"provenance"}
+    (f,) = report.findings
+    assert f.store == "cases/cu-marro-01/scale-600m_layers-l3.zarr"
+    assert "records {'layers': 'l9'}, expected {'layers': 'l3'}" in f.message
 
 
 def test_missing_provenance(tree):

@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import zarr
 
+from lesprep.scales.layers import split_store_label
 from lesprep.sets.assemble import COORDS, feature_kind, kept_indices, label_values
 from lesprep.store import open_store
 from lesprep.verify.findings import ResultsTree, listing, own_step
@@ -20,8 +21,43 @@ from lesprep.verify.findings import ResultsTree, listing, own_step
 # --- consistency -----------------------------------------------------------------------
 
 
+def layer_levels(step: Mapping[str, Any] | None) -> tuple[np.ndarray, np.ndarray] | None:
+    """The z and z_bounds of a layer store, from the interfaces its coarsen step recorded.
+
+    Examples
+    --------
+    >>> z, bounds = layer_levels({"layers": {"name": "l2", "interfaces_m": [0.0, 100.0, 300.0]}})
+    >>> z.tolist(), bounds.tolist()
+    ([50.0, 200.0], [[0.0, 100.0], [100.0, 300.0]])
+    >>> layer_levels({"layers": {"name": "l2"}}) is None
+    True
+    """
+    faces = ((step or {}).get("layers") or {}).get("interfaces_m")
+    if not faces:
+        return None
+    f = np.asarray(faces, dtype=np.float64)
+    return 0.5 * (f[:-1] + f[1:]), np.stack([f[:-1], f[1:]], axis=1)
+
+
+def _z_problems(canon: Any, store: Any, label: str, step: Mapping[str, Any] | None) -> list[str]:
+    """How the z of a scale store differs from what it must be: the canonical levels, or
+    for a layer store the midpoints and bounds of its recorded layer interfaces."""
+    if split_store_label(label)[1] is None:
+        same = np.array_equal(canon["z"].values, store["z"].values)
+        return [] if same else ["z differs from the canonical store's"]
+    levels = layer_levels(step)
+    if levels is None:
+        return ["its coarsen step records no layer interfaces (interfaces_m)"]
+    problems = []
+    for name, want in zip(("z", "z_bounds"), levels, strict=True):
+        got = store[name].values if name in store.variables else None
+        if got is None or not np.allclose(got, want, rtol=1e-12, atol=0.0):
+            problems.append(f"{name} differs from the midpoints and bounds of its recorded layers")
+    return problems
+
+
 def check_scale_vs_canonical(tree: ResultsTree) -> None:
-    for (case, _), path in sorted(tree.scale.items()):
+    for (case, label), path in sorted(tree.scale.items()):
         canon = tree.canonical.get(case)
         if not tree.opened(path) or canon is None or not tree.opened(canon):
             continue
@@ -36,9 +72,9 @@ def check_scale_vs_canonical(tree: ResultsTree) -> None:
             continue
         f = int(attrs.get("factor", 0) or 0)
         problems = []
-        for coord in ("time", "z"):
-            if not np.array_equal(c[coord].values, s[coord].values):
-                problems.append(f"{coord} differs from the canonical store's")
+        if not np.array_equal(c["time"].values, s["time"].values):
+            problems.append("time differs from the canonical store's")
+        problems += _z_problems(c, s, label, own_step(tree.prov.get(path, {}), "coarsen"))
         for ax in ("y", "x"):
             if f <= 0 or s.sizes.get(ax) != c.sizes[ax] // f:
                 problems.append(

@@ -25,7 +25,7 @@ UNITS: dict[str, str] = {
     "open": "stores",
     "provenance": "stores",
     "raw_files": "raw files",
-    "splits": "set stores and splits.tsv",
+    "splits": "files (set stores and splits.tsv)",
     "normalization": "train scales",
     "nan": "arrays",
     "consistency": "store pairs",

@@ -6,8 +6,10 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 from lesprep import provenance
+from lesprep.scales.layers import split_store_label
 from lesprep.store import open_store
 from lesprep.verify.findings import ResultsTree, own_step, walk_steps
 
@@ -28,18 +30,25 @@ def check_open(tree: ResultsTree) -> None:
         tree.add("open", tree.root, "no store found (cases/*/*.zarr, sets/*/scale-*.zarr)")
 
 
-def _expected_step(tree: ResultsTree, path: Path) -> dict[str, str]:
+def _expected_step(tree: ResultsTree, path: Path) -> dict[str, str | None]:
     """Fields the step that made ``path`` must carry."""
     for case, p in tree.canonical.items():
         if p == path:
             return {"step": "ingest", "case": case}
     for (case, label), p in tree.scale.items():
-        if p == path:
-            return {"step": "coarsen", "case": case, "scale": label}
+        if p == path:  # (a layer store's step records its scale and its layer set apart)
+            scale, layers = split_store_label(label)
+            return {"step": "coarsen", "case": case, "scale": scale, "layers": layers}
     for (split, label), p in tree.sets.items():
         if p == path:
             return {"step": "assemble", "split": split, "scale": label}
     raise KeyError(path)
+
+
+def _recorded(step: dict[str, Any], key: str) -> Any:
+    """A step's field; for ``layers``, the name of its layer set (None without one)."""
+    value = step.get(key)
+    return (value or {}).get("name") if key == "layers" else value
 
 
 def check_provenance(tree: ResultsTree) -> None:
@@ -62,7 +71,8 @@ def check_provenance(tree: ResultsTree) -> None:
         if step is None:
             tree.add("provenance", path, f"records no {want['step']!r} step of its own")
             continue
-        bad = {k: step.get(k) for k, v in want.items() if k != "step" and step.get(k) != v}
+        found = {k: _recorded(step, k) for k in want if k != "step"}
+        bad = {k: v for k, v in found.items() if v != want[k]}
         if bad:
             tree.add(
                 "provenance",

@@ -294,8 +294,10 @@ def start_cluster(workdir: Path, *, timeout: float = 60.0) -> Cluster:
 
     Examples
     --------
-    >>> with start_cluster(Path("/tmp/demo")) as c:  # doctest: +SKIP
-    ...     c.run(["sbatch", "--wrap", "hostname"])
+    Used by the SLURM tests (it starts real daemons, so it is shown, not run here)::
+
+        with start_cluster(Path("/tmp/demo")) as c:
+            c.run(["sbatch", "--wrap", "hostname"])
     """
     ok, why = slurm_available()
     if not ok:

@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
-from numpy.typing import NDArray
+from numpy.typing import ArrayLike, NDArray
 
 from lesprep.errors import ConfigError, GridError
 
@@ -269,6 +269,22 @@ def parse_layer_sets(
 # --------------------------------------------------------------------------------------
 
 
+def centres_and_bounds(
+    faces: ArrayLike,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """The z and z_bounds of layers with interfaces ``faces`` (m): each layer's midpoint
+    and its ``(nl, 2)`` lower and upper interface (CF bounds).
+
+    Examples
+    --------
+    >>> z, bounds = centres_and_bounds([0.0, 100.0, 300.0])
+    >>> z.tolist(), bounds.tolist()
+    ([50.0, 200.0], [[0.0, 100.0], [100.0, 300.0]])
+    """
+    f = np.asarray(faces, dtype=np.float64)
+    return 0.5 * (f[:-1] + f[1:]), np.stack([f[:-1], f[1:]], axis=1)
+
+
 @dataclass(frozen=True, kw_only=True)
 class LayerGrid:
     """A layer set resolved for one case's LES levels.
@@ -302,12 +318,12 @@ class LayerGrid:
     @property
     def centres(self) -> NDArray[np.float64]:
         """Layer centre heights (m): the midpoints of the interfaces."""
-        return 0.5 * (self.faces[:-1] + self.faces[1:])
+        return centres_and_bounds(self.faces)[0]
 
     @property
     def bounds(self) -> NDArray[np.float64]:
         """``(nl, 2)`` lower and upper interface of each layer (CF bounds)."""
-        return np.stack([self.faces[:-1], self.faces[1:]], axis=1)
+        return centres_and_bounds(self.faces)[1]
 
     @cached_property
     def level_span(self) -> tuple[NDArray[np.int64], NDArray[np.int64]]:

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import zarr
 
-from lesprep.scales.layers import split_store_label
+from lesprep.scales.layers import centres_and_bounds, split_store_label
 from lesprep.sets.assemble import COORDS, feature_kind, kept_indices, label_values
 from lesprep.store import open_store
 from lesprep.verify.findings import ResultsTree, listing, own_step
@@ -33,10 +33,7 @@ def layer_levels(step: Mapping[str, Any] | None) -> tuple[np.ndarray, np.ndarray
     True
     """
     faces = ((step or {}).get("layers") or {}).get("interfaces_m")
-    if not faces:
-        return None
-    f = np.asarray(faces, dtype=np.float64)
-    return 0.5 * (f[:-1] + f[1:]), np.stack([f[:-1], f[1:]], axis=1)
+    return centres_and_bounds(faces) if faces else None
 
 
 def _z_problems(canon: Any, store: Any, label: str, step: Mapping[str, Any] | None) -> list[str]:
